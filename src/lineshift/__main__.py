@@ -1,0 +1,7 @@
+"""``python -m lineshift`` is the ``lineshift`` command."""
+
+import sys
+
+from .cli import main
+
+sys.exit(main())

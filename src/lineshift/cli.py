@@ -1,0 +1,389 @@
+"""Command line: a thin layer over the Python API.
+
+``main(argv)`` returns the exit code: 0 everything done, 1 some inputs unusable (each named on
+stderr and in the table's ``status``), 2 usage or configuration error (nothing written).  Data go to
+stdout, diagnostics to stderr; no traceback unless ``--debug``.
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import sys
+import time
+import warnings
+
+from . import __version__
+from .errors import ConfigError, LineshiftError, MaskError
+
+__all__ = ["main"]
+
+
+class _Parser(argparse.ArgumentParser):
+    def error(self, message):  # one line and exit code 2, as argparse does, but without the usage dump
+        self.exit(2, f"lineshift: {message} (see 'lineshift {self.prog.split()[-1]} --help')\n")
+
+
+def _floats(text: str, n: int, name: str) -> tuple[float, ...]:
+    parts = [p.strip() for p in text.split(",")]
+    try:
+        values = tuple(float(p) for p in parts)
+    except ValueError:
+        raise ConfigError(f"{name} {text!r}: expected {n} comma-separated numbers") from None
+    if len(values) != n:
+        raise ConfigError(f"{name} {text!r}: expected {n} comma-separated numbers")
+    return values
+
+
+def _build_parser() -> argparse.ArgumentParser:
+    parser = _Parser(prog="lineshift", description="Barycentric radial velocities from reduced spectra.")
+    parser.add_argument("--version", action="version", version=f"lineshift {__version__}")
+    sub = parser.add_subparsers(dest="command", parser_class=_Parser)
+
+    m = sub.add_parser("measure", help="spectra to barycentric velocities",
+                       description="Measure barycentric radial velocities (m/s, IAU cz_B) and BJD_TDB.")
+    m.add_argument("spectra", nargs="+", metavar="SPECTRUM", help="files, directories or globs")
+    m.add_argument("--mask", help="line mask CSV (rest vacuum wavelengths, weights)")
+    m.add_argument("-o", "--output", metavar="TABLE", help="output table (.csv, .ecsv, .fits, .parquet); stdout if absent")
+    m.add_argument("--config", metavar="TOML", help="configuration file")
+    m.add_argument("--ra", help="target RA (degrees or hh:mm:ss), overrides headers")
+    m.add_argument("--dec", help="target Dec (degrees or dd:mm:ss), overrides headers")
+    m.add_argument("--object", help="target name, overrides headers")
+    m.add_argument("--site", metavar="LON,LAT,HEIGHT", help="observatory (deg east, deg, m), overrides headers")
+    m.add_argument("--medium", choices=("air", "vacuum"), help="medium of the files' wavelengths")
+    m.add_argument("--velocity-range", metavar="LO,HI", help="barycentric search range, m/s (default -300000,300000)")
+    m.add_argument("--velocity-step", type=float, metavar="M_S", help="fine CCF step, m/s (default one pixel)")
+    m.add_argument("--box-width", type=float, metavar="M_S", help="mask box full width, m/s (default one pixel)")
+    m.add_argument("--method", choices=("mask",), help="velocity engine (default mask)")
+    m.add_argument("--systemic-velocity", type=float, metavar="M_S",
+                   help="approximate barycentric velocity for telluric rejection (default: measured)")
+    m.add_argument("--telluric", metavar="CSV", help="telluric band list (default: the shipped one)")
+    m.add_argument("--no-telluric", action="store_true", help="keep mask lines in telluric bands")
+    m.add_argument("--ephemeris", metavar="PATH", help="local JPL .bsp ephemeris (default: astropy builtin)")
+    m.add_argument("--workers", type=int, default=1, metavar="N", help="local worker processes (default 1)")
+    m.add_argument("--plots", metavar="DIR", help="write a CCF plot per spectrum and rv_time.png here")
+    m.add_argument("-q", "--quiet", action="store_true", help="no progress or summary on stderr")
+    m.add_argument("--debug", action="store_true", help="show tracebacks of unexpected errors")
+
+    i = sub.add_parser("inspect", help="what the loader understood from a file",
+                       description="Print what lineshift understood from each file and what is missing.")
+    i.add_argument("spectra", nargs="+", metavar="FILE")
+    i.add_argument("--medium", choices=("air", "vacuum"), help="medium of the file's wavelengths")
+    i.add_argument("--debug", action="store_true")
+
+    s = sub.add_parser("simulate", help="synthetic observations of an invented star",
+                       description="Write simulated spectra of the invented star Vessa-9 with a truth table.")
+    s.add_argument("outdir", metavar="OUTDIR")
+    s.add_argument("--instrument", action="append", metavar="NAME[:N]",
+                   help="instrument and count (repeatable; names: %(choices)s); default: the demo set")
+    s.add_argument("--seed", type=int, default=1)
+    s.add_argument("--snr", type=float, help="override SNR per pixel at the blaze peak")
+    s.add_argument("--mask", metavar="CSV", help="also write the star's line mask here")
+    s.add_argument("--no-compress", action="store_true", help="write plain files instead of .gz")
+    s.add_argument("-q", "--quiet", action="store_true")
+    s.add_argument("--debug", action="store_true")
+    return parser
+
+
+# --------------------------------------------------------------------------- measure
+
+def _settings_from(args, cfg):
+    from .barycentric import Target
+    from .config import parse_site
+    from .mask_engine import SearchSettings
+    from .metadata import parse_dec, parse_ra
+    from .pipeline import MeasureSettings, Overrides
+
+    t, site, mc = cfg["target"], cfg["site"], cfg["measure"]
+    try:
+        ra = parse_ra(args.ra) if args.ra is not None else t.get("ra")
+        dec = parse_dec(args.dec) if args.dec is not None else t.get("dec")
+    except LineshiftError as exc:
+        raise ConfigError(f"--ra/--dec: {exc.reason}") from None
+    site_xyz = parse_site(args.site) if args.site else site.get("xyz")
+    vrange = _floats(args.velocity_range, 2, "--velocity-range") if args.velocity_range else mc.get("velocity_range")
+    if vrange is not None and vrange[0] >= vrange[1]:
+        raise ConfigError("--velocity-range: LO must be below HI")
+    for name, value in (("--velocity-step", args.velocity_step), ("--box-width", args.box_width)):
+        if value is not None and not value > 0:
+            raise ConfigError(f"{name} must be a positive number of m/s")
+    if args.workers < 1:
+        raise ConfigError("--workers must be at least 1")
+    frame = t.get("frame")
+    telluric = False if args.no_telluric else (args.telluric or mc.get("telluric_bands"))
+    if telluric is True:
+        telluric = None
+    if isinstance(telluric, str) and not os.path.isfile(telluric):
+        raise ConfigError(f"telluric band list {telluric!r} does not exist")
+    ephemeris = args.ephemeris or mc.get("ephemeris")
+    if ephemeris and ephemeris != "builtin" and not os.path.isfile(ephemeris):
+        raise ConfigError(f"ephemeris {ephemeris!r} does not exist (give a local JPL .bsp file)")
+    equinox = t.get("equinox")
+    return MeasureSettings(
+        method=args.method or mc.get("method", "mask"),
+        search=SearchSettings(velocity_range=vrange, velocity_step=args.velocity_step or mc.get("velocity_step"),
+                              box_width=args.box_width or mc.get("box_width")),
+        continuum_degree=mc.get("continuum_degree", 4),
+        medium=args.medium or mc.get("medium"),
+        overrides=Overrides(object=args.object or t.get("object"), ra_deg=ra, dec_deg=dec,
+                            frame=frame.lower() if frame else None,
+                            equinox=None if equinox is None else str(equinox), site_xyz=site_xyz),
+        target=Target(pm_ra_cosdec=t.get("pm_ra_cosdec"), pm_dec=t.get("pm_dec"), parallax=t.get("parallax"),
+                      radial_velocity=t.get("radial_velocity"), epoch=t.get("epoch")),
+        ephemeris=ephemeris,
+        telluric_bands=telluric,
+        systemic_velocity=args.systemic_velocity if args.systemic_velocity is not None else mc.get("systemic_velocity"),
+        keep_ccf=bool(args.plots),
+    )
+
+
+class _Progress:
+    """tqdm bar on a terminal; a one-line log every 30 s otherwise; nothing with -q."""
+
+    def __init__(self, total: int, quiet: bool):
+        self.total, self.done, self.quiet = total, 0, quiet
+        self.bar = None
+        self.last = time.monotonic()
+        self.start = self.last
+        if not quiet and sys.stderr.isatty() and total > 1:
+            from tqdm import tqdm
+
+            self.bar = tqdm(total=total, unit="spectrum", file=sys.stderr, dynamic_ncols=True)
+
+    def update(self):
+        self.done += 1
+        if self.bar is not None:
+            self.bar.update(1)
+        elif not self.quiet and time.monotonic() - self.last > 30:
+            self.last = time.monotonic()
+            rate = self.done / (self.last - self.start)
+            print(f"lineshift: {self.done}/{self.total} spectra ({rate:.1f}/s)", file=sys.stderr)
+
+    def write(self, text: str):
+        if self.bar is not None:
+            self.bar.write(text, file=sys.stderr)
+        else:
+            print(text, file=sys.stderr)
+
+    def close(self):
+        if self.bar is not None:
+            self.bar.close()
+
+
+def _cmd_measure(args) -> int:
+    from . import pipeline
+    from .config import load_config
+    from .linelists import read_mask
+    from .pipeline import BatchReport, expand_inputs, measure_files, provenance
+    from .table import table_format, write_table
+
+    pipeline.DEBUG = args.debug
+    cfg = load_config(args.config) if args.config else {"target": {}, "site": {}, "measure": {}}
+    settings = _settings_from(args, cfg)
+    mask_path = args.mask or cfg["measure"].get("mask")
+    if not mask_path:
+        raise ConfigError("no line mask given (--mask CSV or [measure] mask in the config)")
+    mask = read_mask(mask_path)
+    paths = expand_inputs(args.spectra)
+    if not paths:
+        raise ConfigError("no input spectra found")
+    if args.output:
+        table_format(args.output)
+        out_abs = os.path.abspath(args.output)
+        if any(os.path.abspath(p) == out_abs for p in paths) or out_abs == os.path.abspath(mask_path):
+            raise ConfigError(f"output {args.output!r} is one of the inputs: refusing to overwrite it")
+    progress = _Progress(len(paths), args.quiet)
+    failures: list[str] = []
+
+    def on_row(row):
+        progress.update()
+        if row["status"] != "ok":
+            failures.append(row["file"])
+            progress.write(f"lineshift: {row.get('_error') or row['status']}")
+        elif args.plots:
+            from .plots import plot_ccf
+
+            os.makedirs(args.plots, exist_ok=True)
+            plot_ccf(row, args.plots)
+            row.pop("_ccf", None)
+
+    report = BatchReport()
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        try:
+            rows = measure_files(paths, mask, settings, workers=args.workers, on_row=on_row, report=report)
+        finally:
+            progress.close()
+    for w in {str(w.message): w for w in caught}.values():
+        print(f"lineshift: warning: {str(w.message).splitlines()[0]}", file=sys.stderr)
+    meta = provenance(mask, settings, report)
+    write_table(rows, args.output, meta)
+    if args.plots:
+        from .plots import plot_rv_time
+
+        os.makedirs(args.plots, exist_ok=True)
+        plot_rv_time(rows, args.plots)
+    if not args.quiet:
+        n_ok = len(rows) - len(failures)
+        print(f"lineshift: {n_ok} of {len(rows)} spectra measured; {report.mask_note}"
+              + (f"; table written to {args.output}" if args.output else ""), file=sys.stderr)
+    return 1 if failures else 0
+
+
+# --------------------------------------------------------------------------- inspect
+
+def _describe(path: str, medium) -> tuple[list[str], bool]:
+    import numpy as np
+
+    from .loaders import load_spectrum, read_observation
+
+    lines = [f"file:     {path}"]
+    try:
+        spectrum = load_spectrum(path, medium=medium)
+        obs, error = spectrum.obs, None
+    except LineshiftError as exc:
+        spectrum, error = None, exc
+        try:
+            obs = read_observation(path, medium=medium)
+        except LineshiftError:
+            obs = None
+    if obs is None:
+        lines.append(f"problem:  {error.reason if error else 'unreadable'}")
+        return lines, False
+    lines.append(f"layout:   {obs.layout}")
+    if spectrum is not None:
+        sizes = sorted({o.flux.size for o in spectrum.orders})
+        lo, hi = spectrum.wavelength_range
+        good = [np.isfinite(o.flux) & np.isfinite(o.var) & (o.var > 0) for o in spectrum.orders]
+        snr = np.concatenate([o.flux[g] / np.sqrt(o.var[g]) for o, g in zip(spectrum.orders, good, strict=True)])
+        lines.append(f"orders:   {spectrum.n_orders} ({'/'.join(map(str, sizes))} pixels)")
+        lines.append(f"range:    {lo:.3f} - {hi:.3f} A (vacuum)")
+        lines.append(f"snr:      median {np.median(snr):.1f} per pixel")
+    lines.append(f"medium:   {obs.medium} in the file" + (" (converted to vacuum)" if obs.medium == "air" else ""))
+    if obs.mjd_mid is not None:
+        from astropy.time import Time
+
+        iso = Time(obs.mjd_mid, format="mjd", scale=obs.time_scale).isot
+        exp = f", exposure {obs.exptime:g} s" if obs.exptime is not None else ""
+        lines.append(f"time:     {iso} {obs.time_scale.upper()} = MJD {obs.mjd_mid:.6f} (mid-exposure, "
+                     f"from {obs.time_source}{exp})")
+    else:
+        lines.append(f"time:     missing: {obs.time_source}")
+    name = f"{obs.object} " if obs.object else "(no OBJECT) "
+    if obs.ra_deg is not None:
+        lines.append(f"target:   {name}at RA {obs.ra_deg:.6f} deg, Dec {obs.dec_deg:+.6f} deg "
+                     f"({obs.frame.upper()}{' ' + obs.equinox if obs.equinox else ''})")
+    else:
+        lines.append(f"target:   {name}missing RA/DEC")
+    if obs.site_xyz is not None:
+        from astropy.coordinates import EarthLocation
+
+        geo = EarthLocation.from_geocentric(*obs.site_xyz, unit="m").to_geodetic()
+        lines.append(f"site:     lon {geo.lon.deg:.5f} deg, lat {geo.lat.deg:+.5f} deg, "
+                     f"height {geo.height.value:.1f} m")
+    else:
+        lines.append("site:     missing (OBSGEO-X/Y/Z or OBSGEO-L/B/H)")
+    for note in obs.notes:
+        lines.append(f"note:     {note}")
+    if error is not None:
+        lines.append(f"problem:  {error.reason}")
+    lines.append(f"missing:  {', '.join(obs.missing) or 'nothing'}")
+    return lines, error is None and not obs.missing
+
+
+def _cmd_inspect(args) -> int:
+    from .pipeline import expand_inputs
+
+    paths = expand_inputs(args.spectra)
+    if not paths:
+        raise ConfigError("no input files found")
+    all_ok = True
+    for k, path in enumerate(paths):
+        lines, ok = _describe(path, args.medium)
+        all_ok &= ok
+        if k:
+            print()
+        print("\n".join(lines))
+    return 0 if all_ok else 1
+
+
+# --------------------------------------------------------------------------- simulate
+
+def _cmd_simulate(args) -> int:
+    from dataclasses import replace
+
+    from . import simulate as sim
+
+    plan = []
+    for item in args.instrument or ["demo-echelle:20", "demo-1d:4", "demo-table:4", "demo-text:4"]:
+        name, _, count = item.partition(":")
+        if name not in sim.INSTRUMENTS:
+            raise ConfigError(f"--instrument {name!r}: known instruments are {', '.join(sim.INSTRUMENTS)}")
+        try:
+            n = int(count or 1)
+        except ValueError:
+            raise ConfigError(f"--instrument {item!r}: the count must be a whole number") from None
+        if n < 1:
+            raise ConfigError(f"--instrument {item!r}: the count must be at least 1")
+        ins = sim.INSTRUMENTS[name]
+        if args.snr is not None:
+            ins = replace(ins, snr=args.snr)
+        plan.append((ins, n))
+    total = sum(n for _, n in plan)
+    bar = None
+    if not args.quiet and sys.stderr.isatty():
+        from tqdm import tqdm
+
+        bar = tqdm(total=total, unit="spectrum", file=sys.stderr)
+    rows = sim.simulate_set(args.outdir, plan, seed=args.seed, compress=not args.no_compress,
+                            progress=bar.update if bar else None)
+    if bar:
+        bar.close()
+    if args.mask:
+        sim.write_mask(sim.DEMO_STAR, args.mask)
+    if not args.quiet:
+        print(f"lineshift: {len(rows)} spectra of {sim.DEMO_STAR.name} written to {args.outdir}; truth in "
+              f"{os.path.join(args.outdir, 'truth', 'truth.csv')}" + (f"; mask {args.mask}" if args.mask else ""),
+              file=sys.stderr)
+    return 0
+
+
+_COMMANDS = {"measure": _cmd_measure, "inspect": _cmd_inspect, "simulate": _cmd_simulate}
+
+
+def main(argv: list[str] | None = None) -> int:
+    """Run the command line; returns the exit code."""
+    parser = _build_parser()
+    try:
+        args = parser.parse_args(argv)
+    except SystemExit as exc:
+        return int(exc.code or 0)
+    if args.command is None:
+        parser.print_help(sys.stderr)
+        return 2
+    try:
+        return _COMMANDS[args.command](args)
+    except (ConfigError, MaskError) as exc:
+        print(f"lineshift: {exc}", file=sys.stderr)
+        return 2
+    except LineshiftError as exc:
+        print(f"lineshift: {exc}", file=sys.stderr)
+        return 1
+    except KeyboardInterrupt:
+        print("lineshift: interrupted", file=sys.stderr)
+        return 130
+    except BrokenPipeError:
+        try:
+            sys.stdout = open(os.devnull, "w")  # noqa: SIM115 - silence the interpreter's flush at exit
+        except OSError:
+            pass
+        return 0
+    except Exception as exc:
+        if getattr(args, "debug", False):
+            raise
+        print(f"lineshift: unexpected error ({type(exc).__name__}: {exc}); rerun with --debug", file=sys.stderr)
+        return 2
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,144 @@
+"""The mask-CCF velocity engine: automatic velocity search, peak fit and propagated errors.
+
+Search: a coarse CCF over the whole velocity range with the strongest lines (box width equal to the
+coarse step, so no line can fall between samples), the dip located and its width estimated, then a
+fine CCF over +-``window_fwhm`` FWHM around it with all usable lines, recentred once if the fitted
+centre moved.  All velocities are in the observatory frame inside this module.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from .ccf import correlate
+from .errors import MeasurementError
+from .model import C_MS, CCFResult, LineMask
+from .peak import fit_gaussian
+from .prepare import PreparedOrder
+
+__all__ = ["SearchSettings", "measure_mask"]
+
+
+@dataclass(frozen=True)
+class SearchSettings:
+    """Options of the mask engine (velocities in m/s; ``None`` means automatic).
+
+    Attributes
+    ----------
+    velocity_range : (lo, hi) or None
+        Barycentric velocities to search; default -300 to +300 km/s.
+    velocity_step : float or None
+        Step of the fine grid; default one pixel in velocity.
+    box_width : float or None
+        Full velocity width of each mask box; default one pixel in velocity.
+    coarse_lines : int
+        Number of strongest lines used in the coarse search.
+    window_fwhm : float
+        Half-width of the fine grid in units of the coarse FWHM estimate (continuum on both sides).
+    min_significance : float
+        A coarse dip shallower than this many robust standard deviations of the CCF is no peak.
+    """
+
+    velocity_range: tuple[float, float] | None = None
+    velocity_step: float | None = None
+    box_width: float | None = None
+    coarse_lines: int = 300
+    window_fwhm: float = 3.0
+    min_significance: float = 6.0
+
+
+DEFAULT_RANGE = (-300_000.0, 300_000.0)
+
+
+def pixel_velocity_width(orders: list[PreparedOrder]) -> float:
+    """Median width of one pixel in velocity, m/s."""
+    return float(np.median(np.concatenate([C_MS * np.diff(o.edges) / o.wave for o in orders])))
+
+
+def _to_topo(v_bary: float, berv: float) -> float:
+    return C_MS * ((1 + v_bary / C_MS) / (1 + berv / C_MS) - 1)
+
+
+def _coarse(orders, mask, settings, berv, dv_pix, path):
+    lo, hi = settings.velocity_range or DEFAULT_RANGE
+    lo, hi = _to_topo(lo, berv), _to_topo(hi, berv)
+    step = max(2.0 * dv_pix, 500.0)
+    grid = np.arange(lo, hi + 0.5 * step, step)
+    if grid.size < 8:
+        raise MeasurementError("velocity range is narrower than eight coarse steps", path=path,
+                               status="velocity range too narrow")
+    strongest = np.sort(np.argsort(mask.weight)[::-1][: settings.coarse_lines])
+    data = correlate(orders, mask, grid, max(step, settings.box_width or dv_pix), lines=strongest)
+    if not data.terms:
+        raise MeasurementError("no mask line falls on the spectrum", path=path, status="outside mask range")
+    y = data.ccf
+    base = np.median(y)
+    noise = 1.4826 * np.median(np.abs(y - base))
+    i = int(np.argmin(y))
+    depth = base - y[i]
+    if not np.isfinite(depth) or noise <= 0 or depth < settings.min_significance * noise:
+        raise MeasurementError(
+            f"no correlation peak (deepest dip {depth / noise if noise > 0 else 0:.1f} sigma)",
+            path=path, status="no correlation peak")
+    half = base - 0.5 * depth
+    left = i
+    while left > 0 and y[left] < half:
+        left -= 1
+    right = i
+    while right < y.size - 1 and y[right] < half:
+        right += 1
+    fwhm = max((right - left) * step, 2 * step)
+    return float(grid[i]), float(fwhm)
+
+
+def measure_mask(orders: list[PreparedOrder], mask: LineMask, settings: SearchSettings, *,
+                 berv: float = 0.0, path: str | None = None) -> CCFResult:
+    """Velocity of one prepared spectrum against a line mask (observatory frame).
+
+    Parameters
+    ----------
+    orders : list of PreparedOrder
+    mask : LineMask
+        Rest vacuum wavelengths and weights.
+    settings : SearchSettings
+    berv : float, m/s
+        Barycentric correction of this spectrum; only used to place the (barycentric) search range.
+
+    Returns
+    -------
+    CCFResult
+        ``rv`` is the topocentric velocity (``rv_topo``), with its propagated 1-sigma error.
+
+    Raises
+    ------
+    MeasurementError
+        No mask line on the spectrum, no significant correlation dip, or a failed peak fit.
+    """
+    if not orders:
+        raise MeasurementError("no usable order (too few valid pixels)", path=path, status="no valid pixels")
+    dv_pix = pixel_velocity_width(orders)
+    box = settings.box_width or dv_pix
+    centre, fwhm = _coarse(orders, mask, settings, berv, dv_pix, path)
+    step = settings.velocity_step or dv_pix
+    for _attempt in range(3):
+        half = max(settings.window_fwhm * fwhm, 8 * step)
+        n = int(np.ceil(half / step))
+        grid = centre + step * np.arange(-n, n + 1)
+        data = correlate(orders, mask, grid, box)
+        if not data.terms:
+            raise MeasurementError("no mask line falls on the spectrum", path=path,
+                                   status="outside mask range")
+        fit = fit_gaussian(grid, data.ccf, path=path)
+        moved = abs(fit.mu - centre)
+        centre, fwhm = fit.mu, fit.fwhm
+        if moved < 0.25 * half:
+            break
+    sens = fit.sensitivities()
+    errs = {k: float(np.sqrt(data.variance_of(s))) for k, s in sens.items()}
+    good_snr = np.concatenate([o.flux[o.good] / np.sqrt(o.var[o.good]) for o in orders])
+    return CCFResult(
+        rv=fit.mu, rv_err=errs["rv"], fwhm=fit.fwhm, fwhm_err=errs["fwhm"], contrast=fit.contrast,
+        contrast_err=errs["contrast"], snr=float(np.median(good_snr)), n_lines=data.n_lines,
+        n_orders=len(data.terms), velocity=grid, ccf=data.ccf, model=fit.model)

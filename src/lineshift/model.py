@@ -1,0 +1,170 @@
+"""Plain data passed between the stages.
+
+Internal units are fixed: wavelengths in Angstrom (vacuum), velocities in m/s, times as MJD in the
+scale named beside them.  Every stage takes and returns these records; nothing else travels between
+modules.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+__all__ = ["C_MS", "CCFResult", "LineMask", "Observation", "Order", "Spectrum"]
+
+#: Speed of light in vacuum, m/s (exact, SI definition).
+C_MS = 299_792_458.0
+
+
+@dataclass(frozen=True)
+class Observation:
+    """What a file says about when, where and what was observed.
+
+    Attributes
+    ----------
+    path : str
+        The input path as given.
+    layout : str
+        One of ``wcs-1d``, ``table``, ``multi-order``, ``text``.
+    object : str
+        Target name (OBJECT keyword or config); may be empty.
+    mjd_mid : float or None
+        Mid-exposure instant, MJD in ``time_scale``.
+    time_scale : str
+        astropy time scale of ``mjd_mid`` (from TIMESYS, default ``utc``).
+    time_source : str
+        Which keywords gave the time (e.g. ``DATE-OBS+EXPTIME/2``), or why there is none.
+    exptime : float or None
+        Exposure time, s.
+    ra_deg, dec_deg : float or None
+        Target position, degrees, in ``frame`` (and ``equinox`` for FK4/FK5).
+    frame : str
+        ``icrs``, ``fk5`` or ``fk4`` (from RADESYS, default ``icrs``).
+    equinox : str or None
+        Equinox for FK4/FK5, e.g. ``J2000``.
+    site_xyz : tuple of 3 floats or None
+        Observatory position, geocentric ITRS metres.
+    medium : str
+        ``vacuum`` or ``air``: the medium the file's wavelengths were given in (the arrays
+        themselves are always vacuum after loading).
+    notes : tuple of str
+        Warnings raised while reading (e.g. Poisson variance assumed).
+    """
+
+    path: str
+    layout: str
+    object: str = ""
+    mjd_mid: float | None = None
+    time_scale: str = "utc"
+    time_source: str = ""
+    exptime: float | None = None
+    ra_deg: float | None = None
+    dec_deg: float | None = None
+    frame: str = "icrs"
+    equinox: str | None = None
+    site_xyz: tuple[float, float, float] | None = None
+    medium: str = "vacuum"
+    notes: tuple[str, ...] = ()
+
+    @property
+    def missing(self) -> tuple[str, ...]:
+        """Metadata the barycentric step needs but the record lacks (``time``, ``target``, ``site``)."""
+        out = []
+        if self.mjd_mid is None:
+            out.append("time")
+        if self.ra_deg is None or self.dec_deg is None:
+            out.append("target")
+        if self.site_xyz is None:
+            out.append("site")
+        return tuple(out)
+
+
+@dataclass(frozen=True)
+class Order:
+    """One spectral order (or a whole 1-D spectrum): strictly increasing vacuum wavelengths.
+
+    Attributes
+    ----------
+    wave : ndarray, Angstrom (vacuum), pixel centres
+    flux : ndarray, any linear flux unit (counts preferred: photon weighting uses it)
+    var : ndarray, variance of ``flux`` (same unit squared); non-finite or <= 0 marks a bad pixel
+    blaze : ndarray or None, the instrument's blaze function, if the file gave one
+    index : int, the order's index in the file
+    """
+
+    wave: np.ndarray
+    flux: np.ndarray
+    var: np.ndarray
+    blaze: np.ndarray | None = None
+    index: int = 0
+
+
+@dataclass(frozen=True)
+class Spectrum:
+    """A loaded spectrum: its orders and the observation record."""
+
+    obs: Observation
+    orders: tuple[Order, ...]
+
+    @property
+    def n_orders(self) -> int:
+        return len(self.orders)
+
+    @property
+    def wavelength_range(self) -> tuple[float, float]:
+        """(min, max) vacuum wavelength over all orders, Angstrom."""
+        lo = min(float(np.nanmin(o.wave)) for o in self.orders)
+        hi = max(float(np.nanmax(o.wave)) for o in self.orders)
+        return lo, hi
+
+
+@dataclass(frozen=True)
+class LineMask:
+    """A weighted line mask: rest vacuum wavelengths (Angstrom) and weights.
+
+    Attributes
+    ----------
+    wavelength : ndarray, rest vacuum wavelengths, Angstrom, sorted
+    weight : ndarray, relative weights (> 0)
+    species : tuple of str, optional labels (may be empty strings)
+    source : str, where the mask came from (path or description)
+    provenance : tuple of str, the file's comment lines
+    """
+
+    wavelength: np.ndarray
+    weight: np.ndarray
+    species: tuple[str, ...] = ()
+    source: str = ""
+    provenance: tuple[str, ...] = ()
+
+    def __len__(self) -> int:
+        return int(self.wavelength.size)
+
+    def select(self, keep: np.ndarray) -> LineMask:
+        """A new mask with only the lines where ``keep`` is true."""
+        keep = np.asarray(keep, dtype=bool)
+        species = tuple(s for s, k in zip(self.species, keep, strict=True) if k) if self.species else ()
+        return LineMask(self.wavelength[keep], self.weight[keep], species, self.source, self.provenance)
+
+
+@dataclass(frozen=True)
+class CCFResult:
+    """The correlation profile of one spectrum and the fit of its peak (observatory frame).
+
+    All velocities in m/s.  ``rv_err`` is the 1-sigma error from linear propagation of the pixel
+    variances through the CCF and the profile fit (covariance of neighbouring CCF points included).
+    """
+
+    rv: float
+    rv_err: float
+    fwhm: float
+    fwhm_err: float
+    contrast: float
+    contrast_err: float
+    snr: float
+    n_lines: int
+    n_orders: int
+    velocity: np.ndarray = field(repr=False)
+    ccf: np.ndarray = field(repr=False)
+    model: np.ndarray = field(repr=False)

@@ -1,0 +1,354 @@
+"""The measurement pipeline: files to barycentric velocities, one row per input.
+
+Batch path (each phase streams; memory does not grow with the number of spectra beyond one small
+record per input):
+
+1. **survey** - read each file's observation record (headers only) and apply overrides;
+2. **barycentric** - BERV and BJD_TDB for the whole batch, vectorised (:mod:`.barycentric`);
+3. **mask** - drop mask lines that a telluric band can reach anywhere in the batch's BERV range
+   (systemic velocity from the settings, or measured on the first usable spectrum);
+4. **measure** - per spectrum, a pure function of (task, context): load, prepare, correlate, fit,
+   compose with BERV.  Tasks run serially, on local processes, or on any executor with the
+   ``concurrent.futures`` interface; the driver alone consumes the rows (``on_row``), in completion
+   order, and returns them in input order.
+
+A file that fails at any phase becomes a row with a non-ok ``status`` and an error message; it never
+stops the batch.
+"""
+
+from __future__ import annotations
+
+import glob
+import os
+import warnings
+from collections.abc import Callable, Iterable, Iterator
+from dataclasses import dataclass, field, replace
+
+import numpy as np
+
+from . import __version__, airvac
+from .barycentric import BarycentricResult, Target, barycentric_batch, compose_velocity
+from .errors import ConfigError, LineshiftError, MeasurementError
+from .linelists import read_telluric_bands
+from .loaders import load_spectrum, read_observation
+from .mask_engine import SearchSettings, measure_mask
+from .model import C_MS, LineMask, Observation
+from .prepare import prepare_spectrum, reject_telluric_lines
+
+__all__ = ["COLUMNS", "MeasureSettings", "Overrides", "expand_inputs", "measure_files"]
+
+#: The contract columns (shared/interface.md), in order; extra columns follow.
+COLUMNS = ["file", "object", "bjd_tdb", "rv", "rv_err", "berv", "rv_topo", "fwhm", "contrast", "snr",
+           "n_lines", "status"]
+EXTRA_COLUMNS = ["method", "fwhm_err", "contrast_err", "n_orders", "mjd_mid", "time_scale",
+                 "time_source", "layout", "medium", "notes"]
+
+SPECTRUM_SUFFIXES = (".fits", ".fit", ".fts", ".fits.gz", ".fit.gz", ".fts.gz", ".csv", ".csv.gz",
+                     ".txt", ".txt.gz", ".dat", ".dat.gz", ".tsv", ".tsv.gz")
+
+ENGINES: dict[str, Callable] = {"mask": measure_mask}
+
+#: Set by ``--debug``: unexpected errors propagate instead of becoming a row status.
+DEBUG = False
+
+
+@dataclass(frozen=True)
+class Overrides:
+    """Metadata given on the command line or in the config; each wins over the file's headers."""
+
+    object: str | None = None
+    ra_deg: float | None = None
+    dec_deg: float | None = None
+    frame: str | None = None
+    equinox: str | None = None
+    site_xyz: tuple[float, float, float] | None = None
+
+    def apply(self, obs: Observation) -> Observation:
+        changes = {k: v for k, v in (("object", self.object), ("ra_deg", self.ra_deg),
+                                     ("dec_deg", self.dec_deg), ("frame", self.frame),
+                                     ("equinox", self.equinox), ("site_xyz", self.site_xyz)) if v is not None}
+        return replace(obs, **changes) if changes else obs
+
+
+@dataclass(frozen=True)
+class MeasureSettings:
+    """Everything that determines a measurement besides the input file (part of the store key)."""
+
+    method: str = "mask"
+    search: SearchSettings = field(default_factory=SearchSettings)
+    continuum_degree: int = 4
+    medium: str | None = None
+    overrides: Overrides = field(default_factory=Overrides)
+    target: Target = field(default_factory=Target)
+    ephemeris: str | None = None
+    telluric_bands: str | None | bool = None     # None: shipped list; False: none; str: a file
+    systemic_velocity: float | None = None
+    keep_ccf: bool = False
+
+    def __post_init__(self):
+        if self.method not in ENGINES:
+            raise ConfigError(f"unknown method {self.method!r} (known: {', '.join(ENGINES)})")
+
+
+@dataclass(frozen=True)
+class Task:
+    """One spectrum's work, small enough to send to another process or machine."""
+
+    index: int
+    path: str
+    berv: float
+    bjd_tdb: float
+    notes: tuple[str, ...]
+
+
+@dataclass(frozen=True)
+class Context:
+    """What every task of a batch shares."""
+
+    mask: LineMask
+    settings: MeasureSettings
+
+
+def expand_inputs(items: Iterable[str]) -> list[str]:
+    """Files, directories (their spectrum files, sorted, not recursive) and globs, in order given.
+
+    A name that matches nothing is kept, so that it is reported as unreadable.
+    """
+    out: list[str] = []
+    for item in items:
+        if os.path.isdir(item):
+            names = sorted(n for n in os.listdir(item) if not n.startswith(".")
+                           and n.lower().endswith(SPECTRUM_SUFFIXES))
+            out.extend(os.path.join(item, n) for n in names if os.path.isfile(os.path.join(item, n)))
+        elif not os.path.exists(item) and any(ch in item for ch in "*?["):
+            out.extend(sorted(glob.glob(item)))
+        else:
+            out.append(item)
+    return out
+
+
+def _empty_row(path: str, obs: Observation | None, status: str, message: str, settings) -> dict:
+    row = dict.fromkeys(COLUMNS + EXTRA_COLUMNS)
+    row.update(file=path, object=obs.object if obs else "", status=status, method=settings.method,
+               notes=message)
+    if obs is not None:
+        row.update(mjd_mid=obs.mjd_mid, time_scale=obs.time_scale, time_source=obs.time_source,
+                   layout=obs.layout, medium=obs.medium)
+    return row
+
+
+def survey(paths: list[str], settings: MeasureSettings) -> list[Observation | LineshiftError]:
+    """Phase 1: the observation record of every input (or the error that prevents reading it)."""
+    out: list = []
+    for path in paths:
+        try:
+            out.append(settings.overrides.apply(read_observation(path, medium=settings.medium)))
+        except LineshiftError as exc:
+            exc.path = exc.path or path
+            out.append(exc)
+    return out
+
+
+def effective_mask(mask: LineMask, settings: MeasureSettings, bervs: np.ndarray,
+                   estimate_systemic: Callable[[], float | None]) -> tuple[LineMask, str]:
+    """Phase 3: the mask with telluric-contaminated lines removed; returns it and a description."""
+    if settings.telluric_bands is False or bervs.size == 0:
+        return mask, "no telluric rejection"
+    bands = read_telluric_bands(settings.telluric_bands or None)
+    rv = settings.systemic_velocity
+    if rv is None:
+        rv = estimate_systemic()
+    if rv is None:
+        return mask, "no telluric rejection (no spectrum gave a systemic velocity)"
+    box = settings.search.box_width or 2000.0
+    keep = reject_telluric_lines(mask, bands, rv_star=rv, berv_min=float(bervs.min()),
+                                 berv_max=float(bervs.max()), box_width=box, margin=2000.0)
+    note = (f"{int((~keep).sum())} of {len(mask)} mask lines dropped for telluric bands "
+            f"(BERV {bervs.min() / 1e3:+.2f}..{bervs.max() / 1e3:+.2f} km/s, systemic {rv / 1e3:+.2f} km/s)")
+    return mask.select(keep), note
+
+
+def measure_task(task: Task, ctx: Context) -> dict:
+    """Phase 4 for one spectrum: a pure function of its task and the batch context.
+
+    Returns the output row (with ``_ccf`` holding the CCF arrays when ``keep_ccf``).  Never raises
+    for bad input: the row's ``status`` says what went wrong and ``_error`` holds the message.
+    """
+    s = ctx.settings
+    obs = None
+    try:
+        spectrum = load_spectrum(task.path, medium=s.medium)
+        obs = s.overrides.apply(spectrum.obs)
+        orders = prepare_spectrum(spectrum, degree=s.continuum_degree)
+        lo, hi = spectrum.wavelength_range
+        inside = (ctx.mask.wavelength > lo) & (ctx.mask.wavelength < hi)
+        if not inside.any():
+            raise MeasurementError(
+                f"spectrum ({lo:.1f}-{hi:.1f} A) lies outside the mask's range "
+                f"({ctx.mask.wavelength[0]:.1f}-{ctx.mask.wavelength[-1]:.1f} A)", path=task.path,
+                status="outside mask range")
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)
+            res = ENGINES[s.method](orders, ctx.mask, s.search, berv=task.berv, path=task.path)
+    except LineshiftError as exc:
+        exc.path = exc.path or task.path
+        row = _empty_row(task.path, obs, exc.status, str(exc), s)
+        row.update(bjd_tdb=task.bjd_tdb, berv=task.berv, _error=str(exc))
+        return row
+    except Exception as exc:  # a bug must not stop the batch; --debug re-raises it
+        if DEBUG:
+            raise
+        message = f"{task.path}: unexpected error ({type(exc).__name__}: {exc}); rerun with --debug"
+        row = _empty_row(task.path, obs, "internal error", message, s)
+        row.update(bjd_tdb=task.bjd_tdb, berv=task.berv, _error=message)
+        return row
+    rv = float(compose_velocity(res.rv, task.berv))
+    notes = tuple(obs.notes) + task.notes
+    row = _empty_row(task.path, obs, "ok", "; ".join(notes), s)
+    row.update(
+        bjd_tdb=task.bjd_tdb, rv=rv, rv_err=res.rv_err * (1 + task.berv / C_MS), berv=task.berv,
+        rv_topo=res.rv, fwhm=res.fwhm, contrast=res.contrast, snr=res.snr, n_lines=res.n_lines,
+        fwhm_err=res.fwhm_err, contrast_err=res.contrast_err, n_orders=res.n_orders)
+    if s.keep_ccf:
+        row["_ccf"] = (res.velocity, res.ccf, res.model)
+    return row
+
+
+# --------------------------------------------------------------------------- executors
+
+_WORKER_CTX: Context | None = None
+
+
+def _init_worker(ctx: Context) -> None:
+    global _WORKER_CTX
+    _WORKER_CTX = ctx
+    warnings.simplefilter("ignore")
+
+
+def _run_in_worker(task: Task) -> dict:
+    assert _WORKER_CTX is not None
+    return measure_task(task, _WORKER_CTX)
+
+
+def run_tasks(tasks: list[Task], ctx: Context, *, workers: int = 1, max_in_flight: int | None = None
+              ) -> Iterator[tuple[Task, dict]]:
+    """Run tasks, yielding (task, row) as each finishes.  ``workers > 1`` uses local processes.
+
+    At most ``max_in_flight`` tasks are submitted ahead, so memory stays bounded for any batch size.
+    """
+    if workers <= 1:
+        for t in tasks:
+            yield t, measure_task(t, ctx)
+        return
+    import concurrent.futures as cf
+    import multiprocessing as mp
+
+    limit = max_in_flight or 4 * workers
+    with cf.ProcessPoolExecutor(max_workers=workers, mp_context=mp.get_context("spawn"),
+                                initializer=_init_worker, initargs=(ctx,)) as pool:
+        pending: dict = {}
+        it = iter(tasks)
+        for t in it:
+            pending[pool.submit(_run_in_worker, t)] = t
+            if len(pending) >= limit:
+                break
+        while pending:
+            done, _ = cf.wait(pending, return_when=cf.FIRST_COMPLETED)
+            for fut in done:
+                t = pending.pop(fut)
+                yield t, fut.result()
+                nxt = next(it, None)
+                if nxt is not None:
+                    pending[pool.submit(_run_in_worker, nxt)] = nxt
+
+
+# --------------------------------------------------------------------------- driver
+
+@dataclass
+class BatchReport:
+    """What a batch did besides the rows."""
+
+    mask_note: str = ""
+    n_lines_mask: int = 0
+    warnings: list[str] = field(default_factory=list)
+
+
+def measure_files(paths: list[str], mask: LineMask, settings: MeasureSettings, *, workers: int = 1,
+                  on_row: Callable[[dict], None] | None = None, report: BatchReport | None = None
+                  ) -> list[dict]:
+    """Measure many spectra; one row per path, in the order given.
+
+    Parameters
+    ----------
+    paths : list of str
+        Input files.
+    mask : LineMask
+        Rest-frame mask (vacuum).
+    settings : MeasureSettings
+    workers : int
+        Local processes (1: in this process).
+    on_row : callable, optional
+        Called with each row as soon as it exists (failed surveys first, then measurements in
+        completion order), e.g. to commit it to a store or draw its plot.
+    report : BatchReport, optional
+        Filled with the batch-level notes (telluric rejection).
+
+    Returns
+    -------
+    list of dict
+        The rows, columns :data:`COLUMNS` then :data:`EXTRA_COLUMNS` (and ``_error`` / ``_ccf``).
+    """
+    report = report if report is not None else BatchReport()
+    rows: list[dict | None] = [None] * len(paths)
+
+    def emit(i: int, row: dict) -> None:
+        rows[i] = row
+        if on_row is not None:
+            on_row(row)
+
+    observations = survey(paths, settings)
+    ok_idx = [i for i, o in enumerate(observations) if isinstance(o, Observation)]
+    bary = barycentric_batch([observations[i] for i in ok_idx], target=settings.target,
+                             ephemeris=settings.ephemeris)
+    tasks: list[Task] = []
+    for i, o in enumerate(observations):
+        if not isinstance(o, Observation):
+            emit(i, {**_empty_row(paths[i], None, o.status, str(o), settings), "_error": str(o)})
+    for i, b in zip(ok_idx, bary, strict=True):
+        if isinstance(b, BarycentricResult):
+            tasks.append(Task(i, paths[i], b.berv, b.bjd_tdb, b.notes))
+        else:
+            obs = observations[i]
+            emit(i, {**_empty_row(paths[i], obs, b.status, str(b), settings), "_error": str(b)})
+
+    bervs = np.array([t.berv for t in tasks])
+
+    def estimate_systemic() -> float | None:
+        plain = Context(mask, replace(settings, keep_ccf=False))
+        for t in tasks[:3]:
+            row = measure_task(t, plain)
+            if row["status"] == "ok":
+                return float(row["rv"])
+        return None
+
+    use_mask, note = effective_mask(mask, settings, bervs, estimate_systemic)
+    report.mask_note, report.n_lines_mask = note, len(use_mask)
+    ctx = Context(use_mask, settings)
+    for task, row in run_tasks(tasks, ctx, workers=workers):
+        emit(task.index, row)
+    return [r for r in rows if r is not None]
+
+
+def provenance(mask: LineMask, settings: MeasureSettings, report: BatchReport) -> dict[str, str]:
+    """Metadata written with the table: conventions, software, mask and settings."""
+    return {
+        "SOFTWARE": f"lineshift {__version__}",
+        "RV_CONVENTION": "IAU 2000 Resolution C1 barycentric radial-velocity measure cz_B, m/s",
+        "BERV_COMPOSITION": "(1+rv/c) = (1+rv_topo/c)(1+berv/c), Wright & Eastman 2014",
+        "TIME": "bjd_tdb: mid-exposure BJD in TDB, days (Eastman et al. 2010)",
+        "AIRVAC_FORMULA": airvac.FORMULA,
+        "MASK": f"{mask.source} ({len(mask)} lines; {report.n_lines_mask} after telluric rejection)",
+        "TELLURIC": report.mask_note,
+        "METHOD": settings.method,
+        "EPHEMERIS": settings.ephemeris or "builtin (ERFA)",
+    }

@@ -1,0 +1,76 @@
+"""Plots people would rather look at than tables: the CCF of each spectrum, velocities against time.
+
+Written with matplotlib's Agg backend (no screen needed), each file atomically.
+"""
+
+from __future__ import annotations
+
+import os
+
+import matplotlib
+
+matplotlib.use("Agg")
+import matplotlib.pyplot as plt  # noqa: E402
+import numpy as np  # noqa: E402
+
+from .table import atomic_path  # noqa: E402
+
+__all__ = ["plot_ccf", "plot_rv_time"]
+
+
+def _save(fig, path: str) -> str:
+    with atomic_path(path) as tmp:
+        fig.savefig(tmp, format="png", dpi=110)
+    plt.close(fig)
+    return path
+
+
+def _stem(path: str) -> str:
+    name = os.path.basename(path)
+    for ext in (".gz", ".fits", ".fit", ".fts", ".csv", ".txt", ".dat", ".tsv"):
+        if name.lower().endswith(ext):
+            name = name[: -len(ext)]
+    return name
+
+
+def plot_ccf(row: dict, outdir: str) -> str:
+    """CCF (observatory frame) with its fitted profile, for one measured row."""
+    v, ccf, model = row["_ccf"]
+    fig, (ax, axr) = plt.subplots(2, 1, figsize=(6.4, 4.8), sharex=True,
+                                  gridspec_kw={"height_ratios": [3, 1]})
+    ax.plot(v / 1e3, ccf, ".", ms=4, color="0.2", label="CCF")
+    ax.plot(v / 1e3, model, "-", color="tab:red", lw=1.2, label="Gaussian fit")
+    ax.axvline(row["rv_topo"] / 1e3, color="tab:red", lw=0.6, ls=":")
+    ax.set_ylabel("normalised CCF")
+    ax.set_title(f"{os.path.basename(row['file'])}\nrv_topo = {row['rv_topo'] / 1e3:.4f} km/s "
+                 f"± {row['rv_err']:.2f} m/s, FWHM {row['fwhm'] / 1e3:.2f} km/s, "
+                 f"contrast {100 * row['contrast']:.1f}%", fontsize=8)
+    ax.legend(fontsize=8, loc="lower left")
+    axr.plot(v / 1e3, ccf - model, ".", ms=3, color="0.2")
+    axr.axhline(0, color="tab:red", lw=0.6)
+    axr.set_xlabel("velocity, observatory frame (km/s)")
+    axr.set_ylabel("residual")
+    fig.tight_layout()
+    return _save(fig, os.path.join(outdir, f"{_stem(row['file'])}_ccf.png"))
+
+
+def plot_rv_time(rows: list[dict], outdir: str, name: str = "rv_time.png") -> str | None:
+    """Barycentric velocity against BJD_TDB for the rows that have one."""
+    ok = [r for r in rows if r.get("status") == "ok" and r.get("rv") is not None]
+    if not ok:
+        return None
+    t = np.array([r["bjd_tdb"] for r in ok])
+    rv = np.array([r["rv"] for r in ok])
+    err = np.array([r["rv_err"] for r in ok])
+    ref = float(np.floor(t.min()))
+    mean = np.average(rv, weights=1 / err**2)
+    fig, ax = plt.subplots(figsize=(7, 4))
+    ax.errorbar(t - ref, rv - mean, err, fmt="o", ms=4, color="tab:blue", ecolor="0.5", capsize=2)
+    ax.set_xlabel(f"BJD_TDB - {ref:.0f} (d)")
+    ax.set_ylabel(f"rv - {mean / 1e3:.4f} km/s (m/s)")
+    objects = sorted({r.get("object") or "" for r in ok} - {""})
+    ax.set_title(f"{', '.join(objects) or 'velocities'}: {len(ok)} spectra, "
+                 f"rms {np.std(rv):.2f} m/s, median error {np.median(err):.2f} m/s", fontsize=9)
+    ax.grid(alpha=0.3)
+    fig.tight_layout()
+    return _save(fig, os.path.join(outdir, name))

@@ -1,0 +1,118 @@
+"""Velocity tables: the contract columns first, written atomically in CSV, ECSV, FITS or Parquet.
+
+Atomic: each table is written to a temporary file in the destination directory and renamed over the
+destination, so a reader never sees half a table and a killed run never leaves one.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import os
+import sys
+import tempfile
+
+import numpy as np
+import pandas as pd
+
+from .errors import ConfigError
+from .pipeline import COLUMNS, EXTRA_COLUMNS
+
+__all__ = ["FORMATS", "UNITS", "atomic_path", "rows_to_frame", "table_format", "write_table"]
+
+FORMATS = {".csv": "csv", ".ecsv": "ecsv", ".fits": "fits", ".fit": "fits", ".parquet": "parquet"}
+UNITS = {"bjd_tdb": "d", "rv": "m / s", "rv_err": "m / s", "berv": "m / s", "rv_topo": "m / s",
+         "fwhm": "m / s", "fwhm_err": "m / s", "mjd_mid": "d"}
+_INT = ("n_lines", "n_orders")
+
+
+def table_format(path: str) -> str:
+    """Output format from the file extension (``.csv`` when there is none)."""
+    ext = os.path.splitext(path)[1].lower()
+    if ext == "":
+        return "csv"
+    if ext not in FORMATS:
+        raise ConfigError(f"output {path!r}: unknown table extension {ext!r} (use .csv, .ecsv, .fits, .parquet)")
+    return FORMATS[ext]
+
+
+def rows_to_frame(rows: list[dict]) -> pd.DataFrame:
+    """Rows to a DataFrame with the contract columns first and the extras after."""
+    cols = COLUMNS + EXTRA_COLUMNS
+    extra = [k for r in rows for k in r if k not in cols and not k.startswith("_")]
+    cols += list(dict.fromkeys(extra))
+    frame = pd.DataFrame([{c: r.get(c) for c in cols} for r in rows], columns=cols)
+    for c in cols:
+        if c in ("file", "object", "status", "method", "time_scale", "time_source", "layout", "medium", "notes"):
+            frame[c] = frame[c].fillna("").astype(str)
+        elif c in _INT:
+            frame[c] = pd.array(frame[c], dtype="Int64")
+        else:
+            frame[c] = pd.to_numeric(frame[c], errors="coerce").astype(float)
+    return frame
+
+
+@contextlib.contextmanager
+def atomic_path(path: str):
+    """Yield a temporary path beside ``path``; on success rename it over ``path``."""
+    directory = os.path.dirname(os.path.abspath(path))
+    os.makedirs(directory, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{os.path.basename(path)}.", suffix=".tmp", dir=directory)
+    os.close(fd)
+    try:
+        yield tmp
+        os.replace(tmp, path)
+    finally:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+
+
+def _astropy_table(frame: pd.DataFrame, meta: dict):
+    from astropy.table import Table
+
+    t = Table()
+    for c in frame.columns:
+        col = frame[c]
+        if c in _INT:
+            t[c] = np.ma.masked_array(col.fillna(-1).to_numpy(dtype=np.int64), mask=col.isna().to_numpy())
+        elif col.dtype == object:
+            t[c] = col.to_numpy(dtype=str)
+        else:
+            t[c] = col.to_numpy(dtype=float)
+        if c in UNITS:
+            t[c].unit = UNITS[c]
+    t.meta.update(meta)
+    return t
+
+
+def write_table(rows: list[dict], path: str | None, meta: dict[str, str] | None = None) -> pd.DataFrame:
+    """Write rows to ``path`` (format from its extension) or CSV on stdout when ``path`` is None."""
+    meta = meta or {}
+    frame = rows_to_frame(rows)
+    if path is None:
+        frame.to_csv(sys.stdout, index=False)
+        return frame
+    fmt = table_format(path)
+    with atomic_path(path) as tmp:
+        if fmt == "csv":
+            frame.to_csv(tmp, index=False)
+        elif fmt == "parquet":
+            import pyarrow as pa
+            import pyarrow.parquet as pq
+
+            table = pa.Table.from_pandas(frame, preserve_index=False)
+            md = dict(table.schema.metadata or {})
+            md.update({f"lineshift.{k}".encode(): str(v).encode() for k, v in meta.items()})
+            md[b"lineshift.units"] = str(UNITS).encode()
+            pq.write_table(table.replace_schema_metadata(md), tmp)
+        elif fmt == "ecsv":
+            _astropy_table(frame, meta).write(tmp, format="ascii.ecsv", overwrite=True)
+        else:
+            from astropy.io import fits
+
+            t = _astropy_table(frame, {})
+            hdu = fits.table_to_hdu(t)
+            hdu.name = "VELOCITIES"
+            for k, v in meta.items():
+                hdu.header.add_comment(f"{k}: {v}"[:72])
+            fits.HDUList([fits.PrimaryHDU(), hdu]).writeto(tmp, overwrite=True)
+    return frame
