@@ -238,7 +238,8 @@ def _load_fits(hdul, path: str, *, medium: str | None, arrays: bool):
             if blaze.shape != flux.shape:
                 raise SpectrumFormatError(f"BLAZE has shape {blaze.shape}, FLUX has {flux.shape}", path=path)
         orders = [(wave[i], flux[i], var[i], None if blaze is None else blaze[i]) for i in range(flux.shape[0])]
-        return replace(obs, notes=tuple(notes)), _build_orders(orders, file_medium, path, notes)
+        orders = _build_orders(orders, file_medium, path, notes)
+        return replace(obs, notes=tuple(notes)), orders
 
     for hdu in hdul:
         if isinstance(hdu, fits.BinTableHDU) and hdu.data is not None:
@@ -314,7 +315,8 @@ def _load_wcs_1d(hdul, hdu, primary, path: str, *, medium: str | None, arrays: b
     if not arrays:
         return obs, []
     var = _uncertainty_from_ext(hdul, data, path, notes)
-    return replace(obs, notes=tuple(notes)), _build_orders([(wave, data, var, None)], file_medium, path, notes)
+    orders = _build_orders([(wave, data, var, None)], file_medium, path, notes)
+    return replace(obs, notes=tuple(notes)), orders
 
 
 def _load_fits_table(hdu, cols, primary, path: str, *, medium: str | None, arrays: bool):
@@ -344,7 +346,8 @@ def _load_fits_table(hdu, cols, primary, path: str, *, medium: str | None, array
         parts = [(wave, flux, var, None)]
     else:  # one order per row
         parts = [(wave[i], flux[i], var[i], None) for i in range(wave.shape[0])]
-    return replace(obs, notes=tuple(notes)), _build_orders(parts, file_medium, path, notes)
+    orders = _build_orders(parts, file_medium, path, notes)
+    return replace(obs, notes=tuple(notes)), orders
 
 
 # --------------------------------------------------------------------------- text
@@ -416,7 +419,8 @@ def _load_text(text: str, path: str, *, medium: str | None, arrays: bool):
         parts = [(wave[ords == k], flux[ords == k], var[ords == k], None) for k in np.unique(ords)]
     else:
         parts = [(wave, flux, var, None)]
-    return replace(obs, notes=tuple(notes)), _build_orders(parts, file_medium, path, notes)
+    orders = _build_orders(parts, file_medium, path, notes)
+    return replace(obs, notes=tuple(notes)), orders
 
 
 # --------------------------------------------------------------------------- shared

@@ -101,6 +101,10 @@ def fit_gaussian(v: np.ndarray, ccf: np.ndarray, *, guess: tuple[float, float, f
             and v[0] < mu < v[-1] and sigma < (v[-1] - v[0])):
         raise MeasurementError("correlation peak fit did not converge to a dip inside the window",
                                path=path, status="peak fit failed")
+    rms = float(np.sqrt(np.mean(sol.fun**2)))
+    if amp < 3.0 * rms:
+        raise MeasurementError(f"no correlation peak (fitted depth {amp:.2g} is within 3x the residual rms)",
+                               path=path, status="no correlation peak")
     J = _jacobian(v, c0, amp, mu, sigma)
     gain = np.linalg.solve(J.T @ J, J.T)
     return GaussianFit(float(c0), float(amp), float(mu), float(sigma), gain, gaussian_profile(v, c0, amp, mu, sigma))

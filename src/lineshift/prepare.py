@@ -10,8 +10,9 @@ Continuum
 
 Photon weighting
     The normalised flux is ``f = F / c`` with variance ``var / c^2``.  The correlation averages
-    ``f`` with per-pixel weights ``q = 1 / var_f,cont``, the variance the normalised flux would have
-    at the continuum level (a smooth fit of the variance over continuum pixels).  For photon noise
+    ``f`` with per-pixel weights ``q = 1 / var_f,cont``, the inverse of the variance the normalised
+    flux would have at the continuum level: ``c^2 / (alpha c + beta)``, with the counts' variance at
+    continuum pixels regressed linearly on the continuum (photon plus read noise).  For photon noise
     ``q`` is proportional to the continuum counts, so bright pixels count as their photons do,
     while line cores do not get extra weight from their own noisy counts.  Any smooth ``q`` leaves
     the error propagation exact; ``q`` only sets the efficiency.
@@ -25,7 +26,8 @@ import numpy as np
 
 from .model import C_MS, LineMask, Order, Spectrum
 
-__all__ = ["PreparedOrder", "fit_continuum", "prepare_spectrum", "reject_telluric_lines"]
+__all__ = ["PreparedOrder", "fit_continuum", "pixel_edges", "prepare_order", "prepare_spectrum",
+           "reject_telluric_lines"]
 
 
 @dataclass(frozen=True)
@@ -143,19 +145,30 @@ def _prepare_block(orders: list[Order], degree: int) -> list[PreparedOrder | Non
     fn = np.where(good, f / c, 0.0)
     vn = np.where(good, v / c**2, 0.0)
     used &= good
-    # photon weight: 1 / (variance of the normalised flux at continuum level), a quadratic in pixel
-    V2 = _legendre_design(flux.shape[1], 2)
-    coef = _weighted_polyfit(V2, vn, used.astype(float))
-    vcont = coef @ V2.T
+    # photon weight q = 1 / var_f at continuum level = c^2 / (alpha c + beta): the variance of the
+    # counts at the continuum, regressed linearly on the continuum (exact for photon + read noise)
+    w = used.astype(float)
+    nw = np.maximum(w.sum(axis=1), 1.0)
+    mc = np.sum(w * c, axis=1) / nw
+    mv = np.sum(w * v, axis=1) / nw
+    cov = np.sum(w * (c - mc[:, None]) * (v - mv[:, None]), axis=1)
+    scc = np.sum(w * (c - mc[:, None]) ** 2, axis=1)
+    alpha = np.where(scc > 0, cov / np.where(scc > 0, scc, 1.0), 0.0)
+    vcont = mv[:, None] + alpha[:, None] * (c - mc[:, None])
     out: list[PreparedOrder | None] = []
     for k, o in enumerate(orders):
         if good[k].sum() < max(32, 4 * (degree + 1)) or used[k].sum() < 10:
             out.append(None)
             continue
-        floor = 0.25 * np.median(vn[k][used[k]])
-        q = np.where(good[k], 1.0 / np.maximum(vcont[k], floor), 0.0)
+        floor = 0.25 * np.median(v[k][used[k]])
+        q = np.where(good[k], c[k] ** 2 / np.maximum(vcont[k], floor), 0.0)
         out.append(PreparedOrder(o.wave, pixel_edges(o.wave), fn[k], vn[k], q, good[k], o.index))
     return out
+
+
+def prepare_order(order: Order, *, degree: int = 4) -> PreparedOrder | None:
+    """Prepare one order; None when too little of it is usable."""
+    return _prepare_block([order], degree)[0]
 
 
 def prepare_spectrum(spectrum: Spectrum, *, degree: int = 4) -> list[PreparedOrder]:

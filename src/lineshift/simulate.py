@@ -30,8 +30,8 @@ from . import airvac
 from .model import C_MS
 from .orbit import Orbit, radial_velocity
 
-__all__ = ["DEMO_SITE", "DEMO_STAR", "INSTRUMENTS", "Instrument", "Site", "Star", "StarModel",
-           "Exposure", "observe", "write_observation"]
+__all__ = ["DEMO_SITE", "DEMO_STAR", "INSTRUMENTS", "Exposure", "Instrument", "Site", "Star",
+           "StarModel", "observe", "photon_noise_bound", "to_spectrum", "write_mask", "write_observation"]
 
 
 @dataclass(frozen=True)
@@ -284,7 +284,7 @@ def observe(star: Star, instrument: Instrument, site: Site, mjd_start_utc: float
     A = peak * shape * star_flux
     dA = peak * shape * dflux
     rn2 = instrument.read_noise**2
-    bound = 1.0 / np.sqrt(np.sum(dA * dA / (A + rn2)))
+    bound = photon_noise_bound(A, dA, instrument.read_noise)
     if noise:
         observed = A + rng.normal(size=A.shape) * np.sqrt(A + rn2)
     else:
@@ -297,6 +297,32 @@ def observe(star: Star, instrument: Instrument, site: Site, mjd_start_utc: float
     }
     return Exposure(instrument, star, site, mjd_start_utc, wave, observed, err,
                        blaze if instrument.blaze else None, truth)
+
+
+def photon_noise_bound(counts: np.ndarray, dcounts_dv: np.ndarray, read_noise: float = 0.0) -> float:
+    """Photon-noise limit on the velocity (m/s) from a noise-free model (Bouchy, Pepe & Queloz 2001).
+
+    ``sigma_RV = 1 / sqrt(sum_i (dA_i/dv)^2 / (A_i + sigma_D^2))`` with ``A`` in electrons per pixel
+    and ``dA/dv`` per m/s.  Since ``lambda dA/dlambda = c dA/dv`` for a Doppler shift this is their
+    ``c / sqrt(sum W_i)`` with ``W_i = lambda_i^2 (dA/dlambda)_i^2 / (A_i + sigma_D^2)`` (eq. 6-8).
+    """
+    A = np.asarray(counts, dtype=float)
+    dA = np.asarray(dcounts_dv, dtype=float)
+    return float(1.0 / np.sqrt(np.sum(dA * dA / (A + read_noise**2))))
+
+
+def to_spectrum(exp: Exposure, path: str = "<simulated>"):
+    """The in-memory :class:`~lineshift.model.Spectrum` a loader would make of this exposure."""
+    from .model import Observation as ObsRecord
+    from .model import Order, Spectrum
+
+    wave = airvac.air_to_vacuum(exp.wave) if exp.instrument.medium == "air" else exp.wave
+    orders = tuple(Order(wave[k], exp.flux[k], exp.err[k] ** 2,
+                         None if exp.blaze is None else exp.blaze[k], k) for k in range(wave.shape[0]))
+    obs = ObsRecord(path=path, layout=exp.instrument.layout, object=exp.star.name,
+                    mjd_mid=exp.truth["mjd_mid_utc"], ra_deg=exp.star.ra_deg, dec_deg=exp.star.dec_deg,
+                    site_xyz=exp.site.xyz, medium=exp.instrument.medium)
+    return Spectrum(obs, orders)
 
 
 def _edges(w: np.ndarray) -> np.ndarray:
