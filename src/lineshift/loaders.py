@@ -170,6 +170,8 @@ def _load(path: str, *, medium: str | None, arrays: bool):
         except Exception as exc:  # any surprise inside a damaged header is still a format error
             raise SpectrumFormatError(f"could not be interpreted ({_short(exc)})", path=path) from None
     try:
+        if b"\x00" in raw[:65536]:
+            raise UnicodeDecodeError("utf-8", raw[:1], 0, 1, "binary content")
         text = raw.decode("utf-8")
     except UnicodeDecodeError:
         raise SpectrumFormatError("is neither FITS nor a text table", path=path) from None

@@ -74,10 +74,10 @@ def _astropy_table(frame: pd.DataFrame, meta: dict):
         col = frame[c]
         if c in _INT:
             t[c] = np.ma.masked_array(col.fillna(-1).to_numpy(dtype=np.int64), mask=col.isna().to_numpy())
-        elif col.dtype == object:
-            t[c] = col.to_numpy(dtype=str)
-        else:
+        elif pd.api.types.is_numeric_dtype(col):
             t[c] = col.to_numpy(dtype=float)
+        else:
+            t[c] = col.to_numpy(dtype=str)
         if c in UNITS:
             t[c].unit = UNITS[c]
     t.meta.update(meta)
