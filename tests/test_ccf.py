@@ -25,7 +25,9 @@ def test_fast_ccf_equals_slow_reference():
     lines = np.array([5001.0, 5002.5, 5003.0, 5011.2, 5013.9])
     mask = LineMask(lines, np.array([0.5, 1.0, 0.3, 0.8, 0.6]))
     v = np.linspace(-20e3, 20e3, 23)
-    for width in (300.0, 820.0, 2500.0):  # boxes narrower and wider than a pixel (~1.2 km/s)
+    step = v[1] - v[0]
+    # boxes narrower and wider than a pixel (~1.2 km/s); whole numbers of grid steps share edges
+    for width in (300.0, 820.0, 2500.0, step, 2 * step):
         fast = correlate(orders, mask, v, width).ccf
         slow = reference_ccf(orders, mask, v, width)
         assert_allclose(fast, slow, rtol=1e-12)

@@ -34,41 +34,61 @@ def _pixel_coordinate(edges: np.ndarray, lam: np.ndarray) -> np.ndarray:
     return np.interp(lam, edges, np.arange(edges.size, dtype=float))
 
 
+def _cum(S: np.ndarray, g: np.ndarray, x: np.ndarray) -> np.ndarray:
+    """Integral of ``g`` from pixel coordinate 0 to ``x`` (``S`` = cumulative sums of ``g``)."""
+    i = np.minimum(x.astype(np.intp), g.size - 1)
+    return S[i] + (x - i) * g[i]
+
+
+def _cum_adjoint(a: np.ndarray, x: np.ndarray, n: int) -> np.ndarray:
+    """``h`` with ``sum(a * _cum(S, g, x)) == h @ g`` for every ``g`` of length ``n``."""
+    a = a.ravel()
+    i = np.minimum(x.ravel().astype(np.intp), n - 1)
+    f = x.ravel() - i
+    cnt = np.bincount(i, a, minlength=n)            # _cum(x) = sum_{p < i} g_p + f g_i
+    below = np.concatenate((np.cumsum(cnt[::-1])[::-1][1:], [0.0]))
+    return below + np.bincount(i, a * f, minlength=n)
+
+
 def box_integrals(g: np.ndarray, xa: np.ndarray, xb: np.ndarray) -> np.ndarray:
     """Integral of the piecewise-constant pixel array ``g`` from pixel coordinate xa to xb."""
-    n = g.size
     S = np.concatenate(([0.0], np.cumsum(g)))
-
-    def cum(x):
-        i = np.minimum(x.astype(np.intp), n - 1)
-        return S[i] + (x - i) * g[i]
-
-    return cum(xb) - cum(xa)
+    return _cum(S, g, xb) - _cum(S, g, xa)
 
 
 def box_adjoint(a: np.ndarray, xa: np.ndarray, xb: np.ndarray, n: int) -> np.ndarray:
     """Adjoint of :func:`box_integrals`: ``h`` with ``sum(a * box_integrals(g, xa, xb)) == h @ g``."""
-    a = a.ravel()
-    ia = np.minimum(xa.ravel().astype(np.intp), n - 1)
-    ib = np.minimum(xb.ravel().astype(np.intp), n - 1)
-    fa = xa.ravel() - ia
-    fb = xb.ravel() - ib
-    # cum(x) = sum_{p < i} g_p + frac * g_i
-    cnt = np.bincount(ib, a, minlength=n) - np.bincount(ia, a, minlength=n)
-    below = np.concatenate((np.cumsum(cnt[::-1])[::-1][1:], [0.0]))  # sum over k > p
-    frac = np.bincount(ib, a * fb, minlength=n) - np.bincount(ia, a * fa, minlength=n)
-    return below + frac
+    return _cum_adjoint(a, xb, n) - _cum_adjoint(a, xa, n)
 
 
 @dataclass
 class _OrderTerms:
+    """One order's part of a CCF.  Box edges are stored once per line: ``edges_x[l, r + i]`` ends
+    the box of line ``l`` at velocity ``i`` and ``edges_x[l, i]`` starts it (``r`` = box width in
+    grid steps), or, when the box is not a whole number of steps, the first ``m`` columns are starts
+    and the last ``m`` ends."""
+
     order: PreparedOrder
     weights: np.ndarray   # (k,) line weights
     lines: np.ndarray     # (k,) indices into the mask
-    xa: np.ndarray        # (m, k) box start, pixel coordinate
-    xb: np.ndarray        # (m, k) box end
+    edges_x: np.ndarray   # (k, m + r) or (k, 2m): box edges in pixel coordinate
+    r: int                # offset of the end rows (0: separate start/end blocks)
     num: np.ndarray       # (m,)
     den: np.ndarray       # (m,)
+
+
+def _edge_layout(velocity: np.ndarray, box_width: float) -> tuple[np.ndarray, int]:
+    """Velocities of the box edges, and the row offset of the ends (0 if not shareable)."""
+    half = 0.5 * box_width
+    m = velocity.size
+    if m > 1:
+        step = velocity[1] - velocity[0]
+        r = box_width / step
+        uniform = np.allclose(np.diff(velocity), step, rtol=1e-9, atol=1e-9)
+        if uniform and abs(r - round(r)) < 1e-9 and round(r) >= 1:
+            r = int(round(r))
+            return velocity[0] - half + step * np.arange(m + r), r
+    return np.concatenate((velocity - half, velocity + half)), 0
 
 
 @dataclass
@@ -100,20 +120,40 @@ class CorrelationData:
         """(order index, CCF) for each order that contributed."""
         return [(t.order.index, t.num / t.den) for t in self.terms]
 
-    def variance_of(self, sensitivity: np.ndarray) -> float:
+    def variance_of(self, sensitivity: np.ndarray) -> float | np.ndarray:
         """Variance of ``sensitivity @ ccf`` from the pixel variances (exact for this linear map).
 
         ``d CCF_i / d f_p = q_p sum_l w_l o_lp(v_i) / D_i`` (the denominator D carries no pixel noise:
         ``q`` is smooth), so the pixel sensitivity is the box adjoint of ``s_i w_l / D_i`` times ``q``.
         The covariance between neighbouring CCF points, which share pixels, is included.
+
+        ``sensitivity`` may be (m,) or (n_sens, m); the result is a float or an array (n_sens,).
         """
-        s = np.asarray(sensitivity, dtype=float) / self.denominator
-        total = 0.0
+        sens = np.atleast_2d(np.asarray(sensitivity, dtype=float)) / self.denominator
+        if not self.terms:
+            return np.zeros(sens.shape[0]) if np.ndim(sensitivity) == 2 else 0.0
+        out = np.zeros(sens.shape[0])
         for t in self.terms:
-            a = s[:, None] * t.weights[None, :]
-            h = box_adjoint(a, t.xa, t.xb, t.order.flux.size) * t.order.weight
-            total += float(np.sum(h * h * t.order.var))
-        return total
+            n = t.order.flux.size
+            m = sens.shape[1]
+            i = np.minimum(t.edges_x.astype(np.intp), n - 1).ravel()
+            f = (t.edges_x.ravel() - i)
+            # per-edge weights are separable: (combined sensitivity of the edge) x (line weight)
+            if t.r:
+                e = np.zeros((sens.shape[0], m + t.r))
+                e[:, t.r:] += sens
+                e[:, :m] -= sens
+            else:
+                e = np.concatenate((-sens, sens), axis=1)
+            qv = t.order.weight * t.order.weight * t.order.var
+            for k in range(sens.shape[0]):
+                a = np.multiply.outer(t.weights, e[k]).ravel()
+                cnt = np.bincount(i, a, minlength=n)       # _cum(x) = sum_{p < i} g_p + frac g_i
+                below = np.cumsum(cnt[::-1])[::-1]
+                h = np.bincount(i, a * f, minlength=n)
+                h[:-1] += below[1:]
+                out[k] += float(np.dot(h * h, qv))
+        return out if np.ndim(sensitivity) == 2 else float(out[0])
 
 
 def select_lines(order: PreparedOrder, mask: LineMask, v_lo: float, v_hi: float,
@@ -144,7 +184,8 @@ def correlate(orders: list[PreparedOrder], mask: LineMask, velocity: np.ndarray,
         Restrict to these mask lines (e.g. the strongest, for a coarse search).
     """
     velocity = np.asarray(velocity, dtype=float)
-    half = 0.5 * box_width
+    m = velocity.size
+    edge_v, r = _edge_layout(velocity, box_width)
     lam_lines = mask.wavelength
     terms = []
     for order in orders:
@@ -153,15 +194,21 @@ def correlate(orders: list[PreparedOrder], mask: LineMask, velocity: np.ndarray,
             idx = np.intersect1d(idx, lines, assume_unique=True)
         if idx.size == 0:
             continue
-        lam = lam_lines[idx][None, :]
-        xa = _pixel_coordinate(order.edges, lam * (1 + (velocity[:, None] - half) / C_MS))
-        xb = _pixel_coordinate(order.edges, lam * (1 + (velocity[:, None] + half) / C_MS))
+        # line-major layout (lines x edges): consecutive queries are neighbouring pixels, which
+        # numpy's interp finds from its previous answer without a full binary search
+        x = _pixel_coordinate(order.edges, lam_lines[idx][:, None] * (1 + edge_v[None, :] / C_MS))
         w = mask.weight[idx]
-        num = box_integrals(order.flux * order.weight, xa, xb) @ w
-        den = box_integrals(order.weight, xa, xb) @ w
+        g_num = order.flux * order.weight
+        sums = []
+        for g in (g_num, order.weight):
+            S = np.concatenate(([0.0], np.cumsum(g)))
+            c = _cum(S, g, x)
+            box = c[:, r:] - c[:, :m] if r else c[:, m:] - c[:, :m]
+            sums.append(w @ box)
+        num, den = sums
         if not np.all(den > 0):
             continue
-        terms.append(_OrderTerms(order, w, idx, xa, xb, num, den))
+        terms.append(_OrderTerms(order, w, idx, x, r, num, den))
     return CorrelationData(velocity, terms)
 
 

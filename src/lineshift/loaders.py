@@ -75,7 +75,7 @@ def _is_fits(raw: bytes) -> bool:
     return raw[:9] == b"SIMPLE  ="
 
 
-def _open_fits(raw: bytes, path: str):
+def _open_fits(raw: bytes, path: str, *, read_data: bool = True):
     from astropy.io import fits
 
     if len(raw) % 2880:
@@ -86,8 +86,9 @@ def _open_fits(raw: bytes, path: str):
         with warnings.catch_warnings():
             warnings.simplefilter("error")
             hdul = fits.open(io.BytesIO(raw), memmap=False, lazy_load_hdus=False)
-            for hdu in hdul:
-                _ = hdu.data  # force reading: a damaged data unit fails here, not later
+            if read_data:
+                for hdu in hdul:
+                    _ = hdu.data  # force reading: a damaged data unit fails here, not later
     except Exception as exc:  # astropy raises many types for damaged files
         raise SpectrumFormatError(f"is not a readable FITS file ({_short(exc)})", path=path) from None
     return hdul
@@ -162,7 +163,7 @@ def _load(path: str, *, medium: str | None, arrays: bool):
     path = os.fspath(path)
     raw = _read_bytes(path)
     if _is_fits(raw):
-        hdul = _open_fits(raw, path)
+        hdul = _open_fits(raw, path, read_data=arrays)
         try:
             return _load_fits(hdul, path, medium=medium, arrays=arrays)
         except LineshiftError:
@@ -180,9 +181,15 @@ def _load(path: str, *, medium: str | None, arrays: bool):
 
 # --------------------------------------------------------------------------- FITS
 
+def _has_data(hdu) -> bool:
+    """Whether an HDU has a non-empty data unit, from its header alone (no data is read)."""
+    naxis = int(hdu.header.get("NAXIS", 0) or 0)
+    return naxis > 0 and all(int(hdu.header.get(f"NAXIS{k}", 0) or 0) > 0 for k in range(1, naxis + 1))
+
+
 def _find_ext(hdul, names):
     for hdu in hdul[1:]:
-        if hdu.name.upper() in names and hdu.data is not None:
+        if hdu.name.upper() in names and _has_data(hdu):
             return hdu
     return None
 
@@ -244,13 +251,13 @@ def _load_fits(hdul, path: str, *, medium: str | None, arrays: bool):
         return replace(obs, notes=tuple(notes)), orders
 
     for hdu in hdul:
-        if isinstance(hdu, fits.BinTableHDU) and hdu.data is not None:
+        if isinstance(hdu, fits.BinTableHDU) and _has_data(hdu):
             cols = {c.name.upper(): c for c in hdu.columns}
             if any(n in cols for n in WAVE_NAMES) and "FLUX" in cols:
                 return _load_fits_table(hdu, cols, primary, path, medium=medium, arrays=arrays)
 
     for hdu in hdul:
-        if isinstance(hdu, fits.PrimaryHDU | fits.ImageHDU) and hdu.data is not None:
+        if isinstance(hdu, fits.PrimaryHDU | fits.ImageHDU) and _has_data(hdu):
             if hdu.header.get("CTYPE1") is not None:
                 return _load_wcs_1d(hdul, hdu, primary, path, medium=medium, arrays=arrays)
             break
@@ -306,16 +313,16 @@ def wcs_wavelengths(header, n: int, path: str = "") -> tuple[np.ndarray, str]:
 def _load_wcs_1d(hdul, hdu, primary, path: str, *, medium: str | None, arrays: bool):
     get = _header_getter(hdu.header, primary)
     notes: list[str] = []
-    data = np.asarray(hdu.data, dtype=float)
-    if data.ndim != 1:
-        data = np.squeeze(data)
-        if data.ndim != 1:
-            raise SpectrumFormatError(f"image with CTYPE1 has shape {hdu.data.shape}, expected 1-D", path=path)
-    wave, wcs_medium = wcs_wavelengths(hdu.header, data.size, path)
+    shape = [int(hdu.header.get(f"NAXIS{k}", 0)) for k in range(1, int(hdu.header["NAXIS"]) + 1)]
+    if shape[0] < 2 or any(n != 1 for n in shape[1:]):
+        raise SpectrumFormatError(f"image with CTYPE1 has shape {tuple(shape[::-1])}, expected 1-D along axis 1",
+                                  path=path)
+    wave, wcs_medium = wcs_wavelengths(hdu.header, shape[0], path)
     file_medium = medium or wcs_medium
     obs = _observation(get, path, "wcs-1d", file_medium, notes)
     if not arrays:
         return obs, []
+    data = np.asarray(hdu.data, dtype=float).ravel()
     var = _uncertainty_from_ext(hdul, data, path, notes)
     orders = _build_orders([(wave, data, var, None)], file_medium, path, notes)
     return replace(obs, notes=tuple(notes)), orders
