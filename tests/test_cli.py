@@ -240,3 +240,19 @@ def test_python_dash_m_and_version():
                          check=False)
     assert res.returncode == 0
     assert res.stdout.startswith("lineshift ")
+
+
+def test_python_api_returns_quantities(sample_set):
+    import astropy.units as u
+
+    from lineshift.api import measure
+
+    directory, mask, rows = sample_set
+    table = measure([os.path.join(directory, r["file"]) for r in rows[:2]], mask,
+                    velocity_range=(-100 * u.km / u.s, 100 * u.km / u.s))
+    assert table["rv"].unit == u.m / u.s
+    assert table["bjd_tdb"].unit == u.day
+    assert list(table.colnames[: len(COLUMNS)]) == COLUMNS
+    assert np.all(np.isfinite(table["rv"].value))
+    with pytest.raises(Exception, match="velocity Quantity"):
+        measure([os.path.join(directory, rows[0]["file"])], mask, velocity_step=5 * u.s)
