@@ -65,7 +65,14 @@ def plot_rv_time(rows: list[dict], outdir: str, name: str = "rv_time.png") -> st
     ref = float(np.floor(t.min()))
     mean = np.average(rv, weights=1 / err**2)
     fig, ax = plt.subplots(figsize=(7, 4))
-    ax.errorbar(t - ref, rv - mean, err, fmt="o", ms=4, color="tab:blue", ecolor="0.5", capsize=2)
+    layouts = np.array([r.get("layout") or "" for r in ok])
+    colours = ("tab:blue", "tab:orange", "tab:green", "tab:purple", "tab:brown")
+    for k, layout in enumerate(sorted(set(layouts))):
+        sel = layouts == layout
+        ax.errorbar(t[sel] - ref, rv[sel] - mean, err[sel], fmt="o", ms=4, color=colours[k % len(colours)],
+                    ecolor="0.6", capsize=2, label=layout or "unknown layout")
+    if len(set(layouts)) > 1:
+        ax.legend(fontsize=8, title="layout (zero points may differ)", title_fontsize=8)
     ax.set_xlabel(f"BJD_TDB - {ref:.0f} (d)")
     ax.set_ylabel(f"rv - {mean / 1e3:.4f} km/s (m/s)")
     objects = sorted({r.get("object") or "" for r in ok} - {""})
