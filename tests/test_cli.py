@@ -256,3 +256,18 @@ def test_python_api_returns_quantities(sample_set):
     assert np.all(np.isfinite(table["rv"].value))
     with pytest.raises(Exception, match="velocity Quantity"):
         measure([os.path.join(directory, rows[0]["file"])], mask, velocity_step=5 * u.s)
+
+
+def test_velocity_range_and_step_overrides(sample_set, tmp_path):
+    directory, mask, rows = sample_set
+    f = os.path.join(directory, rows[0]["file"])
+    a, b, c = tmp_path / "a.csv", tmp_path / "b.csv", tmp_path / "c.csv"
+    assert main(["measure", f, "--mask", mask, "-o", str(a), "-q"]) == 0
+    assert main(["measure", f, "--mask", mask, "-o", str(b), "-q", "--velocity-range", "0,30000",
+                 "--velocity-step", "400"]) == 0
+    ra, rb = pd.read_csv(a), pd.read_csv(b)
+    # the same velocity within a fraction of its error (different grid, same data)
+    assert abs(ra.rv[0] - rb.rv[0]) < 0.5 * ra.rv_err[0]
+    # a range that excludes the star finds no peak there
+    assert main(["measure", f, "--mask", mask, "-o", str(c), "-q", "--velocity-range", "-250000,-150000"]) == 1
+    assert pd.read_csv(c).status[0] in ("no correlation peak", "peak fit failed")

@@ -354,6 +354,12 @@ _COMMANDS = {"measure": _cmd_measure, "inspect": _cmd_inspect, "simulate": _cmd_
 def main(argv: list[str] | None = None) -> int:
     """Run the command line; returns the exit code."""
     parser = _build_parser()
+    argv = list(sys.argv[1:] if argv is None else argv)
+    # "--velocity-range -250000,-150000": a value starting with '-' is still the option's value
+    for k in range(len(argv) - 1):
+        if argv[k] == "--velocity-range" and argv[k + 1].startswith("-"):
+            argv[k:k + 2] = [f"--velocity-range={argv[k + 1]}", ""]
+    argv = [a for a in argv if a != ""]
     try:
         args = parser.parse_args(argv)
     except SystemExit as exc:
