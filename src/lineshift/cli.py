@@ -354,12 +354,16 @@ _COMMANDS = {"measure": _cmd_measure, "inspect": _cmd_inspect, "simulate": _cmd_
 def main(argv: list[str] | None = None) -> int:
     """Run the command line; returns the exit code."""
     parser = _build_parser()
-    argv = list(sys.argv[1:] if argv is None else argv)
+    raw = list(sys.argv[1:] if argv is None else argv)
     # "--velocity-range -250000,-150000": a value starting with '-' is still the option's value
-    for k in range(len(argv) - 1):
-        if argv[k] == "--velocity-range" and argv[k + 1].startswith("-"):
-            argv[k:k + 2] = [f"--velocity-range={argv[k + 1]}", ""]
-    argv = [a for a in argv if a != ""]
+    argv, k = [], 0
+    while k < len(raw):
+        if raw[k] == "--velocity-range" and k + 1 < len(raw) and raw[k + 1].startswith("-"):
+            argv.append(f"--velocity-range={raw[k + 1]}")
+            k += 2
+        else:
+            argv.append(raw[k])
+            k += 1
     try:
         args = parser.parse_args(argv)
     except SystemExit as exc:
