@@ -61,6 +61,10 @@ def _build_parser() -> argparse.ArgumentParser:
     m.add_argument("--no-telluric", action="store_true", help="keep mask lines in telluric bands")
     m.add_argument("--ephemeris", metavar="PATH", help="local JPL .bsp ephemeris (default: astropy builtin)")
     m.add_argument("--workers", type=int, default=1, metavar="N", help="local worker processes (default 1)")
+    m.add_argument("--store", metavar="FILE.sqlite",
+                   help="results store: keep every result, skip inputs already measured with these settings")
+    m.add_argument("--scheduler", metavar="ADDRESS",
+                   help="run the measurements on an existing Dask cluster (e.g. tcp://127.0.0.1:8786)")
     m.add_argument("--plots", metavar="DIR", help="write a CCF plot per spectrum and rv_time.png here")
     m.add_argument("-q", "--quiet", action="store_true", help="no progress or summary on stderr")
     m.add_argument("--debug", action="store_true", help="show tracebacks of unexpected errors")
@@ -187,11 +191,21 @@ def _cmd_measure(args) -> int:
     paths = expand_inputs(args.spectra)
     if not paths:
         raise ConfigError("no input spectra found")
+    inputs = {os.path.abspath(p) for p in paths} | {os.path.abspath(mask_path)}
     if args.output:
         table_format(args.output)
-        out_abs = os.path.abspath(args.output)
-        if any(os.path.abspath(p) == out_abs for p in paths) or out_abs == os.path.abspath(mask_path):
+        if os.path.abspath(args.output) in inputs:
             raise ConfigError(f"output {args.output!r} is one of the inputs: refusing to overwrite it")
+    if args.store and (os.path.abspath(args.store) in inputs
+                       or (args.output and os.path.abspath(args.store) == os.path.abspath(args.output))):
+        raise ConfigError(f"store {args.store!r} is one of the inputs or the output table")
+    if args.scheduler and not args.scheduler.startswith(("tcp://", "tls://", "inproc://", "ucx://")):
+        raise ConfigError(f"--scheduler {args.scheduler!r}: expected an address like tcp://HOST:PORT")
+    store = None
+    if args.store:
+        from .store import ResultStore
+
+        store = ResultStore(args.store)
     progress = _Progress(len(paths), args.quiet)
     failures: list[str] = []
 
@@ -200,7 +214,7 @@ def _cmd_measure(args) -> int:
         if row["status"] != "ok":
             failures.append(row["file"])
             progress.write(f"lineshift: {row.get('_error') or row['status']}")
-        elif args.plots:
+        elif args.plots and "_ccf" in row:
             from .plots import plot_ccf
 
             os.makedirs(args.plots, exist_ok=True)
@@ -211,9 +225,12 @@ def _cmd_measure(args) -> int:
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         try:
-            rows = measure_files(paths, mask, settings, workers=args.workers, on_row=on_row, report=report)
+            rows = measure_files(paths, mask, settings, workers=args.workers, scheduler=args.scheduler,
+                                 store=store, on_row=on_row, report=report)
         finally:
             progress.close()
+            if store is not None:
+                store.close()
     for w in {str(w.message): w for w in caught}.values():
         print(f"lineshift: warning: {str(w.message).splitlines()[0]}", file=sys.stderr)
     meta = provenance(mask, settings, report)
@@ -225,7 +242,8 @@ def _cmd_measure(args) -> int:
         plot_rv_time(rows, args.plots)
     if not args.quiet:
         n_ok = len(rows) - len(failures)
-        print(f"lineshift: {n_ok} of {len(rows)} spectra measured; {report.mask_note}"
+        skipped = f" ({report.skipped} already in the store, skipped)" if store is not None else ""
+        print(f"lineshift: {n_ok} of {len(rows)} spectra have a velocity{skipped}; {report.mask_note}"
               + (f"; table written to {args.output}" if args.output else ""), file=sys.stderr)
     return 1 if failures else 0
 

@@ -176,7 +176,12 @@ def _load(path: str, *, medium: str | None, arrays: bool):
         text = raw.decode("utf-8")
     except UnicodeDecodeError:
         raise SpectrumFormatError("is neither FITS nor a text table", path=path) from None
-    return _load_text(text, path, medium=medium, arrays=arrays)
+    try:
+        return _load_text(text, path, medium=medium, arrays=arrays)
+    except LineshiftError:
+        raise
+    except Exception as exc:  # a surprise inside a damaged text file is still a format error
+        raise SpectrumFormatError(f"could not be interpreted ({_short(exc)})", path=path) from None
 
 
 # --------------------------------------------------------------------------- FITS

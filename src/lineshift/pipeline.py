@@ -28,7 +28,8 @@ import numpy as np
 
 from . import __version__, airvac
 from .barycentric import BarycentricResult, Target, barycentric_batch, compose_velocity
-from .errors import ConfigError, LineshiftError, MeasurementError
+from .errors import ConfigError, LineshiftError, MeasurementError, SpectrumFormatError
+from .executors import run_tasks
 from .linelists import read_telluric_bands
 from .loaders import load_spectrum, read_observation
 from .mask_engine import SearchSettings, measure_mask
@@ -99,6 +100,7 @@ class Task:
     berv: float
     bjd_tdb: float
     notes: tuple[str, ...]
+    input_hash: str = ""
 
 
 @dataclass(frozen=True)
@@ -214,54 +216,6 @@ def measure_task(task: Task, ctx: Context) -> dict:
     return row
 
 
-# --------------------------------------------------------------------------- executors
-
-_WORKER_CTX: Context | None = None
-
-
-def _init_worker(ctx: Context) -> None:
-    global _WORKER_CTX
-    _WORKER_CTX = ctx
-    warnings.simplefilter("ignore")
-
-
-def _run_in_worker(task: Task) -> dict:
-    assert _WORKER_CTX is not None
-    return measure_task(task, _WORKER_CTX)
-
-
-def run_tasks(tasks: list[Task], ctx: Context, *, workers: int = 1, max_in_flight: int | None = None
-              ) -> Iterator[tuple[Task, dict]]:
-    """Run tasks, yielding (task, row) as each finishes.  ``workers > 1`` uses local processes.
-
-    At most ``max_in_flight`` tasks are submitted ahead, so memory stays bounded for any batch size.
-    """
-    if workers <= 1:
-        for t in tasks:
-            yield t, measure_task(t, ctx)
-        return
-    import concurrent.futures as cf
-    import multiprocessing as mp
-
-    limit = max_in_flight or 4 * workers
-    with cf.ProcessPoolExecutor(max_workers=workers, mp_context=mp.get_context("spawn"),
-                                initializer=_init_worker, initargs=(ctx,)) as pool:
-        pending: dict = {}
-        it = iter(tasks)
-        for t in it:
-            pending[pool.submit(_run_in_worker, t)] = t
-            if len(pending) >= limit:
-                break
-        while pending:
-            done, _ = cf.wait(pending, return_when=cf.FIRST_COMPLETED)
-            for fut in done:
-                t = pending.pop(fut)
-                yield t, fut.result()
-                nxt = next(it, None)
-                if nxt is not None:
-                    pending[pool.submit(_run_in_worker, nxt)] = nxt
-
-
 # --------------------------------------------------------------------------- driver
 
 @dataclass
@@ -270,10 +224,12 @@ class BatchReport:
 
     mask_note: str = ""
     n_lines_mask: int = 0
-    warnings: list[str] = field(default_factory=list)
+    skipped: int = 0            # rows taken from the results store
+    settings_hash: str = ""
 
 
 def measure_files(paths: list[str], mask: LineMask, settings: MeasureSettings, *, workers: int = 1,
+                  scheduler: str | None = None, store=None,
                   on_row: Callable[[dict], None] | None = None, report: BatchReport | None = None
                   ) -> list[dict]:
     """Measure many spectra; one row per path, in the order given.
@@ -287,6 +243,11 @@ def measure_files(paths: list[str], mask: LineMask, settings: MeasureSettings, *
     settings : MeasureSettings
     workers : int
         Local processes (1: in this process).
+    scheduler : str, optional
+        Address of a Dask distributed scheduler to run the measurements on.
+    store : ResultStore, optional
+        Rows already in the store (same file content, same settings) are taken from it and not
+        measured again; each new row is committed to it as it arrives (by this process only).
     on_row : callable, optional
         Called with each row as soon as it exists (failed surveys first, then measurements in
         completion order), e.g. to commit it to a store or draw its plot.
@@ -307,6 +268,16 @@ def measure_files(paths: list[str], mask: LineMask, settings: MeasureSettings, *
             on_row(row)
 
     observations = survey(paths, settings)
+    hashes: list[str] = [""] * len(paths)
+    if store is not None:
+        from .store import content_hash
+
+        for i, o in enumerate(observations):
+            if isinstance(o, Observation):
+                try:
+                    hashes[i] = content_hash(paths[i])
+                except OSError as exc:
+                    observations[i] = SpectrumFormatError(f"cannot be read ({exc.strerror or exc})", path=paths[i])
     ok_idx = [i for i, o in enumerate(observations) if isinstance(o, Observation)]
     bary = barycentric_batch([observations[i] for i in ok_idx], target=settings.target,
                              ephemeris=settings.ephemeris)
@@ -315,8 +286,10 @@ def measure_files(paths: list[str], mask: LineMask, settings: MeasureSettings, *
         if not isinstance(o, Observation):
             emit(i, {**_empty_row(paths[i], None, o.status, str(o), settings), "_error": str(o)})
     for i, b in zip(ok_idx, bary, strict=True):
+        if not isinstance(observations[i], Observation):
+            continue
         if isinstance(b, BarycentricResult):
-            tasks.append(Task(i, paths[i], b.berv, b.bjd_tdb, b.notes))
+            tasks.append(Task(i, paths[i], b.berv, b.bjd_tdb, b.notes, hashes[i]))
         else:
             obs = observations[i]
             emit(i, {**_empty_row(paths[i], obs, b.status, str(b), settings), "_error": str(b)})
@@ -334,7 +307,23 @@ def measure_files(paths: list[str], mask: LineMask, settings: MeasureSettings, *
     use_mask, note = effective_mask(mask, settings, bervs, estimate_systemic)
     report.mask_note, report.n_lines_mask = note, len(use_mask)
     ctx = Context(use_mask, settings)
-    for task, row in run_tasks(tasks, ctx, workers=workers):
+    todo = tasks
+    if store is not None:
+        from .store import settings_hash
+
+        key = report.settings_hash = settings_hash(settings, use_mask)
+        todo = []
+        for t in tasks:
+            row = store.get(t.input_hash, key)
+            if row is None:
+                todo.append(t)
+                continue
+            row.update(file=t.path)  # the path as given this time (the content is the same)
+            report.skipped += 1
+            emit(t.index, row)
+    for task, row in run_tasks(todo, ctx, workers=workers, scheduler=scheduler):
+        if store is not None:
+            store.put(task.input_hash, report.settings_hash, row)
         emit(task.index, row)
     return [r for r in rows if r is not None]
 

@@ -1,0 +1,203 @@
+"""Results store, resumable batches, a real Dask cluster on 127.0.0.1, bounded submission."""
+
+import os
+import signal
+import socket
+import sqlite3
+import subprocess
+import sys
+import time
+
+import pandas as pd
+import pytest
+from astropy.io import fits
+
+from lineshift.cli import main
+from lineshift.store import ResultStore
+
+
+def _copies(src: str, directory, n: int) -> list[str]:
+    """n files with the same spectrum but distinct content (a header card differs)."""
+    out = []
+    with fits.open(src) as hdul:
+        for k in range(n):
+            hdul[0].header["COPYNUM"] = (k, "distinct content for the store")
+            p = os.path.join(directory, f"copy_{k:03d}.fits")
+            hdul.writeto(p, overwrite=True)
+            out.append(p)
+    return out
+
+
+@pytest.fixture
+def echelle_file(sample_set):
+    directory, mask, rows = sample_set
+    return os.path.join(directory, next(r["file"] for r in rows if r["layout"] == "multi-order")), mask
+
+
+def test_store_skips_what_is_there(sample_set, tmp_path, capfd):
+    directory, mask, rows = sample_set
+    store = tmp_path / "s.sqlite"
+    a, b = tmp_path / "a.csv", tmp_path / "b.csv"
+    assert main(["measure", directory, "--mask", mask, "-o", str(a), "--store", str(store)]) == 0
+    assert "(0 already in the store, skipped)" in capfd.readouterr().err
+    with ResultStore(str(store)) as s:
+        assert len(s) == len(rows)
+    assert main(["measure", directory, "--mask", mask, "-o", str(b), "--store", str(store)]) == 0
+    assert f"({len(rows)} already in the store, skipped)" in capfd.readouterr().err
+    pd.testing.assert_frame_equal(pd.read_csv(a), pd.read_csv(b))
+    # other settings are another key: measured again, both kept
+    c = tmp_path / "c.csv"
+    assert main(["measure", directory, "--mask", mask, "-o", str(c), "--store", str(store),
+                 "--box-width", "1500"]) == 0
+    assert "(0 already in the store, skipped)" in capfd.readouterr().err
+    with ResultStore(str(store)) as s:
+        assert len(s) == 2 * len(rows)
+
+
+def test_store_finds_moved_files_by_content(echelle_file, tmp_path, capfd):
+    src, mask = echelle_file
+    store = str(tmp_path / "s.sqlite")
+    first = tmp_path / "one"
+    first.mkdir()
+    files = _copies(src, first, 3)
+    assert main(["measure", *files, "--mask", mask, "--store", store, "-q", "-o", str(tmp_path / "t1.csv")]) == 0
+    moved = tmp_path / "two"
+    os.rename(first, moved)
+    out = tmp_path / "t2.csv"
+    assert main(["measure", str(moved), "--mask", mask, "--store", store, "-o", str(out)]) == 0
+    assert "(3 already in the store, skipped)" in capfd.readouterr().err
+    assert all(f.startswith(str(moved)) for f in pd.read_csv(out).file)
+
+
+def test_killed_run_loses_nothing_and_resumes(echelle_file, tmp_path):
+    src, mask = echelle_file
+    work = tmp_path / "many"
+    work.mkdir()
+    files = _copies(src, work, 150)
+    store = tmp_path / "s.sqlite"
+    out = tmp_path / "t.csv"
+    cmd = [sys.executable, "-m", "lineshift", "measure", str(work), "--mask", mask, "--store", str(store),
+           "-o", str(out)]
+    proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    done = 0
+    deadline = time.monotonic() + 120
+    while time.monotonic() < deadline and proc.poll() is None:
+        if store.exists():
+            try:
+                with sqlite3.connect(store, timeout=1) as db:
+                    done = db.execute("SELECT COUNT(*) FROM results").fetchone()[0]
+            except sqlite3.OperationalError:
+                done = 0
+            if done >= 20:
+                break
+        time.sleep(0.01)
+    proc.send_signal(signal.SIGKILL)
+    proc.wait()
+    assert not out.exists()  # no half-written table
+    with ResultStore(str(store)) as s:
+        committed = len(s)
+    assert 20 <= committed < len(files), committed
+    res = subprocess.run(cmd, capture_output=True, text=True, check=False)
+    assert res.returncode == 0, res.stderr
+    assert f"({committed} already in the store, skipped)" in res.stderr
+    table = pd.read_csv(out)
+    assert sorted(table.file) == sorted(files)            # every row exactly once
+    assert (table.status == "ok").all()
+    with ResultStore(str(store)) as s:
+        assert len(s) == len(files)
+
+
+def test_store_that_is_not_a_store_is_a_usage_error(echelle_file, tmp_path, capfd):
+    src, mask = echelle_file
+    bogus = tmp_path / "bogus.sqlite"
+    bogus.write_text("not a database at all, just text" * 100)
+    assert main(["measure", src, "--mask", mask, "--store", str(bogus), "-o", str(tmp_path / "t.csv")]) == 2
+    assert "not a lineshift results store" in capfd.readouterr().err
+    assert not (tmp_path / "t.csv").exists()
+
+
+def _free_port() -> int:
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+@pytest.fixture
+def dask_cluster(tmp_path):
+    pytest.importorskip("distributed")
+    port = _free_port()
+    address = f"tcp://127.0.0.1:{port}"
+    env = {**os.environ, "DASK_DISTRIBUTED__WORKER__DAEMON": "False"}
+    bindir = os.path.dirname(sys.executable)
+    dask = os.path.join(bindir, "dask")
+    launcher = [dask] if os.path.exists(dask) else [sys.executable, "-m", "dask"]
+    log = open(tmp_path / "dask.log", "w")  # noqa: SIM115 - closed in teardown
+    sched = subprocess.Popen([*launcher, "scheduler", "--host", "127.0.0.1", "--port", str(port),
+                              "--no-dashboard"], stdout=log, stderr=log, env=env)
+    worker = subprocess.Popen([*launcher, "worker", address, "--nworkers", "2", "--nthreads", "1",
+                               "--no-dashboard", "--host", "127.0.0.1"], stdout=log, stderr=log, env=env)
+    try:
+        from distributed import Client
+
+        deadline = time.monotonic() + 60
+        while True:
+            try:
+                with Client(address, timeout="5s", set_as_default=False) as c:
+                    if len(c.scheduler_info()["workers"]) >= 2:
+                        break
+            except OSError:
+                pass
+            if time.monotonic() > deadline:
+                raise RuntimeError("Dask cluster did not start")
+            time.sleep(0.5)
+        yield address
+    finally:
+        for p in (worker, sched):
+            p.terminate()
+            try:
+                p.wait(timeout=20)
+            except subprocess.TimeoutExpired:
+                p.kill()
+        log.close()
+
+
+def test_dask_cluster_gives_identical_velocities(sample_set, tmp_path, dask_cluster):
+    directory, mask, _ = sample_set
+    local, remote = tmp_path / "local.csv", tmp_path / "dask.csv"
+    assert main(["measure", directory, "--mask", mask, "-o", str(local), "-q"]) == 0
+    assert main(["measure", directory, "--mask", mask, "-o", str(remote), "-q", "--scheduler", dask_cluster]) == 0
+    pd.testing.assert_frame_equal(pd.read_csv(local), pd.read_csv(remote), check_exact=True)
+
+
+def test_unreachable_scheduler_is_a_usage_error(echelle_file, tmp_path, capfd):
+    pytest.importorskip("distributed")
+    src, mask = echelle_file
+    address = f"tcp://127.0.0.1:{_free_port()}"
+    assert main(["measure", src, "--mask", mask, "-o", str(tmp_path / "t.csv"), "--scheduler", address]) == 2
+    assert "cannot reach the Dask scheduler" in capfd.readouterr().err
+    assert main(["measure", src, "--mask", mask, "--scheduler", "127.0.0.1:8786"]) == 2
+
+
+def test_executor_keeps_a_bounded_number_in_flight(echelle_file, tmp_path):
+    from lineshift.executors import run_tasks
+    from lineshift.linelists import read_mask
+    from lineshift.pipeline import Context, MeasureSettings, Task
+
+    src, mask = echelle_file
+    files = _copies(src, tmp_path, 12)
+    ctx = Context(read_mask(mask), MeasureSettings())
+    pulled = []
+
+    def tasks():
+        for k, f in enumerate(files):
+            pulled.append(k)
+            yield Task(k, f, 0.0, 2461000.0, ())
+
+    limit = 3
+    received = 0
+    for _task, row in run_tasks(tasks(), ctx, workers=2, max_in_flight=limit):
+        received += 1
+        assert row["status"] == "ok"
+        # never more than `limit` tasks submitted beyond those already handed back
+        assert len(pulled) - received <= limit
+    assert received == len(files)
