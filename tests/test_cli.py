@@ -78,7 +78,7 @@ def test_plots(sample_set, tmp_path):
     assert sum(n.endswith("_ccf.png") for n in names) == 3
 
 
-def _make_bad_files(directory, good_file):
+def _make_bad_files(directory, good_file, wcs_file):
     """One file per kind of bad input; returns {kind: path}."""
     bad = {}
     with open(good_file, "rb") as fh:
@@ -116,6 +116,14 @@ def _make_bad_files(directory, good_file):
         variant("outside.fits", lambda h: h["WAVE"].data.__setitem__(slice(None), h["WAVE"].data * 1.6))
         variant("noise.fits", lambda h: h["FLUX"].data.__setitem__(
             slice(None), np.random.default_rng(1).normal(1000, 30, h["FLUX"].data.shape)))
+        variant("negerr.fits", lambda h: h["ERR"].data.__setitem__(
+            slice(None), np.where(np.arange(h["ERR"].data.size).reshape(h["ERR"].data.shape) % 2, -1.0, np.nan)))
+    with fits.open(wcs_file) as hdul:
+        h = fits.HDUList([hdu.copy() for hdu in hdul])
+        h[0].header["CDELT1"] = -abs(h[0].header["CDELT1"])
+        p = os.path.join(directory, "reversed.fits")
+        h.writeto(p)
+        bad["reversed.fits"] = p
     return bad
 
 
@@ -126,7 +134,8 @@ def test_bad_inputs_never_stop_the_batch(sample_set, tmp_path, capfd):
     good = [r for r in rows if r["layout"] == "multi-order"]
     for r in rows:
         shutil.copy(os.path.join(directory, r["file"]), work)
-    bad = _make_bad_files(str(work), os.path.join(directory, good[0]["file"]))
+    wcs = next(r for r in rows if r["layout"] == "wcs-1d")
+    bad = _make_bad_files(str(work), os.path.join(directory, good[0]["file"]), os.path.join(directory, wcs["file"]))
     out = tmp_path / "mixed.csv"
     code = main(["measure", str(work), "--mask", mask, "-o", str(out), "-q"])
     captured = capfd.readouterr()
@@ -141,7 +150,8 @@ def test_bad_inputs_never_stop_the_batch(sample_set, tmp_path, capfd):
                 "allnan.fits": "no valid flux", "notime.fits": "missing time", "notarget.fits": "missing target",
                 "nosite.fits": "missing site", "badwave.fits": "bad wavelengths",
                 "flatwave.fits": "bad wavelengths", "baderr.fits": "no valid uncertainties",
-                "outside.fits": "outside mask range", "noise.fits": "no correlation peak"}
+                "outside.fits": "outside mask range", "noise.fits": "no correlation peak",
+                "negerr.fits": "no valid uncertainties", "reversed.fits": "bad wavelengths"}
     assert set(expected) == set(bad)
     err_lines = [ln for ln in captured.err.splitlines() if ln.strip()]
     for name, status in expected.items():
@@ -157,6 +167,8 @@ def test_bad_inputs_never_stop_the_batch(sample_set, tmp_path, capfd):
     (["measure", "{tmp}/empty_dir", "--mask", "{mask}"], "no input spectra"),
     (["measure", "{dir}", "--mask", "{mask}", "--velocity-range", "5,1"], "LO must be below HI"),
     (["measure", "{dir}", "--mask", "{mask}", "--config", "{tmp}/bad.toml"], "unknown key"),
+    (["measure", "{dir}", "--mask", "{mask}", "--config", "{tmp}/broken.toml"], "not valid TOML"),
+    (["measure", "{dir}", "--mask", "{tmp}/bad.toml"], "needs a header row with columns wavelength and weight"),
     (["measure", "{dir}", "--mask", "{mask}", "-o", "{tmp}/out.xlsx"], "unknown table extension"),
     (["measure", "{dir}", "--mask", "{mask}", "--method", "psychic"], "invalid choice"),
 ])
@@ -164,6 +176,7 @@ def test_usage_errors_exit_2_and_write_nothing(sample_set, tmp_path, capfd, argv
     directory, mask, _ = sample_set
     (tmp_path / "empty_dir").mkdir()
     (tmp_path / "bad.toml").write_text("[measure]\nvelocity_rnage = [1, 2]\n")
+    (tmp_path / "broken.toml").write_text("[measure\nmask = 'x'\n")
     argv = [a.format(dir=directory, mask=mask, tmp=tmp_path) for a in argv]
     before = set(os.listdir(tmp_path))
     assert main(argv) == 2
@@ -271,3 +284,19 @@ def test_velocity_range_and_step_overrides(sample_set, tmp_path):
     # a range that excludes the star finds no peak there
     assert main(["measure", f, "--mask", mask, "-o", str(c), "-q", "--velocity-range", "-250000,-150000"]) == 1
     assert pd.read_csv(c).status[0] in ("no correlation peak", "peak fit failed")
+
+
+def test_progress_reports(capsys, monkeypatch):
+    from lineshift import cli
+
+    quiet = cli._Progress(100, quiet=True)
+    for _ in range(100):
+        quiet.update()
+    assert capsys.readouterr().err == ""
+    clock = iter(float(t) for t in range(0, 10000, 7))
+    monkeypatch.setattr(cli.time, "monotonic", lambda: next(clock))
+    log = cli._Progress(100, quiet=False)  # stderr is not a terminal under pytest: one-line log
+    for _ in range(10):
+        log.update()
+    err = capsys.readouterr().err.splitlines()
+    assert err and all(line.startswith("lineshift: ") and "spectra" in line and "/s" in line for line in err)
