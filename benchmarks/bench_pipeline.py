@@ -16,7 +16,7 @@ import os
 for _var in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
     os.environ[_var] = "1"  # one core: set before numpy is imported
 
-import argparse  # noqa: E402
+import argparse
 import resource
 import shutil
 import statistics
@@ -66,7 +66,8 @@ def _case(density: float, tmp: str, repeats: int, batch: int) -> dict:
         "load (read + validate)": _median_ms(lambda: load_spectrum(path), repeats),
         "prepare (continuum, weights)": _median_ms(lambda: prepare_spectrum(spectrum), repeats),
         "correlate + fit + errors": _median_ms(lambda: measure_mask(orders, mask, settings, berv=berv), repeats),
-        "barycentric (per spectrum, batch of 100)": _median_ms(lambda: barycentric_batch(obs), max(3, repeats // 5)) / 100,
+        "barycentric (per spectrum, batch of 100)":
+            _median_ms(lambda: barycentric_batch(obs), max(3, repeats // 5)) / 100,
     }
     res["sum of stages"] = sum(v for k, v in res.items() if k != "mask lines")
     files = []

@@ -16,8 +16,8 @@ import numpy as np
 
 sys.path.insert(0, os.path.join(os.path.dirname(__file__), "..", "tests"))
 
-from injection import recover  # noqa: E402
-from test_injection import SCENARIOS  # noqa: E402
+from injection import recover
+from test_injection import SCENARIOS
 
 
 def main(argv=None) -> int:

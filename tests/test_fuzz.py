@@ -20,7 +20,8 @@ from lineshift.mask_engine import SearchSettings, measure_mask
 from lineshift.model import LineMask, Observation, Order, Spectrum
 from lineshift.prepare import prepare_spectrum
 
-FUZZ = settings(max_examples=int(os.environ.get("LINESHIFT_FUZZ_EXAMPLES", "120")), deadline=None, suppress_health_check=[HealthCheck.too_slow])
+FUZZ = settings(max_examples=int(os.environ.get("LINESHIFT_FUZZ_EXAMPLES", "120")), deadline=None,
+                suppress_health_check=[HealthCheck.too_slow])
 _DIR = tempfile.mkdtemp(prefix="lineshift-fuzz-")
 
 

@@ -10,8 +10,8 @@ from dataclasses import replace
 
 import numpy as np
 import pytest
-from injection import recover
 
+from injection import recover
 from lineshift import simulate as sim
 
 SCENARIOS = {

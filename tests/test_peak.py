@@ -33,5 +33,5 @@ def test_gain_predicts_response_to_small_changes():
 def test_pure_noise_is_not_a_peak():
     rng = np.random.default_rng(4)
     v = np.linspace(-10e3, 10e3, 41)
-    with pytest.raises(MeasurementError, match="no correlation peak|did not converge"):
+    with pytest.raises(MeasurementError, match=r"no correlation peak|did not converge"):
         fit_gaussian(v, 1.0 + 1e-3 * rng.normal(size=v.size))

@@ -169,8 +169,11 @@ def test_dask_cluster_gives_identical_velocities(sample_set, tmp_path, dask_clus
     pd.testing.assert_frame_equal(pd.read_csv(local), pd.read_csv(remote), check_exact=True)
 
 
-def test_unreachable_scheduler_is_a_usage_error(echelle_file, tmp_path, capfd):
+def test_unreachable_scheduler_is_a_usage_error(echelle_file, tmp_path, capfd, monkeypatch):
     pytest.importorskip("distributed")
+    from lineshift import executors
+
+    monkeypatch.setattr(executors, "CONNECT_TIMEOUT", "2s")
     src, mask = echelle_file
     address = f"tcp://127.0.0.1:{_free_port()}"
     assert main(["measure", src, "--mask", mask, "-o", str(tmp_path / "t.csv"), "--scheduler", address]) == 2

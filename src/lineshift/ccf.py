@@ -86,7 +86,7 @@ def _edge_layout(velocity: np.ndarray, box_width: float) -> tuple[np.ndarray, in
         r = box_width / step
         uniform = np.allclose(np.diff(velocity), step, rtol=1e-9, atol=1e-9)
         if uniform and abs(r - round(r)) < 1e-9 and round(r) >= 1:
-            r = int(round(r))
+            r = round(r)
             return velocity[0] - half + step * np.arange(m + r), r
     return np.concatenate((velocity - half, velocity + half)), 0
 

@@ -44,7 +44,8 @@ def _build_parser() -> argparse.ArgumentParser:
                        description="Measure barycentric radial velocities (m/s, IAU cz_B) and BJD_TDB.")
     m.add_argument("spectra", nargs="+", metavar="SPECTRUM", help="files, directories or globs")
     m.add_argument("--mask", help="line mask CSV (rest vacuum wavelengths, weights)")
-    m.add_argument("-o", "--output", metavar="TABLE", help="output table (.csv, .ecsv, .fits, .parquet); stdout if absent")
+    m.add_argument("-o", "--output", metavar="TABLE",
+                   help="output table (.csv, .ecsv, .fits, .parquet); stdout if absent")
     m.add_argument("--config", metavar="TOML", help="configuration file")
     m.add_argument("--ra", help="target RA (degrees or hh:mm:ss), overrides headers")
     m.add_argument("--dec", help="target Dec (degrees or dd:mm:ss), overrides headers")

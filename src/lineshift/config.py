@@ -75,7 +75,7 @@ def load_config(path: str) -> dict[str, dict]:
             if types is None:
                 raise ConfigError(f"unknown key {key!r} in [{section}] (known: {', '.join(SCHEMA[section])})",
                                   path=path)
-            if isinstance(value, bool) and bool not in types or not isinstance(value, types):
+            if (isinstance(value, bool) and bool not in types) or not isinstance(value, types):
                 names = "/".join(t.__name__ for t in types)
                 raise ConfigError(f"[{section}] {key} = {value!r} should be {names}", path=path)
             out[section][key] = value

@@ -17,6 +17,9 @@ __all__ = ["run_tasks"]
 
 _WORKER_CTX = None
 
+#: How long to try reaching a Dask scheduler before giving up.
+CONNECT_TIMEOUT = "15s"
+
 
 def _init_worker(ctx) -> None:
     global _WORKER_CTX
@@ -67,7 +70,7 @@ def _dask(tasks, ctx, address: str, limit: int) -> Iterator:
     from .pipeline import measure_task
 
     try:
-        client = Client(address, timeout="15s", set_as_default=False)
+        client = Client(address, timeout=CONNECT_TIMEOUT, set_as_default=False)
     except (OSError, TimeoutError, ValueError) as exc:
         raise ConfigError(f"cannot reach the Dask scheduler at {address} ({exc})") from None
     try:

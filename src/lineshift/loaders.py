@@ -296,7 +296,8 @@ def wcs_wavelengths(header, n: int, path: str = "") -> tuple[np.ndarray, str]:
     except KeyError as exc:
         raise SpectrumFormatError(f"spectral WCS lacks {exc.args[0]}", path=path, status="bad wavelengths") from None
     except (TypeError, ValueError):
-        raise SpectrumFormatError("spectral WCS keywords are not numbers", path=path, status="bad wavelengths") from None
+        raise SpectrumFormatError("spectral WCS keywords are not numbers", path=path,
+                                  status="bad wavelengths") from None
     if not (np.isfinite(crval) and np.isfinite(delt) and np.isfinite(crpix)):
         raise SpectrumFormatError("spectral WCS keywords are not finite", path=path, status="bad wavelengths")
     if delt == 0:

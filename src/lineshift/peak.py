@@ -81,7 +81,10 @@ def fit_gaussian(v: np.ndarray, ccf: np.ndarray, *, guess: tuple[float, float, f
         i = int(np.argmin(y))
         amp = c0 - y[i]
         below = np.flatnonzero(y < c0 - 0.5 * amp)
-        sigma = max((v[below[-1]] - v[below[0]]) / FWHM_PER_SIGMA, abs(v[1] - v[0])) if below.size else (v[-1] - v[0]) / 8
+        if below.size:
+            sigma = max((v[below[-1]] - v[below[0]]) / FWHM_PER_SIGMA, abs(v[1] - v[0]))
+        else:
+            sigma = (v[-1] - v[0]) / 8
         guess = (c0, amp, float(v[i]), float(sigma))
     scale = np.array([1.0, 1.0, guess[3], guess[3]])
 

@@ -21,7 +21,7 @@ from __future__ import annotations
 import glob
 import os
 import warnings
-from collections.abc import Callable, Iterable, Iterator
+from collections.abc import Callable, Iterable
 from dataclasses import dataclass, field, replace
 
 import numpy as np
@@ -82,7 +82,7 @@ class MeasureSettings:
     overrides: Overrides = field(default_factory=Overrides)
     target: Target = field(default_factory=Target)
     ephemeris: str | None = None
-    telluric_bands: str | None | bool = None     # None: shipped list; False: none; str: a file
+    telluric_bands: str | bool | None = None     # None: shipped list; False: none; str: a file
     systemic_velocity: float | None = None
     keep_ccf: bool = False
 

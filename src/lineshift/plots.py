@@ -10,10 +10,10 @@ import os
 import matplotlib
 
 matplotlib.use("Agg")
-import matplotlib.pyplot as plt  # noqa: E402
-import numpy as np  # noqa: E402
+import matplotlib.pyplot as plt
+import numpy as np
 
-from .table import atomic_path  # noqa: E402
+from .table import atomic_path
 
 __all__ = ["plot_ccf", "plot_rv_time"]
 
