@@ -162,7 +162,8 @@ def test_bad_inputs_never_stop_the_batch(sample_set, tmp_path, capfd):
 
 
 @pytest.mark.parametrize(("argv", "message"), [
-    (["measure", "{dir}"], "no line mask"),
+    (["measure", "{dir}", "--mask", "{mask}", "--workers", "0"], "--workers must be at least 1"),
+    (["measure", "{dir}", "--mask", "{mask}", "--save-mask", "{tmp}/m.csv"], "only applies when no --mask"),
     (["measure", "{dir}", "--mask", "{tmp}/missing.csv"], "cannot be read"),
     (["measure", "{tmp}/empty_dir", "--mask", "{mask}"], "no input spectra"),
     (["measure", "{dir}", "--mask", "{mask}", "--velocity-range", "5,1"], "LO must be below HI"),

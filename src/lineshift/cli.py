@@ -43,7 +43,9 @@ def _build_parser() -> argparse.ArgumentParser:
     m = sub.add_parser("measure", help="spectra to barycentric velocities",
                        description="Measure barycentric radial velocities (m/s, IAU cz_B) and BJD_TDB.")
     m.add_argument("spectra", nargs="+", metavar="SPECTRUM", help="files, directories or globs")
-    m.add_argument("--mask", help="line mask CSV (rest vacuum wavelengths, weights)")
+    m.add_argument("--mask", help="line mask CSV (rest vacuum wavelengths, weights); without one, a relative "
+                                  "mask is built from the inputs")
+    m.add_argument("--save-mask", metavar="CSV", help="write the mask built from the inputs here")
     m.add_argument("-o", "--output", metavar="TABLE",
                    help="output table (.csv, .ecsv, .fits, .parquet); stdout if absent")
     m.add_argument("--config", metavar="TOML", help="configuration file")
@@ -70,6 +72,29 @@ def _build_parser() -> argparse.ArgumentParser:
     m.add_argument("-q", "--quiet", action="store_true", help="no progress or summary on stderr")
     m.add_argument("--debug", action="store_true", help="show tracebacks of unexpected errors")
 
+    k = sub.add_parser("mask", help="build a line mask from spectra of one star",
+                       description="Co-add spectra in the star's frame, find and fit its lines, write a mask.")
+    k.add_argument("spectra", nargs="+", metavar="SPECTRUM", help="files, directories or globs")
+    k.add_argument("-o", "--output", metavar="MASK", required=True, help="mask CSV to write")
+    k.add_argument("--start-mask", metavar="CSV", help="measure first-pass velocities with this mask")
+    k.add_argument("--anchor", metavar="LABLIST", nargs="?", const="shipped",
+                   help="shift to laboratory wavelengths (default list: line_lists/lab_lines_optical.csv)")
+    k.add_argument("--min-depth", type=float, default=0.05, help="minimum line depth (default 0.05)")
+    k.add_argument("--blend-fraction", type=float, default=1.0,
+                   help="reject lines with a neighbour closer than this x FWHM (default 1.0)")
+    k.add_argument("--max-width-ratio", type=float, default=1.25,
+                   help="reject lines wider than this x the median FWHM as unresolved blends (default 1.25)")
+    k.add_argument("--max-centre-error", type=float, default=100.0, metavar="M_S",
+                   help="reject lines whose fitted centre error exceeds this (default 100 m/s)")
+    k.add_argument("--iterations", type=int, default=4, help="co-add / measure iterations at most (default 4)")
+    k.add_argument("--plot", metavar="PNG", help="plot of the template with the kept lines")
+    for opt in ("--config", "--ra", "--dec", "--site", "--telluric", "--ephemeris"):
+        k.add_argument(opt)
+    k.add_argument("--medium", choices=("air", "vacuum"))
+    k.add_argument("--no-telluric", action="store_true")
+    k.add_argument("-q", "--quiet", action="store_true")
+    k.add_argument("--debug", action="store_true")
+
     i = sub.add_parser("inspect", help="what the loader understood from a file",
                        description="Print what lineshift understood from each file and what is missing.")
     i.add_argument("spectra", nargs="+", metavar="FILE")
@@ -84,6 +109,8 @@ def _build_parser() -> argparse.ArgumentParser:
     s.add_argument("--seed", type=int, default=1)
     s.add_argument("--snr", type=float, help="override SNR per pixel at the blaze peak")
     s.add_argument("--mask", metavar="CSV", help="also write the star's line mask here")
+    s.add_argument("--lab-lines", metavar="LIST", nargs="?", const="shipped",
+                   help="plant these laboratory lines in the star (default: line_lists/lab_lines_optical.csv)")
     s.add_argument("--no-compress", action="store_true", help="write plain files instead of .gz")
     s.add_argument("-q", "--quiet", action="store_true")
     s.add_argument("--debug", action="store_true")
@@ -176,6 +203,8 @@ class _Progress:
 
 
 def _cmd_measure(args) -> int:
+    from dataclasses import replace
+
     from . import pipeline
     from .config import load_config
     from .linelists import read_mask
@@ -186,13 +215,11 @@ def _cmd_measure(args) -> int:
     cfg = load_config(args.config) if args.config else {"target": {}, "site": {}, "measure": {}}
     settings = _settings_from(args, cfg)
     mask_path = args.mask or cfg["measure"].get("mask")
-    if not mask_path:
-        raise ConfigError("no line mask given (--mask CSV or [measure] mask in the config)")
-    mask = read_mask(mask_path)
+    mask = read_mask(mask_path) if mask_path else None
     paths = expand_inputs(args.spectra)
     if not paths:
         raise ConfigError("no input spectra found")
-    inputs = {os.path.abspath(p) for p in paths} | {os.path.abspath(mask_path)}
+    inputs = {os.path.abspath(p) for p in paths} | ({os.path.abspath(mask_path)} if mask_path else set())
     if args.output:
         table_format(args.output)
         if os.path.abspath(args.output) in inputs:
@@ -202,6 +229,26 @@ def _cmd_measure(args) -> int:
         raise ConfigError(f"store {args.store!r} is one of the inputs or the output table")
     if args.scheduler and not args.scheduler.startswith(("tcp://", "tls://", "inproc://", "ucx://")):
         raise ConfigError(f"--scheduler {args.scheduler!r}: expected an address like tcp://HOST:PORT")
+    if args.save_mask and os.path.abspath(args.save_mask) in inputs:
+        raise ConfigError(f"--save-mask {args.save_mask!r} is one of the inputs: refusing to overwrite it")
+    if mask is None:
+        from .mask_builder import build_mask, write_mask_file
+
+        try:
+            built = build_mask(paths, settings)
+        except LineshiftError as exc:
+            print(f"lineshift: no --mask given and none could be built from the inputs: {exc.reason}",
+                  file=sys.stderr)
+            return 1
+        mask = replace(built.mask, source="built from the inputs (relative zero point)")
+        if not args.quiet:
+            print(f"lineshift: no --mask given: built a relative mask of {len(mask)} lines from "
+                  f"{len(built.paths)} of the inputs; velocities are differential (arbitrary zero point)",
+                  file=sys.stderr)
+        if args.save_mask:
+            write_mask_file(mask, args.save_mask)
+    elif args.save_mask:
+        raise ConfigError("--save-mask only applies when no --mask is given")
     store = None
     if args.store:
         from .store import ResultStore
@@ -348,18 +395,24 @@ def _cmd_simulate(args) -> int:
         if args.snr is not None:
             ins = replace(ins, snr=args.snr)
         plan.append((ins, n))
+    star = sim.DEMO_STAR
+    if args.lab_lines:
+        from .linelists import DEFAULT_LAB_LINES, read_lab_lines
+
+        lab, _ = read_lab_lines(DEFAULT_LAB_LINES if args.lab_lines == "shipped" else args.lab_lines)
+        star = sim.with_lab_lines(star, lab.wavelength)
     total = sum(n for _, n in plan)
     bar = None
     if not args.quiet and sys.stderr.isatty():
         from tqdm import tqdm
 
         bar = tqdm(total=total, unit="spectrum", file=sys.stderr)
-    rows = sim.simulate_set(args.outdir, plan, seed=args.seed, compress=not args.no_compress,
+    rows = sim.simulate_set(args.outdir, plan, star=star, seed=args.seed, compress=not args.no_compress,
                             progress=bar.update if bar else None)
     if bar:
         bar.close()
     if args.mask:
-        sim.write_mask(sim.DEMO_STAR, args.mask)
+        sim.write_mask(star, args.mask)
     if not args.quiet:
         print(f"lineshift: {len(rows)} spectra of {sim.DEMO_STAR.name} written to {args.outdir}; truth in "
               f"{os.path.join(args.outdir, 'truth', 'truth.csv')}" + (f"; mask {args.mask}" if args.mask else ""),
@@ -367,7 +420,69 @@ def _cmd_simulate(args) -> int:
     return 0
 
 
-_COMMANDS = {"measure": _cmd_measure, "inspect": _cmd_inspect, "simulate": _cmd_simulate}
+def _cmd_mask(args) -> int:
+    from .config import load_config
+    from .linefind import LineSettings
+    from .linelists import DEFAULT_LAB_LINES, read_mask
+    from .mask_builder import MaskBuildSettings, build_mask, write_mask_file
+    from .pipeline import expand_inputs
+
+    cfg = load_config(args.config) if args.config else {"target": {}, "site": {}, "measure": {}}
+    for name in ("object", "velocity_range", "velocity_step", "box_width", "method", "systemic_velocity",
+                 "workers", "plots"):
+        setattr(args, name, None if name != "workers" else 1)
+    settings = _settings_from(args, cfg)
+    if not 0 < args.min_depth < 1:
+        raise ConfigError("--min-depth must lie between 0 and 1")
+    if args.blend_fraction < 0 or args.max_centre_error <= 0 or args.iterations < 0:
+        raise ConfigError("--blend-fraction must be >= 0, --max-centre-error > 0, --iterations >= 0")
+    paths = expand_inputs(args.spectra)
+    if not paths:
+        raise ConfigError("no input spectra found")
+    if os.path.abspath(args.output) in {os.path.abspath(p) for p in paths}:
+        raise ConfigError(f"output {args.output!r} is one of the inputs: refusing to overwrite it")
+    start = read_mask(args.start_mask) if args.start_mask else None
+    anchor = None
+    if args.anchor:
+        anchor = DEFAULT_LAB_LINES if args.anchor == "shipped" else args.anchor
+        from .linelists import read_lab_lines
+
+        read_lab_lines(anchor)  # a bad list is a usage error, before any work
+    if args.max_width_ratio <= 1:
+        raise ConfigError("--max-width-ratio must exceed 1")
+    build = MaskBuildSettings(lines=LineSettings(min_depth=args.min_depth, blend_fraction=args.blend_fraction,
+                                                 max_centre_error=args.max_centre_error,
+                                                 max_width_ratio=args.max_width_ratio),
+                              iterations=args.iterations)
+    try:
+        res = build_mask(paths, settings, build, start_mask=start, anchor=anchor)
+    except LineshiftError as exc:
+        print(f"lineshift: cannot build a mask: {exc.reason}", file=sys.stderr)
+        return 1
+    for _path, reason in res.failures:
+        print(f"lineshift: {reason}", file=sys.stderr)
+    write_mask_file(res.mask, args.output)
+    if args.plot:
+        from .plots import plot_template
+
+        plot_template(res.template, res.found, args.plot)
+    if not args.quiet:
+        c = res.found.counts()
+        print(f"lineshift: mask of {c['kept']} lines written to {args.output} from {len(res.paths)} spectra; "
+              f"rejected {c['blend']} blend, {c['edge']} edge/bad pixel, {c['telluric']} telluric, "
+              f"{c['centre']} centre error, {c['shallow']} shallow, {c['fit']} fit", file=sys.stderr)
+        print(f"lineshift: expected photon-limited error {res.error_per_snr:.0f} m/s per unit SNR "
+              f"({res.error_per_snr / 100:.2f} m/s at SNR 100)", file=sys.stderr)
+        if res.anchor is None:
+            print("lineshift: zero point is relative (the co-added template's frame)", file=sys.stderr)
+        else:
+            a = res.anchor
+            print(f"lineshift: anchored to {a.n_matched} laboratory lines: offset {a.offset:+.1f} +- "
+                  f"{a.offset_err:.1f} m/s removed", file=sys.stderr)
+    return 1 if res.failures else 0
+
+
+_COMMANDS = {"measure": _cmd_measure, "mask": _cmd_mask, "inspect": _cmd_inspect, "simulate": _cmd_simulate}
 
 
 def main(argv: list[str] | None = None) -> int:

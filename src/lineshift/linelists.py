@@ -18,11 +18,13 @@ from . import airvac
 from .errors import MaskError
 from .model import LineMask
 
-__all__ = ["DEFAULT_TELLURIC", "read_mask", "read_telluric_bands"]
+__all__ = ["DEFAULT_LAB_LINES", "DEFAULT_TELLURIC", "read_lab_lines", "read_mask", "read_telluric_bands"]
 
 _HERE = os.path.dirname(os.path.abspath(__file__))
 #: Telluric band list shipped with the package (a copy of ``line_lists/telluric_bands.csv``).
 DEFAULT_TELLURIC = os.path.join(_HERE, "data", "telluric_bands.csv")
+#: Laboratory list of strong optical lines (a copy of ``line_lists/lab_lines_optical.csv``).
+DEFAULT_LAB_LINES = os.path.join(_HERE, "data", "lab_lines_optical.csv")
 
 
 def _read_csv(path: str) -> tuple[list[str], list[dict[str, str]], str]:
@@ -113,3 +115,22 @@ def read_telluric_bands(path: str | None = None) -> np.ndarray:
     if medium == "air":
         lo, hi = airvac.air_to_vacuum(lo), airvac.air_to_vacuum(hi)
     return np.column_stack((lo, hi))
+
+
+def read_lab_lines(path: str) -> tuple[LineMask, np.ndarray]:
+    """Laboratory line list: (lines as a unit-weight mask in vacuum, uncertainties in Angstrom).
+
+    Columns: ``wavelength`` (vacuum unless ``# medium: air``), optional ``species`` and
+    ``uncertainty`` (Angstrom; 0 when absent).
+    """
+    path = os.fspath(path)
+    comments, rows, medium = _read_csv(path)
+    if not rows or "wavelength" not in rows[0]:
+        raise MaskError("needs a header row with a wavelength column", path=path)
+    lam = _floats(rows, "wavelength", path)
+    unc = _floats(rows, "uncertainty", path) if "uncertainty" in rows[0] else np.zeros(lam.size)
+    if medium == "air":
+        lam = airvac.air_to_vacuum(lam)
+    order = np.argsort(lam)
+    species = tuple((rows[i].get("species") or "") for i in order)
+    return LineMask(lam[order], np.ones(lam.size), species, path, tuple(comments)), unc[order]

@@ -15,7 +15,7 @@ import numpy as np
 
 from .table import atomic_path
 
-__all__ = ["plot_ccf", "plot_rv_time"]
+__all__ = ["plot_ccf", "plot_rv_time", "plot_template"]
 
 
 def _save(fig, path: str) -> str:
@@ -81,3 +81,27 @@ def plot_rv_time(rows: list[dict], outdir: str, name: str = "rv_time.png") -> st
     ax.grid(alpha=0.3)
     fig.tight_layout()
     return _save(fig, os.path.join(outdir, name))
+
+
+def plot_template(template, found, path: str, *, panels: int = 4, width: float = 12.0) -> str:
+    """The co-added template with the kept lines (red) and rejected ones (grey): an overview and
+    ``panels`` zooms of ``width`` Angstrom spread over the range."""
+    fig, axes = plt.subplots(panels + 1, 1, figsize=(9, 2.0 * (panels + 1)))
+    w, f = template.wave, template.flux
+    axes[0].plot(w, f, lw=0.3, color="0.2")
+    kept = found.kept
+    axes[0].set_title(f"co-added template ({template.n_spectra} spectra): {int(kept.sum())} lines kept, "
+                      f"{int((~kept).sum())} rejected", fontsize=9)
+    axes[0].set_ylim(0, 1.15)
+    centres = np.linspace(w[0] + width, w[-1] - width, panels)
+    for ax, c in zip(axes[1:], centres, strict=True):
+        sel = (w > c - width / 2) & (w < c + width / 2)
+        ax.plot(w[sel], f[sel], lw=0.7, color="0.2")
+        for lam, k in zip(found.wavelength, kept, strict=True):
+            if c - width / 2 < lam < c + width / 2:
+                ax.axvline(lam, color="tab:red" if k else "0.7", lw=0.8, ymax=0.12 if k else 0.06)
+        ax.set_xlim(c - width / 2, c + width / 2)
+        ax.set_ylim(0, 1.15)
+    axes[-1].set_xlabel("vacuum wavelength, template frame (A)")
+    fig.tight_layout()
+    return _save(fig, path)

@@ -31,7 +31,8 @@ from .model import C_MS
 from .orbit import Orbit, radial_velocity
 
 __all__ = ["DEMO_SITE", "DEMO_STAR", "INSTRUMENTS", "Exposure", "Instrument", "Site", "Star",
-           "StarModel", "observe", "photon_noise_bound", "to_spectrum", "write_mask", "write_observation"]
+           "StarModel", "observe", "photon_noise_bound", "to_spectrum", "with_lab_lines", "write_mask",
+           "write_observation"]
 
 
 @dataclass(frozen=True)
@@ -430,6 +431,17 @@ def _write_text(obs: Exposure, path: str, cards) -> str:
             writer.writerow([f"{w:.7f}", f"{f:.3f}", f"{e:.3f}"])
     os.replace(tmp, path)
     return path
+
+
+def with_lab_lines(star: Star, wavelengths, depth: float = 0.6) -> Star:
+    """The star with laboratory lines (vacuum Angstrom) of the given depth added to its own lines.
+
+    Lines are planted at exactly the laboratory wavelengths (the simulated star has no gravitational
+    redshift or convective shifts), so a mask anchored to them has a known absolute zero point.
+    """
+    lo, hi = star.wave_range
+    extra = tuple((float(w), depth) for w in wavelengths if lo < w < hi)
+    return replace(star, extra_lines=star.extra_lines + extra)
 
 
 def write_mask(star: Star, path: str, *, min_depth: float = 0.05) -> str:
