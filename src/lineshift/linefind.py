@@ -6,12 +6,12 @@ constant, all lines at once by batched Gauss-Newton with the template's variance
 is the fit's (sqrt of the covariance diagonal).
 
 Rejections, each counted by reason:
+  ``edge``      the line's window touches an order edge, a bad pixel, or a point without coverage;
   ``fit``       the fit did not converge to a dip of sensible width inside its window;
   ``shallow``   the fitted depth is below ``min_depth`` (the raw minimum was not);
   ``telluric``  a telluric band reaches the line for some BERV of the inputs;
   ``blend``     another minimum within ``blend_fraction`` x FWHM of the line (both are rejected), or
                 a line wider than ``max_width_ratio`` x the median FWHM (an unresolved blend);
-  ``edge``      the line's window touches an order edge, a bad pixel, or a point without coverage;
   ``centre``    the centre error exceeds ``max_centre_error`` (m/s).
 
 Weights (velocity information, in the spirit of the quality factor of Bouchy, Pepe & Queloz 2001):
@@ -26,6 +26,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from .coadd import Template
+from .linefit import batched_fit, gaussian_points
 from .model import C_MS, LineMask
 from .peak import FWHM_PER_SIGMA
 from .prepare import reject_telluric_lines
@@ -77,45 +78,6 @@ def _local_minima(flux: np.ndarray) -> np.ndarray:
     return np.flatnonzero((f[1:-1] < f[:-2]) & (f[1:-1] <= f[2:])) + 1
 
 
-def _batched_gauss_fit(y: np.ndarray, w: np.ndarray, x: np.ndarray, p0: np.ndarray, n_iter: int = 30):
-    """Gauss-Newton for many independent 4-parameter fits ``c0 - a exp(-(x-mu)^2/(2 s^2))``.
-
-    y, w : (n, k) data and inverse variances; x : (k,) abscissa; p0 : (n, 4).
-    Returns the parameters, their covariance matrices and a convergence flag.
-    """
-    p = p0.copy()
-    ok = np.ones(len(p), dtype=bool)
-    for _ in range(n_iter):
-        c0, a, mu, s = (p[:, i:i + 1] for i in range(4))
-        z = (x[None, :] - mu) / s
-        e = np.exp(-0.5 * z * z)
-        r = y - (c0 - a * e)
-        J = np.stack((np.ones_like(e), -e, -a * e * z / s, -a * e * z * z / s), axis=2)
-        JW = J * w[:, :, None]
-        A = np.einsum("nki,nkj->nij", JW, J)
-        b = np.einsum("nki,nk->ni", JW, r)
-        # per-line regularisation, so a line without data cannot make the whole batch singular
-        eps = 1e-10 * np.trace(A, axis1=1, axis2=2) + 1e-300
-        dp = np.linalg.solve(A + eps[:, None, None] * np.eye(4)[None], b[..., None])[..., 0]
-        ok &= np.isfinite(dp).all(axis=1)
-        dp = np.where(np.isfinite(dp), dp, 0.0)
-        # damp steps that would flip the width or move the centre by more than a width
-        scale = np.minimum(1.0, 0.5 * np.abs(p[:, 3]) / np.maximum(np.abs(dp[:, 2]), 1e-300))
-        p = p + dp * scale[:, None]
-        p[:, 3] = np.abs(p[:, 3])
-        if np.all(np.abs(dp[:, 2]) < 1e-6 * np.abs(p[:, 3]) + 1e-9):
-            break
-    c0, a, mu, s = (p[:, i:i + 1] for i in range(4))
-    z = (x[None, :] - mu) / s
-    e = np.exp(-0.5 * z * z)
-    J = np.stack((np.ones_like(e), -e, -a * e * z / s, -a * e * z * z / s), axis=2)
-    A = np.einsum("nki,nkj->nij", J * w[:, :, None], J)
-    with np.errstate(all="ignore"):
-        cov = np.linalg.pinv(A)
-    ok &= np.all(np.isfinite(p), axis=1)
-    return p, cov, ok
-
-
 def find_lines(template: Template, settings: LineSettings, *, fwhm_guess: float,
                bands: np.ndarray | None = None, berv_range: tuple[float, float] = (0.0, 0.0),
                rv_star: float = 0.0) -> FoundLines:
@@ -155,7 +117,7 @@ def find_lines(template: Template, settings: LineSettings, *, fwhm_guess: float,
     sigma0 = fwhm_guess / FWHM_PER_SIGMA
     p0 = np.column_stack((np.ones(cand.size), 1.0 - flux[cand], np.zeros(cand.size), np.full(cand.size, sigma0)))
     if cand.size:
-        p, cov, ok = _batched_gauss_fit(y, w, x, p0)
+        p, cov, _, ok = batched_fit(gaussian_points(x), p0, y, w, positive=(3,))
     else:
         p, cov, ok = np.zeros((0, 4)), np.zeros((0, 4, 4)), np.zeros(0, dtype=bool)
     c0, a, mu, s = p.T if cand.size else (np.zeros(0),) * 4
@@ -165,8 +127,11 @@ def find_lines(template: Template, settings: LineSettings, *, fwhm_guess: float,
     fwhm = FWHM_PER_SIGMA * s
     depth = np.where(c0 > 0, a / np.where(c0 > 0, c0, 1.0), 0.0)
     reason = np.full(cand.size, "", dtype=object)
-    fitbad = ~ok | (a <= 0) | (c0 <= 0) | (np.abs(mu) > x[-1]) | (s < 0.25 * sigma0) | (s > 4 * sigma0)
-    reason[fitbad] = "fit"
+    # a fit far wider than the lines is not a failure but an unresolved blend (the width test below)
+    fitbad = ~ok | (a <= 0) | (c0 <= 0) | (np.abs(mu) > x[-1]) | (s < 0.25 * sigma0)
+    edge = ~np.all(good | ~inside, axis=1) | ~np.all(inside, axis=1)
+    reason[edge] = "edge"  # a fit to a window that is not fully covered means nothing
+    reason[(reason == "") & fitbad] = "fit"
     reason[(reason == "") & (depth < settings.min_depth)] = "shallow"
     if bands is not None and bands.size and cand.size:
         m = LineMask(lam, np.ones(cand.size))
@@ -176,8 +141,9 @@ def find_lines(template: Template, settings: LineSettings, *, fwhm_guess: float,
     # blends: another minimum (even a weak one) within blend_fraction x FWHM of this line
     pos = np.log(template.wave)
     lnw = pos[weak]
-    own = np.log(np.where(reason == "fit", template.wave[cand], lam))
-    width = settings.blend_fraction * np.where(reason == "fit", fwhm_guess, fwhm) / C_MS
+    unfit = (reason == "fit") | (reason == "edge")
+    own = np.log(np.where(unfit, template.wave[cand], lam))
+    width = settings.blend_fraction * np.where(unfit, fwhm_guess, fwhm) / C_MS
     lo = np.searchsorted(lnw, own - width, side="left")
     hi = np.searchsorted(lnw, own + width, side="right")
     blend = (hi - lo) > 1
@@ -185,8 +151,6 @@ def find_lines(template: Template, settings: LineSettings, *, fwhm_guess: float,
     if ok_w.any():
         blend |= fwhm > settings.max_width_ratio * np.median(fwhm[ok_w])
     reason[(reason == "") & blend] = "blend"
-    edge = ~np.all(good | ~inside, axis=1) | ~np.all(inside, axis=1)
-    reason[(reason == "") & edge] = "edge"
     reason[(reason == "") & ~(mu_err <= settings.max_centre_error)] = "centre"
     kept = reason == ""
     weight = np.zeros(cand.size)
