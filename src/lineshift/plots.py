@@ -15,7 +15,7 @@ import numpy as np
 
 from .table import atomic_path
 
-__all__ = ["plot_ccf", "plot_rv_time", "plot_template"]
+__all__ = ["plot_ccf", "plot_drift", "plot_order_offsets", "plot_residuals", "plot_rv_time", "plot_template"]
 
 
 def _save(fig, path: str) -> str:
@@ -103,5 +103,69 @@ def plot_template(template, found, path: str, *, panels: int = 4, width: float =
         ax.set_xlim(c - width / 2, c + width / 2)
         ax.set_ylim(0, 1.15)
     axes[-1].set_xlabel("vacuum wavelength, template frame (A)")
+    fig.tight_layout()
+    return _save(fig, path)
+
+
+def plot_residuals(lines: list[dict], path: str, title: str = "") -> str:
+    """Line residuals against wavelength, one colour per order (good lines; rejected ones grey)."""
+    fig, ax = plt.subplots(figsize=(9, 4))
+    ok = [r for r in lines if r["status"] == "ok"]
+    bad = [r for r in lines if r["status"] != "ok" and np.isfinite(r["residual"])]
+    if bad:
+        ax.plot([r["wavelength_lab"] for r in bad], [r["residual"] for r in bad], "x", color="0.75", ms=3,
+                label="rejected")
+    if ok:
+        orders = np.array([r["order"] for r in ok])
+        sc = ax.scatter([r["wavelength_lab"] for r in ok], [r["residual"] for r in ok], c=orders, s=8,
+                        cmap="viridis")
+        fig.colorbar(sc, ax=ax, label="order")
+        res = np.array([r["residual"] for r in ok])
+        pad = 0.08 * max(np.ptp(res), 1.0)
+        ax.set_ylim(res.min() - pad, res.max() + pad)  # every good line visible; rejected ones may fall outside
+    ax.axhline(0, color="k", lw=0.5)
+    ax.set_xlabel("laboratory wavelength, vacuum (A)")
+    ax.set_ylabel("residual (m/s)")
+    ax.set_title(title, fontsize=9)
+    if bad:
+        ax.legend(fontsize=8)
+    fig.tight_layout()
+    return _save(fig, path)
+
+
+def plot_order_offsets(orders: list[dict], path: str, title: str = "") -> str:
+    """Per-order offset with its error; flagged orders in red."""
+    fig, ax = plt.subplots(figsize=(9, 3.5))
+    o = np.array([r["order"] for r in orders])
+    off = np.array([r["offset"] for r in orders], dtype=float)
+    err = np.array([r["offset_err"] for r in orders], dtype=float)
+    flag = np.array([r["flagged"] for r in orders], dtype=bool)
+    ax.errorbar(o[~flag], off[~flag], err[~flag], fmt="o", ms=4, color="tab:blue", capsize=2, label="order offset")
+    if flag.any():
+        ax.errorbar(o[flag], off[flag], err[flag], fmt="o", ms=5, color="tab:red", capsize=2, label="flagged")
+    ax.axhline(0, color="k", lw=0.5)
+    ax.set_xlabel("order")
+    ax.set_ylabel("offset (m/s)")
+    ax.set_title(title, fontsize=9)
+    ax.legend(fontsize=8)
+    fig.tight_layout()
+    return _save(fig, path)
+
+
+def plot_drift(rows: list[dict], rate: tuple[float, float, float] | None, path: str) -> str:
+    """Global calibration offset against time, with the fitted linear drift."""
+    t = np.array([r["mjd_mid"] for r in rows], dtype=float)
+    off = np.array([r["offset"] for r in rows], dtype=float)
+    err = np.array([r["offset_err"] for r in rows], dtype=float)
+    hours = (t - t.min()) * 24
+    fig, ax = plt.subplots(figsize=(7, 3.5))
+    ax.errorbar(hours, off, err, fmt="o", ms=4, capsize=2)
+    if rate is not None:
+        x = np.linspace(0, hours.max(), 2)
+        ax.plot(x, rate[2] + rate[0] * x, "-", color="tab:red",
+                label=f"drift {rate[0]:+.2f} +- {rate[1]:.2f} m/s per hour")
+        ax.legend(fontsize=8)
+    ax.set_xlabel(f"hours since MJD {t.min():.4f}")
+    ax.set_ylabel("global offset (m/s)")
     fig.tight_layout()
     return _save(fig, path)

@@ -31,7 +31,8 @@ from .model import C_MS
 from .orbit import Orbit, radial_velocity
 
 __all__ = ["DEMO_SITE", "DEMO_STAR", "INSTRUMENTS", "Exposure", "Instrument", "Site", "Star",
-           "StarModel", "observe", "photon_noise_bound", "to_spectrum", "with_lab_lines", "write_mask",
+           "StarModel", "invented_lamp_lines", "lamp_exposure", "observe", "photon_noise_bound", "to_spectrum",
+           "with_lab_lines", "write_mask",
            "write_observation"]
 
 
@@ -519,3 +520,61 @@ def write_truth(rows: list[dict], path: str, star: Star) -> None:
 def replace_instrument(ins: Instrument, **changes) -> Instrument:
     """A copy of an instrument with some settings changed."""
     return replace(ins, **changes)
+
+
+# --------------------------------------------------------------------------- lamp exposures
+
+DEMO_LAMP = replace(DEMO_STAR, name="LAMP", orbit=None, gamma=0.0)
+
+
+def invented_lamp_lines(lo: float, hi: float, *, density: float = 0.45,
+                        seed: int = 77) -> tuple[np.ndarray, np.ndarray]:
+    """An invented emission-line lamp: vacuum wavelengths (Angstrom) and total counts per line."""
+    rng = np.random.default_rng(seed)
+    n = int(density * (hi - lo))
+    lam = np.sort(rng.uniform(lo, hi, n))
+    counts = 10 ** rng.uniform(4.0, 5.5, n)
+    return lam, counts
+
+
+def lamp_exposure(instrument: Instrument, lines_vac: np.ndarray, counts: np.ndarray, rng: np.random.Generator, *,
+                  mjd_start: float = 61000.7, distortion: dict[int, tuple[float, float]] | None = None,
+                  drift: float = 0.0, background: float = 30.0, noise: bool = True,
+                  absorption: bool = False) -> Exposure:
+    """An emission-line exposure whose wavelength solution is wrong by a known amount.
+
+    The file gets the instrument's nominal wavelengths, but the lamp is imaged as if pixel ``p`` of
+    order ``k`` saw ``lambda_nominal / (1 + r_k(p)/c)`` with ``r_k(p) = offset_k + tilt_k (p/(n-1) - 1/2)
+    + drift`` (m/s; ``distortion = {k: (offset_k, tilt_k)}``).  A line of laboratory wavelength
+    ``lambda`` is then measured at ``lambda (1 + r/c)``: its residual is ``r``, the order's offset is
+    ``offset_k + drift`` and its edge-to-edge slope is ``tilt_k``.  Lines are Gaussians of FWHM
+    lambda/R integrated over the pixels; photon and read noise.  With ``absorption=True`` the lines
+    are taken out of a continuum of ``background`` counts per pixel instead (lines fixed in the
+    observatory frame, like telluric lines in a science exposure); ``counts`` are then the counts
+    each line removes.
+    """
+    distortion = distortion or {}
+    wave = instrument.wavelengths()
+    wave_vac = airvac.air_to_vacuum(wave) if instrument.medium == "air" else wave
+    n = instrument.n_pixels
+    flux = np.full(wave.shape, background, dtype=float)
+    from scipy.special import erf
+
+    for k in range(instrument.n_orders):
+        edges = _edges(wave_vac[k])
+        p = np.arange(n + 1) - 0.5
+        off, tilt = distortion.get(k, (0.0, 0.0))
+        r = off + tilt * (p / (n - 1) - 0.5) + drift
+        true_edges = edges / (1 + r / C_MS)
+        sel = (lines_vac > true_edges[0] - 1) & (lines_vac < true_edges[-1] + 1)
+        lam = lines_vac[sel]
+        sig = lam / instrument.resolving_power / (2 * np.sqrt(2 * np.log(2)))
+        cdf = 0.5 * (1 + erf((true_edges[None, :] - lam[:, None]) / (np.sqrt(2) * sig[:, None])))
+        profile = np.sum(counts[sel, None] * np.diff(cdf, axis=1), axis=0)
+        flux[k] += -profile if absorption else profile
+    rn2 = instrument.read_noise**2
+    observed = flux + rng.normal(size=flux.shape) * np.sqrt(flux + rn2) if noise else flux.copy()
+    err = np.sqrt(np.maximum(observed, 0.0) + rn2)
+    truth = {"mjd_mid_utc": mjd_start + 0.5 * instrument.exptime / 86400, "drift": drift,
+             "distortion": dict(distortion)}
+    return Exposure(instrument, DEMO_LAMP, DEMO_SITE, mjd_start, wave, observed, err, None, truth)

@@ -17,7 +17,7 @@ import pandas as pd
 from .errors import ConfigError
 from .pipeline import COLUMNS, EXTRA_COLUMNS
 
-__all__ = ["FORMATS", "UNITS", "atomic_path", "rows_to_frame", "table_format", "write_table"]
+__all__ = ["FORMATS", "UNITS", "atomic_path", "rows_to_frame", "table_format", "write_frame", "write_table"]
 
 FORMATS = {".csv": "csv", ".ecsv": "ecsv", ".fits": "fits", ".fit": "fits", ".parquet": "parquet"}
 UNITS = {"bjd_tdb": "d", "rv": "m / s", "rv_err": "m / s", "berv": "m / s", "rv_topo": "m / s",
@@ -72,7 +72,9 @@ def _astropy_table(frame: pd.DataFrame, meta: dict):
     t = Table()
     for c in frame.columns:
         col = frame[c]
-        if c in _INT:
+        if pd.api.types.is_bool_dtype(col):
+            t[c] = col.to_numpy(dtype=bool)
+        elif c in _INT:
             t[c] = np.ma.masked_array(col.fillna(-1).to_numpy(dtype=np.int64), mask=col.isna().to_numpy())
         elif pd.api.types.is_numeric_dtype(col):
             t[c] = col.to_numpy(dtype=float)
@@ -85,9 +87,14 @@ def _astropy_table(frame: pd.DataFrame, meta: dict):
 
 
 def write_table(rows: list[dict], path: str | None, meta: dict[str, str] | None = None) -> pd.DataFrame:
-    """Write rows to ``path`` (format from its extension) or CSV on stdout when ``path`` is None."""
+    """Write velocity rows (contract columns first) to ``path``, or CSV on stdout when ``path`` is None."""
+    return write_frame(rows_to_frame(rows), path, meta)
+
+
+def write_frame(frame: pd.DataFrame, path: str | None, meta: dict[str, str] | None = None,
+                name: str = "VELOCITIES") -> pd.DataFrame:
+    """Write any table atomically in the format its extension names (CSV on stdout without a path)."""
     meta = meta or {}
-    frame = rows_to_frame(rows)
     if path is None:
         frame.to_csv(sys.stdout, index=False)
         return frame
@@ -111,7 +118,7 @@ def write_table(rows: list[dict], path: str | None, meta: dict[str, str] | None 
 
             t = _astropy_table(frame, {})
             hdu = fits.table_to_hdu(t)
-            hdu.name = "VELOCITIES"
+            hdu.name = name
             for k, v in meta.items():
                 hdu.header.add_comment(f"{k}: {v}"[:72])
             fits.HDUList([fits.PrimaryHDU(), hdu]).writeto(tmp, overwrite=True)
