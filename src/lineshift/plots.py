@@ -15,7 +15,8 @@ import numpy as np
 
 from .table import atomic_path
 
-__all__ = ["plot_ccf", "plot_drift", "plot_order_offsets", "plot_residuals", "plot_rv_time", "plot_template"]
+__all__ = ["plot_ccf", "plot_drift", "plot_orbit", "plot_order_offsets", "plot_periodogram", "plot_residuals",
+           "plot_rv_time", "plot_template"]
 
 
 def _save(fig, path: str) -> str:
@@ -167,5 +168,62 @@ def plot_drift(rows: list[dict], rate: tuple[float, float, float] | None, path: 
         ax.legend(fontsize=8)
     ax.set_xlabel(f"hours since MJD {t.min():.4f}")
     ax.set_ylabel("global offset (m/s)")
+    fig.tight_layout()
+    return _save(fig, path)
+
+
+def plot_periodogram(pg, path: str) -> str:
+    """GLS power against period, the window function, the strongest peaks and the best peak's aliases."""
+    fig, (ax, aw) = plt.subplots(2, 1, figsize=(8, 5.5), sharex=True, gridspec_kw={"height_ratios": [3, 1]})
+    period = 1 / pg.frequency
+    ax.semilogx(period, pg.power, lw=0.7, color="0.2")
+    for p, level in pg.fap_levels.items():
+        ax.axhline(level, ls=":", lw=0.7, color="tab:gray")
+        ax.text(period.min(), level, f" FAP {p:g}", fontsize=7, va="bottom", color="tab:gray")
+    for k, peak in enumerate(pg.peaks[:5]):
+        ax.plot(peak["period"], peak["power"], "v", color="tab:red" if k == 0 else "tab:orange", ms=6)
+        ax.annotate(f"{peak['period']:.3f} d\nFAP {peak['fap']:.1e}", (peak["period"], peak["power"]),
+                    textcoords="offset points", xytext=(4, 4), fontsize=7)
+    if pg.peaks:
+        for alias in pg.peaks[0]["aliases"]["1 d"] + pg.peaks[0]["aliases"]["1 yr"]:
+            if period.min() <= alias <= period.max():
+                ax.axvline(alias, color="tab:purple", lw=0.6, ls="--")
+        ax.plot([], [], color="tab:purple", ls="--", lw=0.6, label="1 d / 1 yr aliases of the best peak")
+        ax.legend(fontsize=7, loc="upper right")
+    ax.set_ylabel("GLS power")
+    aw.semilogx(period, pg.window, lw=0.7, color="tab:blue")
+    aw.set_ylabel("window")
+    aw.set_xlabel("period (d)")
+    fig.tight_layout()
+    return _save(fig, path)
+
+
+def plot_orbit(series, fit, offsets_model, path: str) -> str:
+    """Phase-folded velocities (data-set offsets removed) with the Keplerian, and residuals in time."""
+    o = fit.orbit
+    use = ~series.flag
+    aligned = series.rv - np.array([fit.gammas.get(d, 0.0) for d in series.dataset])
+    phase = np.mod((series.t - o.time_periastron) / o.period, 1.0)
+    from .orbit import radial_velocity
+
+    ph = np.linspace(0, 1, 500)
+    curve = radial_velocity(o.time_periastron + ph * o.period, o)
+    fig, (ax, ar) = plt.subplots(2, 1, figsize=(8, 6), gridspec_kw={"height_ratios": [3, 2]})
+    colours = ("tab:blue", "tab:orange", "tab:green", "tab:purple", "tab:brown")
+    for k, d in enumerate(series.datasets):
+        m = (series.dataset == d) & use
+        ax.errorbar(phase[m], aligned[m], series.err[m], fmt="o", ms=4, capsize=2, color=colours[k % 5], label=d)
+        ar.errorbar(series.t[m], series.rv[m] - fit.model[m], series.err[m], fmt="o", ms=4, capsize=2,
+                    color=colours[k % 5])
+    if (~use).any():
+        ax.plot(phase[~use], aligned[~use], "x", color="tab:red", label="flagged")
+    ax.plot(ph, curve, "-", color="k", lw=1)
+    ax.set_xlabel("orbital phase (from periastron)")
+    ax.set_ylabel("rv - gamma (m/s)")
+    ax.set_title(f"P = {o.period:.4f} d, K = {o.semi_amplitude:.2f} m/s, e = {o.eccentricity:.3f}", fontsize=9)
+    ax.legend(fontsize=7)
+    ar.axhline(0, color="k", lw=0.5)
+    ar.set_xlabel("BJD_TDB (d)")
+    ar.set_ylabel(f"residual (m/s), rms {fit.rms:.2f}")
     fig.tight_layout()
     return _save(fig, path)
