@@ -121,7 +121,8 @@ def _build_parser() -> argparse.ArgumentParser:
                        description="Combine measure tables, flag outliers, bin, compute a periodogram, fit a "
                                    "quick Keplerian and export a clean table for orbit fitters.")
     r.add_argument("tables", nargs="+", metavar="TABLE", help="tables written by 'lineshift measure'")
-    r.add_argument("-o", "--output", required=True, metavar="SERIES", help="clean series (.csv, .ecsv, .fits, .parquet)")
+    r.add_argument("-o", "--output", required=True, metavar="SERIES",
+                   help="clean series (.csv, .ecsv, .fits, .parquet)")
     r.add_argument("--fit-orbit", action="store_true", help="fit a Keplerian orbit from the strongest peaks")
     r.add_argument("--stellar-mass", type=float, metavar="MSUN", help="stellar mass for m sin i and a")
     r.add_argument("--stellar-mass-err", type=float, default=0.0, metavar="MSUN")
@@ -746,7 +747,8 @@ def _cmd_series(args) -> int:
                           "file": s.file.astype(str)})
     meta = {"TIME": "bjd_tdb: mid-exposure BJD in TDB (days)",
             "VELOCITY": "rv, rv_err, offset, rv_aligned in m/s; rv is the IAU 2000 Resolution C1 barycentric "
-                        "radial-velocity measure cz_B as measured; rv_aligned = rv - offset (fitted data-set zero point)",
+                        "radial-velocity measure cz_B as measured; rv_aligned = rv - offset "
+                        "(fitted data-set zero point)",
             "FLAGS": "flag = robust outlier (kept, not deleted); flag_reason says why",
             "SOFTWARE": f"lineshift {__version__}"}
     if table_format(args.output) == "csv":
@@ -783,7 +785,8 @@ def _cmd_series(args) -> int:
     return 0
 
 
-_COMMANDS = {"series": _cmd_series, "measure": _cmd_measure, "mask": _cmd_mask, "wavecheck": _cmd_wavecheck, "inspect": _cmd_inspect,
+_COMMANDS = {"series": _cmd_series, "measure": _cmd_measure, "mask": _cmd_mask, "wavecheck": _cmd_wavecheck,
+             "inspect": _cmd_inspect,
              "simulate": _cmd_simulate}
 
 

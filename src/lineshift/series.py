@@ -253,7 +253,7 @@ def _unpack(x, datasets):
 
 
 def _kepler_model(x, t, ds_idx, datasets, t_ref):
-    P, K, e, w, phase, gam = _unpack(x, datasets)
+    P, K, e, w, phase, _ = _unpack(x, datasets)
     tp = t_ref - phase / (2 * np.pi) * P
     g = np.asarray(x[5:])[ds_idx]
     return radial_velocity(t, Orbit(P, K, min(e, 0.99), w, tp)) + g
@@ -265,7 +265,8 @@ def fit_orbit(s: Series, periods: list[float], *, max_iter_jitter: int = 4) -> O
     Parameters are (ln P, K, sqrt(e) cos w, sqrt(e) sin w, mean anomaly at t_ref, gamma per data
     set) for well-behaved least squares.  All starts (periods x eccentricities x phases) are fitted
     with the measurement errors alone and compared by chi-square; the best is then refitted with
-    the jitter estimated by maximum likelihood.  Errors come from the Jacobian at the solution (propagated to P, e, omega, T_peri).
+    the jitter estimated by maximum likelihood.  Errors come from the Jacobian at the solution
+    (propagated to P, e, omega, T_peri).
     """
     use = ~s.flag
     t, y, err, ds = s.t[use], s.rv[use], s.err[use], s.dataset[use]
