@@ -75,6 +75,7 @@ class _OrderTerms:
     r: int                # offset of the end rows (0: separate start/end blocks)
     num: np.ndarray       # (m,)
     den: np.ndarray       # (m,)
+    line_wavelengths: np.ndarray = None  # (k,) rest wavelengths of the lines
 
 
 def _edge_layout(velocity: np.ndarray, box_width: float) -> tuple[np.ndarray, int]:
@@ -132,28 +133,39 @@ class CorrelationData:
         sens = np.atleast_2d(np.asarray(sensitivity, dtype=float)) / self.denominator
         if not self.terms:
             return np.zeros(sens.shape[0]) if np.ndim(sensitivity) == 2 else 0.0
-        out = np.zeros(sens.shape[0])
-        for t in self.terms:
-            n = t.order.flux.size
-            m = sens.shape[1]
-            i = np.minimum(t.edges_x.astype(np.intp), n - 1).ravel()
-            f = (t.edges_x.ravel() - i)
-            # per-edge weights are separable: (combined sensitivity of the edge) x (line weight)
-            if t.r:
-                e = np.zeros((sens.shape[0], m + t.r))
-                e[:, t.r:] += sens
-                e[:, :m] -= sens
-            else:
-                e = np.concatenate((-sens, sens), axis=1)
-            qv = t.order.weight * t.order.weight * t.order.var
-            for k in range(sens.shape[0]):
-                a = np.multiply.outer(t.weights, e[k]).ravel()
-                cnt = np.bincount(i, a, minlength=n)       # _cum(x) = sum_{p < i} g_p + frac g_i
-                below = np.cumsum(cnt[::-1])[::-1]
-                h = np.bincount(i, a * f, minlength=n)
-                h[:-1] += below[1:]
-                out[k] += float(np.dot(h * h, qv))
+        out = np.sum([self._term_variance(t, sens) for t in self.terms], axis=0)
         return out if np.ndim(sensitivity) == 2 else float(out[0])
+
+    def order_variances(self, sensitivities: np.ndarray) -> np.ndarray:
+        """Variance of ``sensitivities[k] @ order_ccf_k`` for each contributing order k (same order
+        as :meth:`order_ccf`), from that order's pixels and its own denominator."""
+        sens = np.atleast_2d(sensitivities)
+        return np.array([self._term_variance(t, sens[k:k + 1] / t.den)[0] for k, t in enumerate(self.terms)])
+
+    @staticmethod
+    def _term_variance(t: _OrderTerms, sens: np.ndarray) -> np.ndarray:
+        """sum_p h_p^2 var_p for one order, for each row of ``sens`` (already divided by D)."""
+        n = t.order.flux.size
+        m = sens.shape[1]
+        i = np.minimum(t.edges_x.astype(np.intp), n - 1).ravel()
+        f = t.edges_x.ravel() - i
+        # per-edge weights are separable: (combined sensitivity of the edge) x (line weight)
+        if t.r:
+            e = np.zeros((sens.shape[0], m + t.r))
+            e[:, t.r:] += sens
+            e[:, :m] -= sens
+        else:
+            e = np.concatenate((-sens, sens), axis=1)
+        qv = t.order.weight * t.order.weight * t.order.var
+        out = np.empty(sens.shape[0])
+        for k in range(sens.shape[0]):
+            a = np.multiply.outer(t.weights, e[k]).ravel()
+            cnt = np.bincount(i, a, minlength=n)       # _cum(x) = sum_{p < i} g_p + frac g_i
+            below = np.cumsum(cnt[::-1])[::-1]
+            h = np.bincount(i, a * f, minlength=n)
+            h[:-1] += below[1:]
+            out[k] = float(np.dot(h * h, qv))
+        return out
 
 
 def select_lines(order: PreparedOrder, mask: LineMask, v_lo: float, v_hi: float,
@@ -208,7 +220,7 @@ def correlate(orders: list[PreparedOrder], mask: LineMask, velocity: np.ndarray,
         num, den = sums
         if not np.all(den > 0):
             continue
-        terms.append(_OrderTerms(order, w, idx, x, r, num, den))
+        terms.append(_OrderTerms(order, w, idx, x, r, num, den, lam_lines[idx]))
     return CorrelationData(velocity, terms)
 
 

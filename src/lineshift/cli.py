@@ -58,6 +58,9 @@ def _build_parser() -> argparse.ArgumentParser:
     m.add_argument("--velocity-step", type=float, metavar="M_S", help="fine CCF step, m/s (default one pixel)")
     m.add_argument("--box-width", type=float, metavar="M_S", help="mask box full width, m/s (default one pixel)")
     m.add_argument("--method", choices=("mask",), help="velocity engine (default mask)")
+    m.add_argument("--components", type=int, choices=(1, 2), default=1,
+                   help="2: fit two correlation profiles (double-lined binary); rv2... columns for the secondary")
+    m.add_argument("--orders-table", metavar="TABLE", help="per-order velocities (one row per file and order)")
     m.add_argument("--systemic-velocity", type=float, metavar="M_S",
                    help="approximate barycentric velocity for telluric rejection (default: measured)")
     m.add_argument("--telluric", metavar="CSV", help="telluric band list (default: the shipped one)")
@@ -157,6 +160,9 @@ def _build_parser() -> argparse.ArgumentParser:
                    help="lamp wavelength-solution error of an order, m/s (offset, edge-to-edge tilt); repeatable")
     s.add_argument("--lamp-drift", type=float, default=0.0, metavar="M_S_PER_HOUR",
                    help="linear drift of the lamp exposures, which are taken one hour apart")
+    s.add_argument("--binary", action="store_true", help="observe the invented double-lined binary Vessa-12 instead")
+    s.add_argument("--asymmetry", type=float, default=0.0, metavar="A",
+                   help="asymmetric intrinsic lines: sigma (1-A) blueward, (1+A) redward (|A| < 0.5)")
     s.add_argument("--lab-lines", metavar="LIST", nargs="?", const="shipped",
                    help="plant these laboratory lines in the star (default: line_lists/lab_lines_optical.csv)")
     s.add_argument("--no-compress", action="store_true", help="write plain files instead of .gz")
@@ -214,6 +220,7 @@ def _settings_from(args, cfg):
         telluric_bands=telluric,
         systemic_velocity=args.systemic_velocity if args.systemic_velocity is not None else mc.get("systemic_velocity"),
         keep_ccf=bool(args.plots),
+        components=getattr(args, "components", 1) or 1,
     )
 
 
@@ -268,6 +275,10 @@ def _cmd_measure(args) -> int:
     if not paths:
         raise ConfigError("no input spectra found")
     inputs = {os.path.abspath(p) for p in paths} | ({os.path.abspath(mask_path)} if mask_path else set())
+    if args.orders_table:
+        table_format(args.orders_table)
+        if os.path.abspath(args.orders_table) in inputs:
+            raise ConfigError(f"--orders-table {args.orders_table!r} is one of the inputs")
     if args.output:
         table_format(args.output)
         if os.path.abspath(args.output) in inputs:
@@ -330,7 +341,19 @@ def _cmd_measure(args) -> int:
     for w in {str(w.message): w for w in caught}.values():
         print(f"lineshift: warning: {str(w.message).splitlines()[0]}", file=sys.stderr)
     meta = provenance(mask, settings, report)
+    if settings.components == 2:
+        meta["COMPONENTS"] = ("2: rv/fwhm/contrast describe the primary (the deeper profile, kept the same star "
+                              f"across the batch; {report.swaps} exchanged), rv2... the secondary")
     write_table(rows, args.output, meta)
+    if args.orders_table:
+        import pandas as pd
+
+        from .table import write_frame
+
+        per_order = [{"file": r["file"], **o} for r in rows for o in r.get("_orders", [])]
+        write_frame(pd.DataFrame(per_order, columns=["file", "order", "wavelength", "rv", "rv_err", "n_lines"]),
+                    args.orders_table, {"RV": "per-order topocentric velocity (profile width fixed), m/s"},
+                    name="ORDERS")
     if args.plots:
         from .plots import plot_rv_time
 
@@ -446,6 +469,12 @@ def _cmd_simulate(args) -> int:
     if args.lamp:
         return _simulate_lamps(args, plan, sim)
     star = sim.DEMO_STAR
+    if not abs(args.asymmetry) < 0.5:
+        raise ConfigError("--asymmetry must lie between -0.5 and 0.5")
+    if args.asymmetry:
+        from dataclasses import replace as dc_replace
+
+        star = dc_replace(star, asymmetry=args.asymmetry)
     if args.lab_lines:
         from .linelists import DEFAULT_LAB_LINES, read_lab_lines
 
@@ -458,7 +487,8 @@ def _cmd_simulate(args) -> int:
 
         bar = tqdm(total=total, unit="spectrum", file=sys.stderr)
     rows = sim.simulate_set(args.outdir, plan, star=star, seed=args.seed, compress=not args.no_compress,
-                            progress=bar.update if bar else None)
+                            progress=bar.update if bar else None,
+                            binary=sim.DEMO_BINARY if args.binary else None)
     if bar:
         bar.close()
     if args.mask:
@@ -740,6 +770,13 @@ def _cmd_series(args) -> int:
         summary.update(model="sinusoid at the strongest peak", period=best["period"], semi_amplitude=amp,
                        eccentricity=0.0, jitter=resid_jit, offsets=offsets)
     summary["n_flagged"] = int(s.flag.sum())
+    corr = ser.bisector_correlation(s, offsets)
+    if corr is not None:
+        summary["rv_bisector_correlation"] = corr
+    if fit is not None:
+        second = ser.secondary_orbit(s, fit)
+        if second is not None:
+            summary.update(second)
     aligned_offset = np.array([offsets.get(d, 0.0) for d in s.dataset])
     frame = pd.DataFrame({"bjd_tdb": s.t, "rv": s.rv, "rv_err": s.err, "dataset": s.dataset.astype(str),
                           "offset": aligned_offset, "rv_aligned": s.rv - aligned_offset, "flag": s.flag,
@@ -768,6 +805,10 @@ def _cmd_series(args) -> int:
         plot_periodogram(pg, os.path.join(args.plots, "periodogram.png"))
         if fit is not None:
             plot_orbit(s, fit, offsets, os.path.join(args.plots, "orbit.png"))
+        if corr is not None:
+            from .plots import plot_rv_bisector
+
+            plot_rv_bisector(s, offsets, corr, os.path.join(args.plots, "rv_bisector.png"))
     best = pg.peaks[0]
     say(f"strongest peak {best['period']:.4f} d, FAP {best['fap']:.2g} (Baluev 2008); "
         f"next: " + ", ".join(f"{p['period']:.3f} d" for p in pg.peaks[1:4]))
@@ -780,6 +821,14 @@ def _cmd_series(args) -> int:
             say(f"m sin i = {summary['min_mass']:.3f} +- {summary['min_mass_err']:.3f} Jupiter masses (a MINIMUM "
                 f"mass), a = {summary['semi_major_axis']:.4f} au, for M* = {args.stellar_mass:g} Msun")
     say(f"excess scatter (jitter) {resid_jit:.2f} m/s; {int(s.flag.sum())} point(s) flagged")
+    if corr is not None:
+        say(f"velocity vs bisector span: r = {corr['r']:+.3f} (p = {corr['p_value']:.2g}, {corr['n']} points)")
+        if corr["significant"]:
+            say("WARNING: velocity and bisector span correlate significantly: the velocity changes come with "
+                "line-shape changes (activity or a blend), not only a companion")
+    if "mass_ratio" in summary:
+        say(f"secondary: K2 = {summary['semi_amplitude_2']:.1f} +- {summary['semi_amplitude_2_err']:.1f} m/s; "
+            f"mass ratio q = m2/m1 = K1/K2 = {summary['mass_ratio']:.4f} +- {summary['mass_ratio_err']:.4f}")
     for text in ser.CAVEATS:
         say(f"note: {text}")
     return 0

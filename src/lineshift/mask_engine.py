@@ -17,6 +17,7 @@ from .errors import MeasurementError
 from .model import C_MS, CCFResult, LineMask
 from .peak import fit_gaussian
 from .prepare import PreparedOrder
+from .profile import bisector, order_velocities
 
 __all__ = ["SearchSettings", "measure_mask"]
 
@@ -136,11 +137,51 @@ def measure_mask(orders: list[PreparedOrder], mask: LineMask, settings: SearchSe
         if moved < 0.25 * half:
             break
     sens = fit.sensitivities()
+    bis = bisector(grid, data.ccf, fit.c0, fit.amp)
+    sens["bis"] = bis.sensitivity + bis.d_c0 * fit.gain[0] + bis.d_amp * fit.gain[1]
     var = data.variance_of(np.stack(list(sens.values())))
     errs = {k: float(np.sqrt(v)) for k, v in zip(sens, var, strict=True)}
+    order_rows, slope, slope_err = _per_order(data, grid, fit)
     # median SNR per pixel; every 4th pixel is plenty for a median
     good_snr = np.concatenate([o.flux[o.good][::4] / np.sqrt(o.var[o.good][::4]) for o in orders])
     return CCFResult(
         rv=fit.mu, rv_err=errs["rv"], fwhm=fit.fwhm, fwhm_err=errs["fwhm"], contrast=fit.contrast,
         contrast_err=errs["contrast"], snr=float(np.median(good_snr)), n_lines=data.n_lines,
-        n_orders=len(data.terms), velocity=grid, ccf=data.ccf, model=fit.model)
+        n_orders=len(data.terms), velocity=grid, ccf=data.ccf, model=fit.model,
+        bis_span=bis.span, bis_span_err=errs["bis"] if np.isfinite(bis.span) else float("nan"),
+        chromatic_slope=slope, chromatic_slope_err=slope_err, bisector=(bis.depth, bis.velocity),
+        orders=tuple(order_rows))
+
+
+def _per_order(data, grid, fit):
+    """Per-order velocities (width fixed) with errors, and their slope against ln(wavelength)."""
+    ccfs = [c for _, c in data.order_ccf()]
+    rv, gains = order_velocities(grid, ccfs, fit.c0, fit.amp, fit.mu, fit.sigma)
+    ok = np.isfinite(rv) & np.all(np.isfinite(gains), axis=1)
+    err = np.full(rv.size, np.nan)
+    if ok.any():
+        err[ok] = np.sqrt(data.order_variances(np.where(ok[:, None], gains, 0.0))[ok])
+    rows = []
+    for k, t in enumerate(data.terms):
+        lam = float(np.average(data_mask_wavelengths(t), weights=t.weights))
+        rows.append({"order": int(t.order.index), "wavelength": lam, "rv": float(rv[k]), "rv_err": float(err[k]),
+                     "n_lines": int(t.lines.size)})
+    use = ok & np.isfinite(err) & (err > 0)
+    # a velocity far outside its neighbours' (a failed order fit) would dominate the slope: drop > 10 sigma
+    if use.sum() >= 3:
+        med = np.median(rv[use])
+        use &= np.abs(rv - med) < 10 * np.maximum(err, 1e-9) + 5 * 1.4826 * np.median(np.abs(rv[use] - med))
+    if use.sum() < 3:
+        return rows, float("nan"), float("nan")
+    x = np.log(np.array([r["wavelength"] for r in rows])[use] / 5500.0)
+    w = 1 / err[use] ** 2
+    X = np.column_stack((np.ones_like(x), x))
+    A = X.T @ (X * w[:, None])
+    coef = np.linalg.solve(A, X.T @ (w * rv[use]))
+    cov = np.linalg.inv(A)
+    return rows, float(coef[1]), float(np.sqrt(cov[1, 1]))
+
+
+def data_mask_wavelengths(term) -> np.ndarray:
+    """Rest wavelengths of the mask lines an order term used (for its central wavelength)."""
+    return term.line_wavelengths

@@ -154,6 +154,9 @@ class CCFResult:
 
     All velocities in m/s.  ``rv_err`` is the 1-sigma error from linear propagation of the pixel
     variances through the CCF and the profile fit (covariance of neighbouring CCF points included).
+    ``bis_span`` is the bisector span (Queloz et al. 2001, see :mod:`.profile`);
+    ``chromatic_slope`` the slope of per-order velocities against ln(lambda) (m/s per unit ln lambda);
+    ``orders`` one dict per order (``order``, ``wavelength``, ``rv``, ``rv_err``), topocentric.
     """
 
     rv: float
@@ -168,3 +171,9 @@ class CCFResult:
     velocity: np.ndarray = field(repr=False)
     ccf: np.ndarray = field(repr=False)
     model: np.ndarray = field(repr=False)
+    bis_span: float = float("nan")
+    bis_span_err: float = float("nan")
+    chromatic_slope: float = float("nan")
+    chromatic_slope_err: float = float("nan")
+    bisector: tuple[np.ndarray, np.ndarray] | None = field(default=None, repr=False)
+    orders: tuple[dict, ...] = field(default=(), repr=False)

@@ -38,11 +38,15 @@ from .prepare import prepare_spectrum, reject_telluric_lines
 
 __all__ = ["COLUMNS", "MeasureSettings", "Overrides", "expand_inputs", "measure_files"]
 
+#: Columns of the secondary with ``--components 2`` (shared/interface.md), right after the contract columns.
+SB2_COLUMNS = ["rv2", "rv2_err", "fwhm2", "contrast2", "rv2_topo", "fwhm2_err", "contrast2_err", "flux_ratio"]
+
 #: The contract columns (shared/interface.md), in order; extra columns follow.
 COLUMNS = ["file", "object", "bjd_tdb", "rv", "rv_err", "berv", "rv_topo", "fwhm", "contrast", "snr",
            "n_lines", "status"]
-EXTRA_COLUMNS = ["method", "fwhm_err", "contrast_err", "n_orders", "mjd_mid", "time_scale",
-                 "time_source", "layout", "medium", "notes"]
+EXTRA_COLUMNS = ["method", "fwhm_err", "contrast_err", "bis_span", "bis_span_err", "rv_chromatic_slope",
+                 "rv_chromatic_slope_err", "n_orders", "mjd_mid", "time_scale", "time_source", "layout", "medium",
+                 "notes"]
 
 SPECTRUM_SUFFIXES = (".fits", ".fit", ".fts", ".fits.gz", ".fit.gz", ".fts.gz", ".csv", ".csv.gz",
                      ".txt", ".txt.gz", ".dat", ".dat.gz", ".tsv", ".tsv.gz")
@@ -85,10 +89,13 @@ class MeasureSettings:
     telluric_bands: str | bool | None = None     # None: shipped list; False: none; str: a file
     systemic_velocity: float | None = None
     keep_ccf: bool = False
+    components: int = 1
 
     def __post_init__(self):
         if self.method not in ENGINES:
             raise ConfigError(f"unknown method {self.method!r} (known: {', '.join(ENGINES)})")
+        if self.components not in (1, 2):
+            raise ConfigError(f"components must be 1 or 2, not {self.components}")
 
 
 @dataclass(frozen=True)
@@ -191,6 +198,8 @@ def measure_task(task: Task, ctx: Context) -> dict:
                 status="outside mask range")
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", RuntimeWarning)
+            if s.components == 2:
+                return _two_component_row(task, obs, orders, ctx)
             res = ENGINES[s.method](orders, ctx.mask, s.search, berv=task.berv, path=task.path)
     except LineshiftError as exc:
         exc.path = exc.path or task.path
@@ -210,9 +219,31 @@ def measure_task(task: Task, ctx: Context) -> dict:
     row.update(
         bjd_tdb=task.bjd_tdb, rv=rv, rv_err=res.rv_err * (1 + task.berv / C_MS), berv=task.berv,
         rv_topo=res.rv, fwhm=res.fwhm, contrast=res.contrast, snr=res.snr, n_lines=res.n_lines,
-        fwhm_err=res.fwhm_err, contrast_err=res.contrast_err, n_orders=res.n_orders)
+        fwhm_err=res.fwhm_err, contrast_err=res.contrast_err, n_orders=res.n_orders,
+        bis_span=res.bis_span, bis_span_err=res.bis_span_err, rv_chromatic_slope=res.chromatic_slope,
+        rv_chromatic_slope_err=res.chromatic_slope_err)
+    row["_orders"] = [dict(o) for o in res.orders]
     if s.keep_ccf:
-        row["_ccf"] = (res.velocity, res.ccf, res.model)
+        row["_ccf"] = (res.velocity, res.ccf, res.model, res.bisector)
+    return row
+
+
+def _two_component_row(task: Task, obs: Observation, orders, ctx: Context) -> dict:
+    from .sb2 import measure_two
+
+    s = ctx.settings
+    res = measure_two(orders, ctx.mask, s.search, berv=task.berv, path=task.path)
+    row = _empty_row(task.path, obs, "ok", "; ".join(tuple(obs.notes) + task.notes), s)
+    scale = 1 + task.berv / C_MS
+    row.update(
+        bjd_tdb=task.bjd_tdb, berv=task.berv, rv=float(compose_velocity(res.rv[0], task.berv)),
+        rv_err=res.rv_err[0] * scale, rv_topo=res.rv[0], fwhm=res.fwhm[0], contrast=res.contrast[0],
+        fwhm_err=res.fwhm_err[0], contrast_err=res.contrast_err[0], snr=res.snr, n_lines=res.n_lines,
+        n_orders=res.n_orders, rv2=float(compose_velocity(res.rv[1], task.berv)), rv2_err=res.rv_err[1] * scale,
+        rv2_topo=res.rv[1], fwhm2=res.fwhm[1], fwhm2_err=res.fwhm_err[1], contrast2=res.contrast[1],
+        contrast2_err=res.contrast_err[1], flux_ratio=res.flux_ratio)
+    if s.keep_ccf:
+        row["_ccf"] = (res.velocity, res.ccf, res.model, None)
     return row
 
 
@@ -226,6 +257,7 @@ class BatchReport:
     n_lines_mask: int = 0
     skipped: int = 0            # rows taken from the results store
     settings_hash: str = ""
+    swaps: int = 0              # two components exchanged to keep each star's identity
 
 
 def measure_files(paths: list[str], mask: LineMask, settings: MeasureSettings, *, workers: int = 1,
@@ -325,7 +357,15 @@ def measure_files(paths: list[str], mask: LineMask, settings: MeasureSettings, *
         if store is not None:
             store.put(task.input_hash, report.settings_hash, row)
         emit(task.index, row)
-    return [r for r in rows if r is not None]
+    out = [r for r in rows if r is not None]
+    if settings.components == 2:
+        from .sb2 import assign_components
+
+        for r in out:
+            for c in SB2_COLUMNS:
+                r.setdefault(c, None)
+        report.swaps = assign_components(out)
+    return out
 
 
 def provenance(mask: LineMask, settings: MeasureSettings, report: BatchReport) -> dict[str, str]:

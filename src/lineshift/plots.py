@@ -16,7 +16,7 @@ import numpy as np
 from .table import atomic_path
 
 __all__ = ["plot_ccf", "plot_drift", "plot_orbit", "plot_order_offsets", "plot_periodogram", "plot_residuals",
-           "plot_rv_time", "plot_template"]
+           "plot_rv_bisector", "plot_rv_time", "plot_template"]
 
 
 def _save(fig, path: str) -> str:
@@ -35,13 +35,16 @@ def _stem(path: str) -> str:
 
 
 def plot_ccf(row: dict, outdir: str) -> str:
-    """CCF (observatory frame) with its fitted profile, for one measured row."""
-    v, ccf, model = row["_ccf"]
-    fig, (ax, axr) = plt.subplots(2, 1, figsize=(6.4, 4.8), sharex=True,
-                                  gridspec_kw={"height_ratios": [3, 1]})
+    """CCF (observatory frame) with its fitted profile(s), residuals, and the bisector."""
+    v, ccf, model, bis = row["_ccf"]
+    fig = plt.figure(figsize=(8.4, 4.8))
+    gs = fig.add_gridspec(2, 2, height_ratios=[3, 1], width_ratios=[3, 1.2])
+    ax, axr, axb = fig.add_subplot(gs[0, 0]), fig.add_subplot(gs[1, 0]), fig.add_subplot(gs[:, 1])
     ax.plot(v / 1e3, ccf, ".", ms=4, color="0.2", label="CCF")
-    ax.plot(v / 1e3, model, "-", color="tab:red", lw=1.2, label="Gaussian fit")
+    ax.plot(v / 1e3, model, "-", color="tab:red", lw=1.2, label="fit")
     ax.axvline(row["rv_topo"] / 1e3, color="tab:red", lw=0.6, ls=":")
+    if row.get("rv2_topo") is not None and np.isfinite(row.get("rv2_topo", np.nan)):
+        ax.axvline(row["rv2_topo"] / 1e3, color="tab:blue", lw=0.6, ls=":")
     ax.set_ylabel("normalised CCF")
     ax.set_title(f"{os.path.basename(row['file'])}\nrv_topo = {row['rv_topo'] / 1e3:.4f} km/s "
                  f"± {row['rv_err']:.2f} m/s, FWHM {row['fwhm'] / 1e3:.2f} km/s, "
@@ -51,6 +54,17 @@ def plot_ccf(row: dict, outdir: str) -> str:
     axr.axhline(0, color="tab:red", lw=0.6)
     axr.set_xlabel("velocity, observatory frame (km/s)")
     axr.set_ylabel("residual")
+    if bis is not None:
+        depth, vel = bis
+        axb.plot(vel - row["rv_topo"], depth, "-", color="tab:purple", lw=1)
+        for (lo, hi), colour in (((0.10, 0.40), "tab:green"), ((0.55, 0.90), "tab:orange")):
+            axb.axhspan(lo, hi, color=colour, alpha=0.15)
+        axb.invert_yaxis()
+        axb.set_ylim(1, 0)
+        axb.set_xlabel("bisector - rv_topo (m/s)")
+        axb.set_ylabel("fractional depth")
+        span = row.get("bis_span", np.nan)
+        axb.set_title(f"BIS {span:+.1f} ± {row.get('bis_span_err', np.nan):.1f} m/s", fontsize=8)
     fig.tight_layout()
     return _save(fig, os.path.join(outdir, f"{_stem(row['file'])}_ccf.png"))
 
@@ -225,5 +239,21 @@ def plot_orbit(series, fit, offsets_model, path: str) -> str:
     ar.axhline(0, color="k", lw=0.5)
     ar.set_xlabel("BJD_TDB (d)")
     ar.set_ylabel(f"residual (m/s), rms {fit.rms:.2f}")
+    fig.tight_layout()
+    return _save(fig, path)
+
+
+def plot_rv_bisector(series, offsets, corr: dict, path: str) -> str:
+    """Bisector span against (offset-aligned) velocity, with the correlation coefficient."""
+    use = ~series.flag & np.isfinite(series.bis)
+    aligned = series.rv[use] - np.array([offsets.get(d, 0.0) for d in series.dataset[use]])
+    fig, ax = plt.subplots(figsize=(6, 4.5))
+    ax.errorbar(aligned, series.bis[use], series.bis_err[use], series.err[use], fmt="o", ms=4, capsize=2)
+    x = np.linspace(aligned.min(), aligned.max(), 2)
+    ax.plot(x, np.polyval(np.polyfit(aligned, series.bis[use], 1), x), "-", color="tab:red", lw=0.8)
+    ax.set_xlabel("rv - data-set offset (m/s)")
+    ax.set_ylabel("bisector span (m/s)")
+    ax.set_title(f"r = {corr['r']:+.3f}, p = {corr['p_value']:.2g} ({corr['n']} spectra)"
+                 + ("  SIGNIFICANT" if corr["significant"] else ""), fontsize=9)
     fig.tight_layout()
     return _save(fig, path)

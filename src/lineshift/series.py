@@ -30,7 +30,8 @@ from scipy.optimize import brentq, least_squares
 from .errors import ConfigError
 from .orbit import Orbit, jupiter_masses, mass_function, minimum_mass, radial_velocity, semi_major_axis
 
-__all__ = ["Series", "bin_series", "fit_orbit", "flag_outliers", "jitter", "periodogram", "read_series"]
+__all__ = ["Series", "bin_series", "bisector_correlation", "fit_orbit", "flag_outliers", "jitter", "periodogram",
+           "read_series", "secondary_orbit"]
 
 CAVEATS = ("m sin i is a minimum mass: the orbital inclination is unknown.",
            "A periodogram peak can be an alias of the sampling (1 d, 1 yr, or a peak of the window function) "
@@ -50,9 +51,16 @@ class Series:
     flag: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=bool))
     flag_reason: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=object))
     n_binned: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=int))
+    bis: np.ndarray = field(default_factory=lambda: np.zeros(0))       # bisector span, m/s (NaN if absent)
+    bis_err: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    rv2: np.ndarray = field(default_factory=lambda: np.zeros(0))       # secondary's velocity (NaN if absent)
+    rv2_err: np.ndarray = field(default_factory=lambda: np.zeros(0))
 
     def __post_init__(self):
         n = self.t.size
+        for name in ("bis", "bis_err", "rv2", "rv2_err"):
+            if getattr(self, name).size != n:
+                setattr(self, name, np.full(n, np.nan))
         if self.flag.size != n:
             self.flag = np.zeros(n, dtype=bool)
         if self.flag_reason.size != n:
@@ -66,7 +74,8 @@ class Series:
 
     def select(self, keep: np.ndarray) -> Series:
         return Series(self.t[keep], self.rv[keep], self.err[keep], self.dataset[keep], self.file[keep],
-                      self.n_dropped, self.flag[keep], self.flag_reason[keep], self.n_binned[keep])
+                      self.n_dropped, self.flag[keep], self.flag_reason[keep], self.n_binned[keep],
+                      self.bis[keep], self.bis_err[keep], self.rv2[keep], self.rv2_err[keep])
 
 
 def _read_table(path: str) -> pd.DataFrame:
@@ -108,8 +117,13 @@ def read_series(paths: list[str], *, dataset_column: str | None = None) -> Serie
     if df.empty:
         raise ConfigError("no row with status ok in the input tables")
     df = df.sort_values("bjd_tdb", kind="stable")
+
+    def col(name):
+        return pd.to_numeric(df[name], errors="coerce").to_numpy(float) if name in df else np.full(len(df), np.nan)
+
     return Series(df["bjd_tdb"].to_numpy(float), df["rv"].to_numpy(float), df["rv_err"].to_numpy(float),
-                  df["_ds"].to_numpy(object), df.get("file", pd.Series([""] * len(df))).to_numpy(object), dropped)
+                  df["_ds"].to_numpy(object), df.get("file", pd.Series([""] * len(df))).to_numpy(object), dropped,
+                  bis=col("bis_span"), bis_err=col("bis_span_err"), rv2=col("rv2"), rv2_err=col("rv2_err"))
 
 
 # --------------------------------------------------------------------------- jitter, offsets, outliers
@@ -354,3 +368,53 @@ def derived_masses(fit: OrbitFit, m_star: float, m_star_err: float = 0.0) -> dic
         var += ((calc(args["P"], args["K"], min(args["e"], 0.99), args["M"]) - base) / 1e-3) ** 2
     return {"min_mass": float(base[0]), "min_mass_err": float(np.sqrt(var[0])), "semi_major_axis": float(base[1]),
             "semi_major_axis_err": float(np.sqrt(var[1])), "mass_function": float(base[2])}
+
+
+# --------------------------------------------------------------------------- line shape and binaries
+
+def bisector_correlation(s: Series, offsets: dict[str, float]) -> dict | None:
+    """Pearson correlation of (offset-aligned) velocity with bisector span; None without spans.
+
+    A significant correlation (p < 0.01) says the velocity changes come with line-shape changes:
+    activity or a blend rather than (only) a companion (Queloz et al. 2001).
+    """
+    from scipy.stats import pearsonr
+
+    use = ~s.flag & np.isfinite(s.bis)
+    if use.sum() < 5:
+        return None
+    aligned = s.rv[use] - np.array([offsets.get(d, 0.0) for d in s.dataset[use]])
+    r, p = pearsonr(aligned, s.bis[use])
+    slope = float(np.polyfit(aligned, s.bis[use], 1)[0])
+    return {"r": float(r), "p_value": float(p), "n": int(use.sum()), "slope": slope, "significant": bool(p < 0.01)}
+
+
+def secondary_orbit(s: Series, fit: OrbitFit) -> dict | None:
+    """The secondary's semi-amplitude and gamma on the primary's orbit, and q = m2/m1 = K1/K2.
+
+    With P, e and T_peri shared and omega_2 = omega_1 + pi, the secondary's curve
+    ``v2 = gamma_2 - K2 [cos(nu + w) + e cos w]`` is linear in (gamma_2, K2): weighted linear least
+    squares.  The mass ratio follows from the two-body relation m1 K1 = m2 K2.
+    """
+    use = ~s.flag & np.isfinite(s.rv2) & (s.rv2_err > 0)
+    if use.sum() < 4:
+        return None
+    o = fit.orbit
+    from .orbit import true_anomaly
+
+    nu = true_anomaly(s.t[use], o)
+    shape = -(np.cos(nu + o.omega) + o.eccentricity * np.cos(o.omega))
+    X = np.column_stack((np.ones(use.sum()), shape))
+    w = 1 / s.rv2_err[use] ** 2
+    A = X.T @ (X * w[:, None])
+    coef = np.linalg.solve(A, X.T @ (w * s.rv2[use]))
+    resid = s.rv2[use] - X @ coef
+    chi2 = float(np.sum(w * resid**2) / max(use.sum() - 2, 1))
+    cov = np.linalg.inv(A) * max(1.0, chi2)
+    k2, k2_err = float(coef[1]), float(np.sqrt(cov[1, 1]))
+    k1, k1_err = o.semi_amplitude, fit.errors["semi_amplitude"]
+    q = k1 / k2
+    return {"semi_amplitude_2": k2, "semi_amplitude_2_err": k2_err, "gamma_2": float(coef[0]),
+            "gamma_2_err": float(np.sqrt(cov[0, 0])), "mass_ratio": q,
+            "mass_ratio_err": float(q * np.hypot(k1_err / k1, k2_err / k2)), "rms_2": float(np.std(resid)),
+            "n_2": int(use.sum())}

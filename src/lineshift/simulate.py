@@ -30,10 +30,27 @@ from . import airvac
 from .model import C_MS
 from .orbit import Orbit, radial_velocity
 
-__all__ = ["DEMO_SITE", "DEMO_STAR", "INSTRUMENTS", "Exposure", "Instrument", "Site", "Star",
-           "StarModel", "invented_lamp_lines", "lamp_exposure", "observe", "photon_noise_bound", "to_spectrum",
-           "with_lab_lines", "write_mask",
-           "write_observation"]
+__all__ = [
+    "DEMO_BINARY",
+    "DEMO_SITE",
+    "DEMO_STAR",
+    "INSTRUMENTS",
+    "Binary",
+    "Exposure",
+    "Instrument",
+    "Site",
+    "Star",
+    "StarModel",
+    "invented_lamp_lines",
+    "lamp_exposure",
+    "observe",
+    "observe_binary",
+    "photon_noise_bound",
+    "to_spectrum",
+    "with_lab_lines",
+    "write_mask",
+    "write_observation",
+]
 
 
 @dataclass(frozen=True)
@@ -69,6 +86,7 @@ class Star:
     limb_darkening: float = 0.6
     line_seed: int = 20261202
     extra_lines: tuple[tuple[float, float], ...] = ()   # (vacuum wavelength, depth) added to the list
+    asymmetry: float = 0.0   # intrinsic lines as split Gaussians: sigma (1 - a) blueward, sigma (1 + a) redward
 
     def rv(self, bjd: np.ndarray) -> np.ndarray:
         """True barycentric radial velocity (m/s) at BJD_TDB."""
@@ -193,11 +211,14 @@ class StarModel:
         lam, depth = self.star.line_list()
         ul = np.log(lam)
         s = self.star.micro_sigma / C_MS
-        half = int(np.ceil(6 * s / du))
+        half = int(np.ceil(6 * s * (1 + abs(self.star.asymmetry)) / du))
         centre = np.round((ul - u[0]) / du).astype(int)
         idx = centre[:, None] + np.arange(-half, half + 1)[None, :]
         ok = (idx >= 0) & (idx < u.size)
-        prof = np.exp(-0.5 * ((u[np.clip(idx, 0, u.size - 1)] - ul[:, None]) / s) ** 2)
+        du_l = u[np.clip(idx, 0, u.size - 1)] - ul[:, None]
+        a = self.star.asymmetry
+        side = np.where(du_l < 0, s * (1 - a), s * (1 + a))    # a > 0: red wing wider (bisector to the red on top)
+        prof = np.exp(-0.5 * (du_l / side) ** 2)
         logf = np.bincount(idx[ok], np.log1p(-(depth[:, None] * prof)[ok]), minlength=u.size)
         flux = np.exp(logf)
         kernel = _rotation_kernel(self.star.vsini, self.star.limb_darkening, self.step)
@@ -325,6 +346,77 @@ def to_spectrum(exp: Exposure, path: str = "<simulated>"):
                     mjd_mid=exp.truth["mjd_mid_utc"], ra_deg=exp.star.ra_deg, dec_deg=exp.star.dec_deg,
                     site_xyz=exp.site.xyz, medium=exp.instrument.medium)
     return Spectrum(obs, orders)
+
+
+@dataclass(frozen=True)
+class Binary:
+    """An invented double-lined binary: two stars on one orbit (velocities m/s, times BJD_TDB).
+
+    The primary moves as ``orbit`` (semi-amplitude K1) about ``gamma``; the secondary opposite,
+    ``v2 = gamma - (K2 / K1) (v1 - gamma)``.  ``flux_ratio`` is secondary / primary continuum flux.
+    """
+
+    primary: Star
+    secondary: Star
+    orbit: Orbit
+    k2: float
+    gamma: float
+    flux_ratio: float
+
+    def velocities(self, bjd):
+        v1 = radial_velocity(bjd, self.orbit, self.gamma)
+        return v1, self.gamma - self.k2 / self.orbit.semi_amplitude * (v1 - self.gamma)
+
+
+#: An invented double-lined binary: Vessa-9's lines in both stars, the secondary rotating faster.
+DEMO_BINARY = Binary(
+    primary=replace(DEMO_STAR, name="Vessa-12", orbit=None, vsini=3000.0),
+    secondary=replace(DEMO_STAR, name="Vessa-12 B", orbit=None, vsini=5000.0),
+    orbit=Orbit(period=7.4, semi_amplitude=32_000.0, eccentricity=0.1, omega=1.0, time_periastron=2461003.0),
+    k2=48_000.0, gamma=9_000.0, flux_ratio=0.5)
+
+
+def observe_binary(binary: Binary, instrument: Instrument, site: Site, mjd_start_utc: float,
+                   rng: np.random.Generator, *, berv_bjd=None) -> Exposure:
+    """Simulate a double-lined exposure: ``(F1(v1) + r F2(v2)) / (1 + r)`` through the instrument."""
+    mjd_mid = mjd_start_utc + 0.5 * instrument.exptime / 86400.0
+    berv, bjd = berv_bjd if berv_bjd is not None else barycentric_truth(binary.primary, site, np.array([mjd_mid]))
+    berv, bjd = float(np.ravel(berv)[0]), float(np.ravel(bjd)[0])
+    v1, v2 = (float(np.ravel(x)[0]) for x in binary.velocities(np.array([bjd])))
+    wave = instrument.wavelengths()
+    wave_vac = airvac.air_to_vacuum(wave) if instrument.medium == "air" else wave
+    sub = _subpixel_wavelengths(wave_vac)
+    r = binary.flux_ratio
+    star_flux = (_stellar_flux(binary.primary, instrument, sub, berv, v1)
+                 + r * _stellar_flux(binary.secondary, instrument, sub, berv, v2)) / (1 + r)
+    _, observed, err, blaze = _through_instrument(instrument, wave_vac, star_flux, rng, noise=True)
+    truth = {"mjd_mid_utc": mjd_mid, "bjd_tdb": bjd, "berv": berv, "rv_true": v1, "rv2_true": v2,
+             "rv_topo_true": C_MS * ((1 + v1 / C_MS) / (1 + berv / C_MS) - 1),
+             "rv2_topo_true": C_MS * ((1 + v2 / C_MS) / (1 + berv / C_MS) - 1), "snr_peak": instrument.snr}
+    return Exposure(instrument, binary.primary, site, mjd_start_utc, wave, observed, err, blaze, truth)
+
+
+def _subpixel_wavelengths(wave_vac: np.ndarray, nsub: int = 5) -> np.ndarray:
+    edges = np.concatenate([_edges(w)[None, :] for w in wave_vac])
+    frac = (np.arange(nsub) + 0.5) / nsub
+    return edges[:, :-1, None] + (edges[:, 1:, None] - edges[:, :-1, None]) * frac[None, None, :]
+
+
+def _stellar_flux(star: Star, instrument: Instrument, sub: np.ndarray, berv: float, v: float) -> np.ndarray:
+    """Pixel-averaged normalised stellar flux for a star moving at ``v`` seen with correction ``berv``."""
+    ratio = (1 + berv / C_MS) / (1 + v / C_MS)   # lambda_rest = lambda_obs (1 + z_B) / (1 + z_true)
+    return _model(star, instrument.resolving_power)(sub * ratio).mean(axis=2)
+
+
+def _through_instrument(instrument: Instrument, wave_vac: np.ndarray, star_flux: np.ndarray,
+                        rng: np.random.Generator, *, noise: bool):
+    n = instrument.n_pixels
+    blaze = np.tile(_blaze(n), (instrument.n_orders, 1)) if instrument.blaze else np.ones((instrument.n_orders, n))
+    A = _peak_counts(instrument.snr, instrument.read_noise) * blaze * (wave_vac / 5500.0) ** -1.0 * star_flux
+    rn2 = instrument.read_noise**2
+    observed = A + rng.normal(size=A.shape) * np.sqrt(A + rn2) if noise else A.copy()
+    err = np.sqrt(np.maximum(observed, 0.0) + rn2)
+    return A, observed, err, (blaze if instrument.blaze else None)
 
 
 def _edges(w: np.ndarray) -> np.ndarray:
@@ -472,7 +564,8 @@ def epochs(n: int, rng: np.random.Generator, *, start_mjd: float = 61000.0, span
 
 
 def simulate_set(outdir: str, plan: list[tuple[Instrument, int]], *, star: Star = DEMO_STAR,
-                 site: Site = DEMO_SITE, seed: int = 1, compress: bool = True, progress=None) -> list[dict]:
+                 site: Site = DEMO_SITE, seed: int = 1, compress: bool = True, progress=None,
+                 binary: Binary | None = None) -> list[dict]:
     """Write a set of observations; returns the truth rows (one per file).
 
     The truth table goes to ``OUTDIR/truth/truth.csv`` (a subdirectory, so that measuring the
@@ -484,13 +577,17 @@ def simulate_set(outdir: str, plan: list[tuple[Instrument, int]], *, star: Star 
     total = sum(n for _, n in plan)
     starts = epochs(total, rng)
     mids = starts + np.concatenate([np.full(n, ins.exptime) for ins, n in plan]) / 2 / 86400.0
-    berv, bjd = barycentric_truth(star, site, mids)
+    berv, bjd = barycentric_truth(binary.primary if binary else star, site, mids)
     k = 0
     ext = {"multi-order": ".fits", "wcs-1d": ".fits", "table": ".fits", "text": ".csv"}
     for ins, n in plan:
         for j in range(n):
-            obs = observe(star, ins, site, float(starts[k]), rng, berv_bjd=(berv[k], bjd[k]))
-            name = f"{star.name.lower()}_{ins.name}_{j:03d}{ext[ins.layout]}" + (".gz" if compress else "")
+            if binary is not None:
+                obs = observe_binary(binary, ins, site, float(starts[k]), rng, berv_bjd=(berv[k], bjd[k]))
+            else:
+                obs = observe(star, ins, site, float(starts[k]), rng, berv_bjd=(berv[k], bjd[k]))
+            stem = (binary.primary.name if binary else star.name).lower().replace(" ", "_")
+            name = f"{stem}_{ins.name}_{j:03d}{ext[ins.layout]}" + (".gz" if compress else "")
             path = os.path.join(outdir, name)
             write_observation(obs, path, style=k)
             rows.append({"file": name, "layout": ins.layout, "instrument": ins.name, **obs.truth})
@@ -498,7 +595,7 @@ def simulate_set(outdir: str, plan: list[tuple[Instrument, int]], *, star: Star 
             if progress is not None:
                 progress(1)
     os.makedirs(os.path.join(outdir, "truth"), exist_ok=True)
-    write_truth(rows, os.path.join(outdir, "truth", "truth.csv"), star)
+    write_truth(rows, os.path.join(outdir, "truth", "truth.csv"), binary.primary if binary else star)
     return rows
 
 

@@ -15,13 +15,14 @@ import numpy as np
 import pandas as pd
 
 from .errors import ConfigError
-from .pipeline import COLUMNS, EXTRA_COLUMNS
+from .pipeline import COLUMNS, EXTRA_COLUMNS, SB2_COLUMNS
 
 __all__ = ["FORMATS", "UNITS", "atomic_path", "rows_to_frame", "table_format", "write_frame", "write_table"]
 
 FORMATS = {".csv": "csv", ".ecsv": "ecsv", ".fits": "fits", ".fit": "fits", ".parquet": "parquet"}
 UNITS = {"bjd_tdb": "d", "rv": "m / s", "rv_err": "m / s", "berv": "m / s", "rv_topo": "m / s",
-         "fwhm": "m / s", "fwhm_err": "m / s", "mjd_mid": "d"}
+         "fwhm": "m / s", "fwhm_err": "m / s", "mjd_mid": "d", "bis_span": "m / s", "bis_span_err": "m / s",
+         "rv2": "m / s", "rv2_err": "m / s", "rv2_topo": "m / s", "fwhm2": "m / s", "fwhm2_err": "m / s"}
 _INT = ("n_lines", "n_orders")
 
 
@@ -37,7 +38,8 @@ def table_format(path: str) -> str:
 
 def rows_to_frame(rows: list[dict]) -> pd.DataFrame:
     """Rows to a DataFrame with the contract columns first and the extras after."""
-    cols = COLUMNS + EXTRA_COLUMNS
+    sb2 = SB2_COLUMNS if any("rv2" in r for r in rows) else []
+    cols = COLUMNS + sb2 + EXTRA_COLUMNS
     extra = [k for r in rows for k in r if k not in cols and not k.startswith("_")]
     cols += list(dict.fromkeys(extra))
     frame = pd.DataFrame([{c: r.get(c) for c in cols} for r in rows], columns=cols)

@@ -1,0 +1,136 @@
+"""Line-profile diagnostics of a correlation profile: bisector span, per-order velocities, chromatic slope.
+
+Bisector span (Queloz et al. 2001, A&A 379, 279): the bisector is the midpoint of the two sides of
+the CCF dip at each level; levels are *fractional depths* d below the fitted continuum (d = 0 at the
+continuum, 1 at the fitted minimum: flux = C0 - d A).  BIS = mean bisector velocity over the top
+region d in [0.10, 0.40] minus the mean over the bottom region d in [0.55, 0.90].  A symmetric
+profile gives 0; a linear bisector v = v0 + s d gives BIS = -0.475 s.
+
+The bisector is computed on a cubic spline through the CCF points; the spline is linear in the CCF
+values, so the sensitivity of each crossing to each CCF point is analytic and the error follows
+from the exact pixel-variance propagation of ``CorrelationData.variance_of`` (the noise of the
+fitted continuum and depth, which set the levels, is included through the fit's gain).
+
+Per-order velocities: each order's own CCF, fitted with the global profile's width held fixed
+(continuum, depth and centre free, two Gauss-Newton steps from the global solution); the
+chromatic slope is the weighted straight-line slope of those velocities against ln(wavelength),
+in m/s per unit ln(lambda) - an activity indicator (spots and convection shift blue and red
+orders differently; a companion does not).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+__all__ = ["BOTTOM", "TOP", "Bisector", "bisector", "order_velocities"]
+
+TOP = (0.10, 0.40)
+BOTTOM = (0.55, 0.90)
+_N_LEVELS = 31
+
+
+@dataclass(frozen=True)
+class Bisector:
+    depth: np.ndarray          # fractional depth of each level
+    velocity: np.ndarray       # bisector velocity per level, m/s
+    span: float                # BIS, m/s
+    sensitivity: np.ndarray    # d BIS / d CCF_i at fixed levels
+    d_c0: float                # d BIS / d C0
+    d_amp: float               # d BIS / d A
+
+
+def _side(v, y, levels, i_min, direction):
+    """For each level, the grid pair (a, b) on one side of the minimum where y first reaches it."""
+    idx = np.arange(i_min, -1, -1) if direction < 0 else np.arange(i_min, v.size)
+    ys = y[idx]
+    above = ys[None, :] >= levels[:, None]
+    found = above.any(axis=1) & (idx.size > 1)
+    j = np.clip(np.argmax(above, axis=1), 1, idx.size - 1)
+    return idx[j - 1], idx[j], found
+
+
+def _bisector_velocities(v, y, c0, amp, depths, i_min):
+    """Bisector velocities at fractional depths, from a cubic spline through the CCF points.
+
+    A straight line between grid points makes a spurious span that depends on where the grid falls
+    (~2 m/s for a 4.7 km/s-wide profile sampled every 0.8 km/s); the spline removes it.  The spline is
+    linear in the data, ``S(x) = sum_i y_i B_i(x)``, so a crossing ``S(x*) = L`` responds as
+    ``dx*/dy_i = -B_i(x*) / S'(x*)`` and ``dx*/dL = 1 / S'(x*)``.
+    """
+    from scipy.interpolate import CubicSpline
+
+    levels = c0 - depths * amp
+    spline = CubicSpline(v, y)
+    basis = CubicSpline(v, np.eye(v.size))        # B_i(x) for every i at once
+    vel = np.zeros(depths.size)
+    sens = np.zeros((depths.size, v.size))
+    dlevel = np.zeros(depths.size)
+    ok = np.ones(depths.size, dtype=bool)
+    for direction in (-1, 1):
+        a, b, found = _side(v, y, levels, i_min, direction)
+        ok &= found & (y[b] != y[a])
+        # start from the straight-line crossing, then Newton on the spline (bracketed in [v_a, v_b])
+        dy = np.where(y[b] != y[a], y[b] - y[a], 1.0)
+        x = v[a] + (levels - y[a]) / dy * (v[b] - v[a])
+        lo, hi = np.minimum(v[a], v[b]), np.maximum(v[a], v[b])
+        for _ in range(8):
+            d1 = spline(x, 1)
+            step = np.where(d1 != 0, (spline(x) - levels) / np.where(d1 != 0, d1, 1.0), 0.0)
+            x = np.clip(x - step, lo, hi)
+        d1 = spline(x, 1)
+        ok &= d1 != 0
+        d1 = np.where(d1 != 0, d1, 1.0)
+        vel += 0.5 * x
+        sens += 0.5 * (-basis(x) / d1[:, None])
+        dlevel += 0.5 / d1
+    vel[~ok] = np.nan
+    return vel, sens, dlevel
+
+
+def bisector(v: np.ndarray, ccf: np.ndarray, c0: float, amp: float, *, top=TOP, bottom=BOTTOM) -> Bisector:
+    """Bisector and bisector span of a CCF dip with fitted continuum ``c0`` and depth ``amp``."""
+    v = np.asarray(v, dtype=float)
+    y = np.asarray(ccf, dtype=float)
+    if not (np.all(np.isfinite(y)) and amp > 0):
+        nan = float("nan")
+        return Bisector(np.zeros(0), np.zeros(0), nan, np.zeros(v.size), 0.0, 0.0)
+    i_min = int(np.argmin(y))
+    dt = np.linspace(*top, _N_LEVELS)
+    db = np.linspace(*bottom, _N_LEVELS)
+    depths = np.concatenate((dt, db))
+    bis, sens, dlevel = _bisector_velocities(v, y, c0, amp, depths, i_min)
+    w = np.concatenate((np.full(_N_LEVELS, 1 / _N_LEVELS), np.full(_N_LEVELS, -1 / _N_LEVELS)))
+    span = float(np.sum(w * bis)) if np.all(np.isfinite(bis)) else float("nan")
+    # level = c0 - d amp: d level / d c0 = 1, d level / d amp = -d
+    return Bisector(depths, bis, span, w @ sens, float(np.sum(w * dlevel)), float(np.sum(w * dlevel * -depths)))
+
+
+def order_velocities(v: np.ndarray, order_ccfs: list[np.ndarray], c0: float, amp: float, mu: float,
+                     sigma: float) -> tuple[np.ndarray, np.ndarray]:
+    """Per-order velocity (m/s) with the width fixed; returns (velocities, gains).
+
+    ``gains[k]`` is d(velocity_k)/d(CCF_k) at the solution (rows over the grid), for the error.
+    """
+    n = len(order_ccfs)
+    Y = np.asarray(order_ccfs)
+    p = np.tile([c0, amp, mu], (n, 1)).astype(float)
+    for _ in range(3):
+        z = (v[None, :] - p[:, 2:3]) / sigma
+        e = np.exp(-0.5 * z * z)
+        f = p[:, 0:1] - p[:, 1:2] * e
+        J = np.stack((np.ones_like(e), -e, -p[:, 1:2] * e * z / sigma), axis=2)
+        A = np.einsum("nki,nkj->nij", J, J)
+        b = np.einsum("nki,nk->ni", J, Y - f)
+        with np.errstate(all="ignore"):
+            dp = np.linalg.solve(A + 1e-12 * np.eye(3)[None] * np.abs(A).max(), b[..., None])[..., 0]
+        p += np.where(np.isfinite(dp), dp, 0.0)
+    z = (v[None, :] - p[:, 2:3]) / sigma
+    e = np.exp(-0.5 * z * z)
+    J = np.stack((np.ones_like(e), -e, -p[:, 1:2] * e * z / sigma), axis=2)
+    A = np.einsum("nki,nkj->nij", J, J)
+    with np.errstate(all="ignore"):
+        G = np.linalg.solve(A, np.transpose(J, (0, 2, 1)))    # (n, 3, m)
+    ok = (p[:, 1] > 0) & np.isfinite(p).all(axis=1)
+    return np.where(ok, p[:, 2], np.nan), G[:, 2, :]
