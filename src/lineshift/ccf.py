@@ -136,6 +136,18 @@ class CorrelationData:
         out = np.sum([self._term_variance(t, sens) for t in self.terms], axis=0)
         return out if np.ndim(sensitivity) == 2 else float(out[0])
 
+    def variances(self, sensitivity: np.ndarray, order_sensitivities: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """:meth:`variance_of` for the rows of ``sensitivity`` and :meth:`order_variances` for
+        ``order_sensitivities``, in one pass over the orders (they share the per-order set-up)."""
+        sens = np.atleast_2d(np.asarray(sensitivity, dtype=float)) / self.denominator
+        total = np.zeros(sens.shape[0])
+        per_order = np.zeros(len(self.terms))
+        for k, t in enumerate(self.terms):
+            v = self._term_variance(t, np.vstack((sens, order_sensitivities[k:k + 1] / t.den)))
+            total += v[:-1]
+            per_order[k] = v[-1]
+        return total, per_order
+
     def order_variances(self, sensitivities: np.ndarray) -> np.ndarray:
         """Variance of ``sensitivities[k] @ order_ccf_k`` for each contributing order k (same order
         as :meth:`order_ccf`), from that order's pixels and its own denominator."""

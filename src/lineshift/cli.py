@@ -57,7 +57,8 @@ def _build_parser() -> argparse.ArgumentParser:
     m.add_argument("--velocity-range", metavar="LO,HI", help="barycentric search range, m/s (default -300000,300000)")
     m.add_argument("--velocity-step", type=float, metavar="M_S", help="fine CCF step, m/s (default one pixel)")
     m.add_argument("--box-width", type=float, metavar="M_S", help="mask box full width, m/s (default one pixel)")
-    m.add_argument("--method", choices=("mask",), help="velocity engine (default mask)")
+    m.add_argument("--method", choices=("mask", "template"),
+                   help="velocity engine: mask CCF (default) or least-squares template matching")
     m.add_argument("--components", type=int, choices=(1, 2), default=1,
                    help="2: fit two correlation profiles (double-lined binary); rv2... columns for the secondary")
     m.add_argument("--orders-table", metavar="TABLE", help="per-order velocities (one row per file and order)")
@@ -351,7 +352,8 @@ def _cmd_measure(args) -> int:
         from .table import write_frame
 
         per_order = [{"file": r["file"], **o} for r in rows for o in r.get("_orders", [])]
-        write_frame(pd.DataFrame(per_order, columns=["file", "order", "wavelength", "rv", "rv_err", "n_lines"]),
+        write_frame(pd.DataFrame(per_order, columns=["file", "order", "wavelength", "rv", "rv_err", "n_lines",
+                                                    "chi2_red", "flag"]),
                     args.orders_table, {"RV": "per-order topocentric velocity (profile width fixed), m/s"},
                     name="ORDERS")
     if args.plots:

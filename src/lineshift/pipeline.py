@@ -51,7 +51,7 @@ EXTRA_COLUMNS = ["method", "fwhm_err", "contrast_err", "bis_span", "bis_span_err
 SPECTRUM_SUFFIXES = (".fits", ".fit", ".fts", ".fits.gz", ".fit.gz", ".fts.gz", ".csv", ".csv.gz",
                      ".txt", ".txt.gz", ".dat", ".dat.gz", ".tsv", ".tsv.gz")
 
-ENGINES: dict[str, Callable] = {"mask": measure_mask}
+ENGINES: dict[str, Callable] = {"mask": measure_mask, "template": measure_mask}  # template: first pass by mask
 
 #: Set by ``--debug``: unexpected errors propagate instead of becoming a row status.
 DEBUG = False
@@ -108,6 +108,8 @@ class Task:
     bjd_tdb: float
     notes: tuple[str, ...]
     input_hash: str = ""
+    delta0: float | None = None      # template engine: starting ln(1 + rv_topo/c) in the template frame
+    factor: float | None = None      # template engine: the factor this spectrum entered the template with
 
 
 @dataclass(frozen=True)
@@ -116,6 +118,7 @@ class Context:
 
     mask: LineMask
     settings: MeasureSettings
+    template: object = None          # TemplateState for the template engine's second pass
 
 
 def expand_inputs(items: Iterable[str]) -> list[str]:
@@ -200,6 +203,8 @@ def measure_task(task: Task, ctx: Context) -> dict:
             warnings.simplefilter("ignore", RuntimeWarning)
             if s.components == 2:
                 return _two_component_row(task, obs, orders, ctx)
+            if ctx.template is not None:
+                return _template_row(task, obs, orders, ctx)
             res = ENGINES[s.method](orders, ctx.mask, s.search, berv=task.berv, path=task.path)
     except LineshiftError as exc:
         exc.path = exc.path or task.path
@@ -226,6 +231,67 @@ def measure_task(task: Task, ctx: Context) -> dict:
     if s.keep_ccf:
         row["_ccf"] = (res.velocity, res.ccf, res.model, res.bisector)
     return row
+
+
+def _template_row(task: Task, obs: Observation, orders, ctx: Context) -> dict:
+    from .template_engine import TemplateSettings, measure_template
+
+    if task.delta0 is None:
+        raise MeasurementError("no first-pass velocity to start the template fit from", path=task.path,
+                               status="no velocity")
+    res = measure_template(orders, ctx.template, TemplateSettings(), delta0=task.delta0, factor=task.factor,
+                           berv=task.berv, path=task.path)
+    flagged = [o for o in res.orders if o["flag"]]
+    notes = tuple(obs.notes) + task.notes + ((f"{len(flagged)} order(s) flagged (poor fit or rejected)",)
+                                             if flagged else ())
+    row = _empty_row(task.path, obs, "ok", "; ".join(notes), ctx.settings)
+    row.update(bjd_tdb=task.bjd_tdb, berv=task.berv, rv=float(compose_velocity(res.rv, task.berv)),
+               rv_err=res.rv_err * (1 + task.berv / C_MS), rv_topo=res.rv, snr=res.snr, n_orders=res.n_orders,
+               method="template")
+    row["_orders"] = [dict(o) for o in res.orders]
+    return row
+
+
+def _run_template(tasks: list[Task], first: dict[int, dict], ctx: Context, *, workers: int, scheduler,
+                  max_iter: int = 3) -> dict[int, dict]:
+    """The template engine's passes: co-add with the current velocities, fit every spectrum against
+    the template without itself, repeat until the velocities move by less than a tenth of their errors."""
+    from .coadd import TemplateAccumulator, log_grid
+    from .template_engine import TemplateState
+
+    rows = dict(first)
+    bands = np.zeros((0, 2)) if ctx.settings.telluric_bands is False else read_telluric_bands(
+        ctx.settings.telluric_bands or None)
+    for _ in range(max_iter):
+        use = [t for t in tasks if rows[t.index].get("status") == "ok"]
+        if len(use) < 2:
+            raise MeasurementError("the template engine needs at least two spectra with a first-pass velocity")
+        factor = {t.index: (1 + t.berv / C_MS) / (1 + rows[t.index]["rv"] / C_MS) for t in use}
+        lo, hi, steps = np.inf, 0.0, []
+        for t in use:  # one pass for the grid (streamed: nothing kept but the range)
+            sp = load_spectrum(t.path, medium=ctx.settings.medium)
+            a, b = sp.wavelength_range
+            lo, hi = min(lo, a * factor[t.index]), max(hi, b * factor[t.index])
+            steps.append(float(np.median(np.concatenate([C_MS * np.diff(o.wave) / o.wave[1:] for o in sp.orders]))))
+        acc = TemplateAccumulator(log_grid(lo * (1 - 1e-4), hi * (1 + 1e-4), np.median(steps) / 2), bands=bands)
+        for t in use:
+            acc.add(prepare_spectrum(load_spectrum(t.path, medium=ctx.settings.medium),
+                                     degree=ctx.settings.continuum_degree), factor[t.index])
+        state = TemplateState.from_accumulator(acc)
+        tctx = Context(ctx.mask, ctx.settings, state)
+        ttasks = [replace(t, delta0=-float(np.log(factor[t.index])), factor=factor[t.index]) for t in use]
+        new = {}
+        for task, row in run_tasks(ttasks, tctx, workers=workers, scheduler=scheduler):
+            first_row = first[task.index]
+            for k in ("fwhm", "contrast", "fwhm_err", "contrast_err", "bis_span", "bis_span_err", "n_lines"):
+                row[k] = first_row.get(k)
+            new[task.index] = row
+        moved = [abs(new[i]["rv"] - rows[i]["rv"]) / new[i]["rv_err"] for i in new
+                 if new[i]["status"] == "ok" and rows[i].get("method") == "template"]
+        rows.update(new)
+        if moved and max(moved) < 0.1:
+            break
+    return rows
 
 
 def _two_component_row(task: Task, obs: Observation, orders, ctx: Context) -> dict:
@@ -343,7 +409,12 @@ def measure_files(paths: list[str], mask: LineMask, settings: MeasureSettings, *
     if store is not None:
         from .store import settings_hash
 
-        key = report.settings_hash = settings_hash(settings, use_mask)
+        key = settings_hash(settings, use_mask)
+        if settings.method == "template":  # the template is made of all the inputs
+            import hashlib
+
+            key = hashlib.sha256((key + "".join(sorted(t.input_hash for t in tasks))).encode()).hexdigest()
+        report.settings_hash = key
         todo = []
         for t in tasks:
             row = store.get(t.input_hash, key)
@@ -353,10 +424,22 @@ def measure_files(paths: list[str], mask: LineMask, settings: MeasureSettings, *
             row.update(file=t.path)  # the path as given this time (the content is the same)
             report.skipped += 1
             emit(t.index, row)
-    for task, row in run_tasks(todo, ctx, workers=workers, scheduler=scheduler):
-        if store is not None:
-            store.put(task.input_hash, report.settings_hash, row)
-        emit(task.index, row)
+    if settings.method == "template":
+        # every result depends on every input through the template: measure all of them (any stored
+        # rows were for exactly this set of inputs, since the input hashes are part of the key)
+        first = {t.index: row for t, row in run_tasks(tasks if todo else [], ctx, workers=workers,
+                                                      scheduler=scheduler)}
+        final = _run_template(tasks, first, ctx, workers=workers, scheduler=scheduler) if todo else {}
+        for t in todo:
+            row = final.get(t.index, first.get(t.index))
+            if store is not None:
+                store.put(t.input_hash, report.settings_hash, row)
+            emit(t.index, row)
+    else:
+        for task, row in run_tasks(todo, ctx, workers=workers, scheduler=scheduler):
+            if store is not None:
+                store.put(task.input_hash, report.settings_hash, row)
+            emit(task.index, row)
     out = [r for r in rows if r is not None]
     if settings.components == 2:
         from .sb2 import assign_components
