@@ -62,7 +62,34 @@ def _to_topo(v_bary: float, berv: float) -> float:
     return C_MS * ((1 + v_bary / C_MS) / (1 + berv / C_MS) - 1)
 
 
-def _coarse(orders, mask, settings, berv, dv_pix, path):
+@dataclass(frozen=True)
+class CoarseCCF:
+    """The coarse search's CCF: grid (m/s, observatory frame), values, robust level and noise."""
+
+    grid: np.ndarray
+    ccf: np.ndarray
+    base: float
+    noise: float
+    step: float
+
+    def half_width(self, i: int) -> float:
+        """FWHM (m/s) of the dip at grid index ``i``, walking out to half its depth."""
+        y, half = self.ccf, self.base - 0.5 * (self.base - self.ccf[i])
+        left, right = i, i
+        while left > 0 and y[left] < half:
+            left -= 1
+        while right < y.size - 1 and y[right] < half:
+            right += 1
+        return max((right - left) * self.step, 2 * self.step)
+
+
+def coarse_ccf(orders, mask, settings: SearchSettings, berv: float, dv_pix: float, path, *,
+               all_lines: bool = False) -> CoarseCCF:
+    """CCF over the whole (barycentric) search range on a grid of two pixels, box = step.
+
+    ``all_lines=False`` uses the ``coarse_lines`` strongest lines (enough to find one star);
+    a faint secondary needs them all (:mod:`.sb2`).
+    """
     lo, hi = settings.velocity_range or DEFAULT_RANGE
     lo, hi = _to_topo(lo, berv), _to_topo(hi, berv)
     step = max(2.0 * dv_pix, 500.0)
@@ -70,28 +97,24 @@ def _coarse(orders, mask, settings, berv, dv_pix, path):
     if grid.size < 8:
         raise MeasurementError("velocity range is narrower than eight coarse steps", path=path,
                                status="velocity range too narrow")
-    strongest = np.sort(np.argsort(mask.weight)[::-1][: settings.coarse_lines])
-    data = correlate(orders, mask, grid, max(step, settings.box_width or dv_pix), lines=strongest)
+    lines = None if all_lines else np.sort(np.argsort(mask.weight)[::-1][: settings.coarse_lines])
+    data = correlate(orders, mask, grid, max(step, settings.box_width or dv_pix), lines=lines)
     if not data.terms:
         raise MeasurementError("no mask line falls on the spectrum", path=path, status="outside mask range")
     y = data.ccf
-    base = np.median(y)
-    noise = 1.4826 * np.median(np.abs(y - base))
-    i = int(np.argmin(y))
-    depth = base - y[i]
-    if not np.isfinite(depth) or noise <= 0 or depth < settings.min_significance * noise:
+    base = float(np.median(y))
+    return CoarseCCF(grid, y, base, float(1.4826 * np.median(np.abs(y - base))), step)
+
+
+def _coarse(orders, mask, settings, berv, dv_pix, path):
+    c = coarse_ccf(orders, mask, settings, berv, dv_pix, path)
+    i = int(np.argmin(c.ccf))
+    depth = c.base - c.ccf[i]
+    if not np.isfinite(depth) or c.noise <= 0 or depth < settings.min_significance * c.noise:
         raise MeasurementError(
-            f"no correlation peak (deepest dip {depth / noise if noise > 0 else 0:.1f} sigma)",
+            f"no correlation peak (deepest dip {depth / c.noise if c.noise > 0 else 0:.1f} sigma)",
             path=path, status="no correlation peak")
-    half = base - 0.5 * depth
-    left = i
-    while left > 0 and y[left] < half:
-        left -= 1
-    right = i
-    while right < y.size - 1 and y[right] < half:
-        right += 1
-    fwhm = max((right - left) * step, 2 * step)
-    return float(grid[i]), float(fwhm)
+    return float(c.grid[i]), float(c.half_width(i))
 
 
 def measure_mask(orders: list[PreparedOrder], mask: LineMask, settings: SearchSettings, *,

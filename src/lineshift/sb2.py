@@ -28,7 +28,7 @@ from scipy.optimize import least_squares
 
 from .ccf import correlate
 from .errors import MeasurementError
-from .mask_engine import DEFAULT_RANGE, SearchSettings, _to_topo, pixel_velocity_width
+from .mask_engine import SearchSettings, coarse_ccf, pixel_velocity_width
 from .model import LineMask
 from .peak import FWHM_PER_SIGMA
 from .prepare import PreparedOrder
@@ -86,29 +86,15 @@ def measure_two(orders: list[PreparedOrder], mask: LineMask, settings: SearchSet
         raise MeasurementError("no usable order (too few valid pixels)", path=path, status="no valid pixels")
     dv_pix = pixel_velocity_width(orders)
     box = settings.box_width or dv_pix
-    lo, hi = settings.velocity_range or DEFAULT_RANGE
-    lo, hi = _to_topo(lo, berv), _to_topo(hi, berv)
-    step_c = max(2.0 * dv_pix, 500.0)
-    grid = np.arange(lo, hi + 0.5 * step_c, step_c)
     # all lines: the background of chance line coincidences, against which a faint secondary must
     # stand out, falls as more lines are used
-    coarse = correlate(orders, mask, grid, max(step_c, box))
-    if not coarse.terms:
-        raise MeasurementError("no mask line falls on the spectrum", path=path, status="outside mask range")
-    y = coarse.ccf
-    base = np.median(y)
-    noise = 1.4826 * np.median(np.abs(y - base))
+    c = coarse_ccf(orders, mask, settings, berv, dv_pix, path, all_lines=True)
+    grid, y, base, noise = c.grid, c.ccf, c.base, c.noise
     i1 = int(np.argmin(y))
     d1 = base - y[i1]
     if noise <= 0 or d1 < settings.min_significance * noise:
         raise MeasurementError("no correlation peak", path=path, status="no correlation peak")
-    half = base - 0.5 * d1
-    left, right = i1, i1
-    while left > 0 and y[left] < half:
-        left -= 1
-    while right < y.size - 1 and y[right] < half:
-        right += 1
-    fwhm1 = max((right - left) * step_c, 2 * step_c)
+    fwhm1 = c.half_width(i1)
     far = np.abs(grid - grid[i1]) > 1.5 * fwhm1
     minima = np.flatnonzero((y[1:-1] < y[:-2]) & (y[1:-1] <= y[2:])) + 1
     minima = minima[far[minima]]

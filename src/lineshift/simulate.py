@@ -285,41 +285,21 @@ def observe(star: Star, instrument: Instrument, site: Site, mjd_start_utc: float
     berv, bjd = berv_bjd if berv_bjd is not None else barycentric_truth(star, site, np.array([mjd_mid]))
     berv, bjd = float(np.ravel(berv)[0]), float(np.ravel(bjd)[0])
     rv = float(star.rv(np.array([bjd]))[0]) if rv_override is None else float(rv_override)
-    model = _model(star, instrument.resolving_power)
     wave = instrument.wavelengths()
     wave_vac = airvac.air_to_vacuum(wave) if instrument.medium == "air" else wave
-    edges = np.concatenate([_edges(w)[None, :] for w in wave_vac])
-    nsub = 5
-    frac = (np.arange(nsub) + 0.5) / nsub
-    sub = edges[:, :-1, None] + (edges[:, 1:, None] - edges[:, :-1, None]) * frac[None, None, :]
-
-    def counts(v):
-        ratio = (1 + berv / C_MS) / (1 + v / C_MS)   # lambda_rest = lambda_obs (1 + z_B) / (1 + z_true)
-        return model(sub * ratio).mean(axis=2)
-
-    star_flux = counts(rv)
+    sub = _subpixel_wavelengths(wave_vac)
+    star_flux = _stellar_flux(star, instrument, sub, berv, rv)
     dv = 5.0
-    dflux = (counts(rv + dv) - counts(rv - dv)) / (2 * dv)
-    n = instrument.n_pixels
-    blaze = np.tile(_blaze(n), (instrument.n_orders, 1)) if instrument.blaze else np.ones((instrument.n_orders, n))
-    shape = blaze * (wave_vac / 5500.0) ** -1.0
-    peak = _peak_counts(instrument.snr, instrument.read_noise)
-    A = peak * shape * star_flux
-    dA = peak * shape * dflux
-    rn2 = instrument.read_noise**2
-    bound = photon_noise_bound(A, dA, instrument.read_noise)
-    if noise:
-        observed = A + rng.normal(size=A.shape) * np.sqrt(A + rn2)
-    else:
-        observed = A.copy()
-    err = np.sqrt(np.maximum(observed, 0.0) + rn2)
+    dflux = (_stellar_flux(star, instrument, sub, berv, rv + dv)
+             - _stellar_flux(star, instrument, sub, berv, rv - dv)) / (2 * dv)
+    A, observed, err, blaze = _through_instrument(instrument, wave_vac, star_flux, rng, noise=noise)
+    bound = photon_noise_bound(A, A / star_flux * dflux, instrument.read_noise)
     truth = {
         "mjd_mid_utc": mjd_mid, "bjd_tdb": bjd, "berv": berv, "rv_true": rv,
         "rv_topo_true": C_MS * ((1 + rv / C_MS) / (1 + berv / C_MS) - 1),
         "rv_bound": float(bound), "snr_peak": instrument.snr,
     }
-    return Exposure(instrument, star, site, mjd_start_utc, wave, observed, err,
-                       blaze if instrument.blaze else None, truth)
+    return Exposure(instrument, star, site, mjd_start_utc, wave, observed, err, blaze, truth)
 
 
 def photon_noise_bound(counts: np.ndarray, dcounts_dv: np.ndarray, read_noise: float = 0.0) -> float:
