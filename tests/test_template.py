@@ -117,3 +117,15 @@ def test_command_line(tmp_path):
     assert {"chi2_red", "flag"} <= set(o.columns)
     assert len(o) == 12 * sim.INSTRUMENTS["demo-echelle"].n_orders
     assert os.path.getsize(table) > 0
+
+
+def test_template_needs_two_spectra_and_one_component(tmp_path, capfd):
+    out = tmp_path / "one"
+    sim.simulate_set(str(out), [(sim.INSTRUMENTS["demo-echelle"], 1)], seed=5, compress=False)
+    mask = tmp_path / "m.csv"
+    sim.write_mask(sim.DEMO_STAR, str(mask))
+    table = tmp_path / "t.csv"
+    assert main(["measure", str(out), "--mask", str(mask), "--method", "template", "-o", str(table), "-q"]) == 1
+    assert pd.read_csv(table).status[0] == "no template"
+    assert "at least two spectra" in capfd.readouterr().err
+    assert main(["measure", str(out), "--mask", str(mask), "--method", "template", "--components", "2"]) == 2

@@ -96,6 +96,8 @@ class MeasureSettings:
             raise ConfigError(f"unknown method {self.method!r} (known: {', '.join(ENGINES)})")
         if self.components not in (1, 2):
             raise ConfigError(f"components must be 1 or 2, not {self.components}")
+        if self.components == 2 and self.method == "template":
+            raise ConfigError("--components 2 works with the mask engine only (--method mask)")
 
 
 @dataclass(frozen=True)
@@ -429,7 +431,15 @@ def measure_files(paths: list[str], mask: LineMask, settings: MeasureSettings, *
         # rows were for exactly this set of inputs, since the input hashes are part of the key)
         first = {t.index: row for t, row in run_tasks(tasks if todo else [], ctx, workers=workers,
                                                       scheduler=scheduler)}
-        final = _run_template(tasks, first, ctx, workers=workers, scheduler=scheduler) if todo else {}
+        try:
+            final = _run_template(tasks, first, ctx, workers=workers, scheduler=scheduler) if todo else {}
+        except MeasurementError as exc:   # e.g. fewer than two usable spectra: no template at all
+            final = {}
+            for i, row in first.items():
+                if row.get("status") == "ok":
+                    failed = _empty_row(row["file"], None, "no template", f"{row['file']}: {exc.reason}", settings)
+                    failed.update(bjd_tdb=row["bjd_tdb"], berv=row["berv"], _error=f"{row['file']}: {exc.reason}")
+                    final[i] = failed
         for t in todo:
             row = final.get(t.index, first.get(t.index))
             if store is not None:
