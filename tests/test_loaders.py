@@ -260,3 +260,13 @@ def test_simulated_exposure_round_trips_through_every_writer(tmp_path):
         mem = sim.to_spectrum(exp)
         for a, b in zip(sp.orders, mem.orders, strict=True):
             assert_allclose(a.flux, b.flux, rtol=1e-3 if layout == "text" else 1e-6)
+
+
+def test_log10_dispersion_with_dc_flag():
+    # the older convention (DC-FLAG = 1): CRVAL1, CDELT1 in log10 Angstrom
+    header = fits.Header()
+    for k, v in {"CTYPE1": "LINEAR", "CRVAL1": np.log10(5000.0), "CDELT1": 1e-5, "CRPIX1": 1.0, "DC-FLAG": 1}.items():
+        header[k] = v
+    wave, medium = wcs_wavelengths(header, 100)
+    assert_allclose(wave, 5000.0 * 10 ** (1e-5 * np.arange(100)), rtol=1e-14)
+    assert medium == "vacuum"

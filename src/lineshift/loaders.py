@@ -275,7 +275,7 @@ def wcs_wavelengths(header, n: int, path: str = "") -> tuple[np.ndarray, str]:
     """Pixel-centre wavelengths (Angstrom, in the header's medium) of a 1-D spectral WCS.
 
     Linear: ``lambda = CRVAL1 + CDELT1 (p - CRPIX1)``; ``-LOG``: ``lambda = CRVAL1 exp(CDELT1 (p -
-    CRPIX1) / CRVAL1)`` (Greisen et al. 2006, FITS WCS Paper III, sect. 3.2), p = 1..n.  The IRAF
+    CRPIX1) / CRVAL1)`` (Greisen et al. 2006, FITS WCS Paper III, sect. 3.2), p = 1..n.  The older
     convention ``DC-FLAG = 1`` (CRVAL1, CDELT1 in log10 Angstrom) is also read.
     Returns the wavelengths and the medium (``air`` for ``AWAV*``).
     """
