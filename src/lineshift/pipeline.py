@@ -264,17 +264,21 @@ def _run_template(tasks: list[Task], first: dict[int, dict], ctx: Context, *, wo
     rows = dict(first)
     bands = np.zeros((0, 2)) if ctx.settings.telluric_bands is False else read_telluric_bands(
         ctx.settings.telluric_bands or None)
+    ranges: dict[int, tuple[float, float, float]] = {}   # per file, once: they do not change between passes
+    for t in tasks:
+        if rows[t.index].get("status") == "ok":
+            sp = load_spectrum(t.path, medium=ctx.settings.medium)
+            a, b = sp.wavelength_range
+            step = float(np.median(np.concatenate([C_MS * np.diff(o.wave) / o.wave[1:] for o in sp.orders])))
+            ranges[t.index] = (a, b, step)
     for _ in range(max_iter):
-        use = [t for t in tasks if rows[t.index].get("status") == "ok"]
+        use = [t for t in tasks if rows[t.index].get("status") == "ok" and t.index in ranges]
         if len(use) < 2:
             raise MeasurementError("the template engine needs at least two spectra with a first-pass velocity")
         factor = {t.index: (1 + t.berv / C_MS) / (1 + rows[t.index]["rv"] / C_MS) for t in use}
-        lo, hi, steps = np.inf, 0.0, []
-        for t in use:  # one pass for the grid (streamed: nothing kept but the range)
-            sp = load_spectrum(t.path, medium=ctx.settings.medium)
-            a, b = sp.wavelength_range
-            lo, hi = min(lo, a * factor[t.index]), max(hi, b * factor[t.index])
-            steps.append(float(np.median(np.concatenate([C_MS * np.diff(o.wave) / o.wave[1:] for o in sp.orders]))))
+        lo = min(ranges[t.index][0] * factor[t.index] for t in use)
+        hi = max(ranges[t.index][1] * factor[t.index] for t in use)
+        steps = [ranges[t.index][2] for t in use]
         acc = TemplateAccumulator(log_grid(lo * (1 - 1e-4), hi * (1 + 1e-4), np.median(steps) / 2), bands=bands)
         for t in use:
             acc.add(prepare_spectrum(load_spectrum(t.path, medium=ctx.settings.medium),
