@@ -82,6 +82,33 @@ def _weighted_polyfit(V: np.ndarray, y: np.ndarray, w: np.ndarray) -> np.ndarray
     return np.linalg.solve(A, b[..., None])[..., 0]
 
 
+def _continuum_core(flux, var, good, degree, clip_low, clip_high, max_iter):
+    """Clipping iterations on every ``stride``-th pixel; returns (coef, used, stride, scatter^2)."""
+    n = flux.shape[1]
+    # a degree-4 polynomial needs no more than ~1000 points: the iterations run on a subset
+    stride = max(1, n // 1024)
+    V = _legendre_design(n, degree)[::stride]
+    g = good[:, ::stride]
+    y = np.where(g, flux[:, ::stride], 0.0)
+    v0 = np.where(g, var[:, ::stride], 0.0)
+    used = g.copy()
+    coef = np.zeros((flux.shape[0], degree + 1))
+    scatter2 = np.zeros(flux.shape[0])
+    for _ in range(max_iter):
+        enough = used.sum(axis=1) > degree + 1
+        coef = _weighted_polyfit(V, y, np.where(enough[:, None], used, g).astype(float))
+        resid = y - coef @ V.T
+        nused = np.maximum(used.sum(axis=1), 1)
+        scatter2 = np.maximum(np.sum(np.where(used, resid**2 - v0, 0.0), axis=1) / nused, 0.0)
+        sigma = np.sqrt(v0 + scatter2[:, None])
+        new = g & (resid > -clip_low * sigma) & (resid < clip_high * sigma)
+        changed = np.count_nonzero(new != used)
+        used = new
+        if changed <= 1e-3 * new.size:  # converged (a few pixels may flip back and forth)
+            break
+    return coef, used, stride, scatter2
+
+
 def fit_continuum(flux: np.ndarray, var: np.ndarray, good: np.ndarray, *, degree: int = 4,
                   clip_low: float = 2.0, clip_high: float = 3.0, max_iter: int = 10):
     """Iterative asymmetric sigma-clipped Legendre fit to the upper envelope, for one or more orders.
@@ -104,36 +131,18 @@ def fit_continuum(flux: np.ndarray, var: np.ndarray, good: np.ndarray, *, degree
         The fitted continuum (NaN for an order with too few usable pixels).
     used : ndarray of bool, same shape
         Pixels the final fit rests on (continuum pixels).
+
+    Notes
+    -----
+    The clipping iterations run on every ``n // 1024``-th pixel (a degree-4 polynomial needs no
+    more); the final polynomial is evaluated, and the continuum pixels chosen, at every pixel.
     """
     one = flux.ndim == 1
     flux, var, good = np.atleast_2d(flux), np.atleast_2d(var), np.atleast_2d(good)
-    n = flux.shape[1]
-    # the clipping iterations run on every `stride`-th pixel (a degree-4 polynomial needs no more);
-    # the final polynomial is evaluated, and the continuum pixels chosen, at every pixel
-    stride = max(1, n // 1024)
-    Vfull = _legendre_design(n, degree)
-    V = Vfull[::stride]
-    var0 = np.where(good, var, 0.0)
-    y0 = np.where(good, flux, 0.0)
-    y, v0, g = y0[:, ::stride], var0[:, ::stride], good[:, ::stride]
-    used = g.copy()
-    coef = np.zeros((flux.shape[0], degree + 1))
-    scatter2 = np.zeros(flux.shape[0])
-    for _ in range(max_iter):
-        enough = used.sum(axis=1) > degree + 1
-        coef = _weighted_polyfit(V, y, np.where(enough[:, None], used, g).astype(float))
-        resid = y - coef @ V.T
-        nused = np.maximum(used.sum(axis=1), 1)
-        scatter2 = np.maximum(np.sum(np.where(used, resid**2 - v0, 0.0), axis=1) / nused, 0.0)
-        sigma = np.sqrt(v0 + scatter2[:, None])
-        new = g & (resid > -clip_low * sigma) & (resid < clip_high * sigma)
-        changed = np.count_nonzero(new != used)
-        used = new
-        if changed <= 1e-3 * new.size:  # converged (a few pixels may flip back and forth)
-            break
-    fit = coef @ Vfull.T
-    resid = y0 - fit
-    sigma = np.sqrt(var0 + scatter2[:, None])
+    coef, used, _, scatter2 = _continuum_core(flux, var, good, degree, clip_low, clip_high, max_iter)
+    fit = coef @ _legendre_design(flux.shape[1], degree).T
+    resid = np.where(good, flux, 0.0) - fit
+    sigma = np.sqrt(np.where(good, var, 0.0) + scatter2[:, None])
     used_full = good & (resid > -clip_low * sigma) & (resid < clip_high * sigma)
     fit = np.where((used.sum(axis=1) > degree + 1)[:, None], fit, np.nan)
     return (fit[0], used_full[0]) if one else (fit, used_full)
@@ -145,39 +154,40 @@ def _prepare_block(orders: list[Order], degree: int) -> list[PreparedOrder | Non
     var = np.vstack([o.var for o in orders])
     good = np.isfinite(flux) & np.isfinite(var) & (var > 0)
     blaze = np.ones_like(flux)
-    for k, o in enumerate(orders):
-        if o.blaze is not None:
-            b = o.blaze
-            if np.all(np.isfinite(b[good[k]])) and np.all(b[good[k]] > 0):
-                blaze[k] = np.where(good[k], b, 1.0)
+    given = [k for k, o in enumerate(orders) if o.blaze is not None]
+    if given:
+        b = np.vstack([orders[k].blaze for k in given])
+        usable = np.all((np.isfinite(b) & (b > 0)) | ~good[given], axis=1)
+        for k, bk, ok in zip(given, b, usable, strict=True):
+            if ok:
+                blaze[k] = np.where(good[k], bk, 1.0)
     f = np.where(good, flux, 0.0)
     v = np.where(good, var, 0.0)
-    cont, used = fit_continuum(f / blaze, v / blaze**2, good, degree=degree)
-    cont = cont * blaze
+    coef, used, stride, _ = _continuum_core(f / blaze, v / blaze**2, good, degree, 2.0, 3.0, 10)
+    enough = used.sum(axis=1) > degree + 1
+    cont = np.where(enough[:, None], coef @ _legendre_design(flux.shape[1], degree).T, np.nan) * blaze
     good &= np.isfinite(cont) & (cont > 0)
     c = np.where(good, cont, 1.0)
     fn = np.where(good, f / c, 0.0)
     vn = np.where(good, v / c**2, 0.0)
-    used &= good
     # photon weight q = 1 / var_f at continuum level = c^2 / (alpha c + beta): the variance of the
-    # counts at the continuum, regressed linearly on the continuum (exact for photon + read noise)
+    # counts at the continuum, regressed linearly on the continuum (exact for photon + read noise),
+    # on the same pixel subset as the continuum's clipping
+    used &= good[:, ::stride]
     w = used.astype(float)
+    cs, vs = c[:, ::stride], v[:, ::stride]
     nw = np.maximum(w.sum(axis=1), 1.0)
-    mc = np.sum(w * c, axis=1) / nw
-    mv = np.sum(w * v, axis=1) / nw
-    cov = np.sum(w * (c - mc[:, None]) * (v - mv[:, None]), axis=1)
-    scc = np.sum(w * (c - mc[:, None]) ** 2, axis=1)
+    mc = np.sum(w * cs, axis=1) / nw
+    mv = np.sum(w * vs, axis=1) / nw
+    cov = np.sum(w * (cs - mc[:, None]) * (vs - mv[:, None]), axis=1)
+    scc = np.sum(w * (cs - mc[:, None]) ** 2, axis=1)
     alpha = np.where(scc > 0, cov / np.where(scc > 0, scc, 1.0), 0.0)
     vcont = mv[:, None] + alpha[:, None] * (c - mc[:, None])
-    out: list[PreparedOrder | None] = []
-    for k, o in enumerate(orders):
-        if good[k].sum() < max(32, 4 * (degree + 1)) or used[k].sum() < 10:
-            out.append(None)
-            continue
-        floor = 0.25 * np.mean(v[k][used[k]])
-        q = np.where(good[k], c[k] ** 2 / np.maximum(vcont[k], floor), 0.0)
-        out.append(PreparedOrder(o.wave, pixel_edges(o.wave), fn[k], vn[k], q, good[k], o.index))
-    return out
+    floor = 0.25 * mv
+    q = np.where(good, c**2 / np.maximum(vcont, floor[:, None]), 0.0)
+    usable = (good.sum(axis=1) >= max(32, 4 * (degree + 1))) & (used.sum(axis=1) * stride >= 10)
+    return [PreparedOrder(o.wave, pixel_edges(o.wave), fn[k], vn[k], q[k], good[k], o.index) if usable[k] else None
+            for k, o in enumerate(orders)]
 
 
 def prepare_order(order: Order, *, degree: int = 4) -> PreparedOrder | None:
