@@ -40,14 +40,17 @@ def _cum(S: np.ndarray, g: np.ndarray, x: np.ndarray) -> np.ndarray:
     return S[i] + (x - i) * g[i]
 
 
-def _cum_adjoint(a: np.ndarray, x: np.ndarray, n: int) -> np.ndarray:
-    """``h`` with ``sum(a * _cum(S, g, x)) == h @ g`` for every ``g`` of length ``n``."""
-    a = a.ravel()
-    i = np.minimum(x.ravel().astype(np.intp), n - 1)
-    f = x.ravel() - i
+def _cum_adjoint_at(a: np.ndarray, i: np.ndarray, f: np.ndarray, n: int) -> np.ndarray:
+    """:func:`_cum_adjoint` with the integer parts ``i`` and fractions ``f`` of x already split."""
     cnt = np.bincount(i, a, minlength=n)            # _cum(x) = sum_{p < i} g_p + f g_i
     below = np.concatenate((np.cumsum(cnt[::-1])[::-1][1:], [0.0]))
     return below + np.bincount(i, a * f, minlength=n)
+
+
+def _cum_adjoint(a: np.ndarray, x: np.ndarray, n: int) -> np.ndarray:
+    """``h`` with ``sum(a * _cum(S, g, x)) == h @ g`` for every ``g`` of length ``n``."""
+    i = np.minimum(x.ravel().astype(np.intp), n - 1)
+    return _cum_adjoint_at(a.ravel(), i, x.ravel() - i, n)
 
 
 def box_integrals(g: np.ndarray, xa: np.ndarray, xb: np.ndarray) -> np.ndarray:
@@ -137,8 +140,9 @@ class CorrelationData:
         return out if np.ndim(sensitivity) == 2 else float(out[0])
 
     def variances(self, sensitivity: np.ndarray, order_sensitivities: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """:meth:`variance_of` for the rows of ``sensitivity`` and :meth:`order_variances` for
-        ``order_sensitivities``, in one pass over the orders (they share the per-order set-up)."""
+        """:meth:`variance_of` for the rows of ``sensitivity``, and for each contributing order k the
+        variance of ``order_sensitivities[k] @ order_ccf_k`` (that order's pixels, its own
+        denominator), in one pass over the orders (they share the per-order set-up)."""
         sens = np.atleast_2d(np.asarray(sensitivity, dtype=float)) / self.denominator
         total = np.zeros(sens.shape[0])
         per_order = np.zeros(len(self.terms))
@@ -147,12 +151,6 @@ class CorrelationData:
             total += v[:-1]
             per_order[k] = v[-1]
         return total, per_order
-
-    def order_variances(self, sensitivities: np.ndarray) -> np.ndarray:
-        """Variance of ``sensitivities[k] @ order_ccf_k`` for each contributing order k (same order
-        as :meth:`order_ccf`), from that order's pixels and its own denominator."""
-        sens = np.atleast_2d(sensitivities)
-        return np.array([self._term_variance(t, sens[k:k + 1] / t.den)[0] for k, t in enumerate(self.terms)])
 
     @staticmethod
     def _term_variance(t: _OrderTerms, sens: np.ndarray) -> np.ndarray:
@@ -171,11 +169,7 @@ class CorrelationData:
         qv = t.order.weight * t.order.weight * t.order.var
         out = np.empty(sens.shape[0])
         for k in range(sens.shape[0]):
-            a = np.multiply.outer(t.weights, e[k]).ravel()
-            cnt = np.bincount(i, a, minlength=n)       # _cum(x) = sum_{p < i} g_p + frac g_i
-            below = np.cumsum(cnt[::-1])[::-1]
-            h = np.bincount(i, a * f, minlength=n)
-            h[:-1] += below[1:]
+            h = _cum_adjoint_at(np.multiply.outer(t.weights, e[k]).ravel(), i, f, n)
             out[k] = float(np.dot(h * h, qv))
         return out
 
