@@ -17,7 +17,7 @@ from collections.abc import Callable
 import numpy as np
 from scipy.special import erf
 
-__all__ = ["batched_fit", "gaussian_pixels", "gaussian_points"]
+__all__ = ["batched_fit", "gaussian_pixels", "gaussian_points", "weighted_line"]
 
 Model = Callable[[np.ndarray], tuple[np.ndarray, np.ndarray]]
 
@@ -103,3 +103,11 @@ def batched_fit(model: Model, p0: np.ndarray, y: np.ndarray, w: np.ndarray, *, n
     ok = np.all(np.isfinite(p), axis=1) & np.all(np.isfinite(np.einsum("nii->ni", cov)), axis=1)
     ok &= np.einsum("nii->ni", A).min(axis=1) > 0
     return p, cov, chi2, ok
+
+
+def weighted_line(x: np.ndarray, y: np.ndarray, err: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Weighted straight line ``y = a + b x`` (weights 1/err^2); returns ([a, b], covariance)."""
+    w = 1 / np.asarray(err, dtype=float) ** 2
+    X = np.column_stack((np.ones_like(x, dtype=float), x))
+    A = X.T @ (X * w[:, None])
+    return np.linalg.solve(A, X.T @ (w * np.asarray(y, dtype=float))), np.linalg.inv(A)

@@ -14,6 +14,7 @@ import numpy as np
 
 from .ccf import correlate
 from .errors import MeasurementError
+from .linefit import weighted_line
 from .model import C_MS, CCFResult, LineMask
 from .peak import fit_gaussian
 from .prepare import PreparedOrder
@@ -184,7 +185,7 @@ def _per_order(data, rv, err):
     ok = np.isfinite(rv) & np.isfinite(err)
     rows = []
     for k, t in enumerate(data.terms):
-        lam = float(np.average(data_mask_wavelengths(t), weights=t.weights))
+        lam = float(np.average(t.line_wavelengths, weights=t.weights))
         rows.append({"order": int(t.order.index), "wavelength": lam, "rv": float(rv[k]), "rv_err": float(err[k]),
                      "n_lines": int(t.lines.size)})
     use = ok & np.isfinite(err) & (err > 0)
@@ -195,14 +196,5 @@ def _per_order(data, rv, err):
     if use.sum() < 3:
         return rows, float("nan"), float("nan")
     x = np.log(np.array([r["wavelength"] for r in rows])[use] / 5500.0)
-    w = 1 / err[use] ** 2
-    X = np.column_stack((np.ones_like(x), x))
-    A = X.T @ (X * w[:, None])
-    coef = np.linalg.solve(A, X.T @ (w * rv[use]))
-    cov = np.linalg.inv(A)
+    coef, cov = weighted_line(x, rv[use], err[use])
     return rows, float(coef[1]), float(np.sqrt(cov[1, 1]))
-
-
-def data_mask_wavelengths(term) -> np.ndarray:
-    """Rest wavelengths of the mask lines an order term used (for its central wavelength)."""
-    return term.line_wavelengths

@@ -28,6 +28,7 @@ import pandas as pd
 from scipy.optimize import brentq, least_squares
 
 from .errors import ConfigError
+from .linefit import weighted_line
 from .orbit import Orbit, jupiter_masses, mass_function, minimum_mass, radial_velocity, semi_major_axis
 
 __all__ = ["Series", "bin_series", "bisector_correlation", "fit_orbit", "flag_outliers", "jitter", "periodogram",
@@ -404,13 +405,10 @@ def secondary_orbit(s: Series, fit: OrbitFit) -> dict | None:
 
     nu = true_anomaly(s.t[use], o)
     shape = -(np.cos(nu + o.omega) + o.eccentricity * np.cos(o.omega))
-    X = np.column_stack((np.ones(use.sum()), shape))
-    w = 1 / s.rv2_err[use] ** 2
-    A = X.T @ (X * w[:, None])
-    coef = np.linalg.solve(A, X.T @ (w * s.rv2[use]))
-    resid = s.rv2[use] - X @ coef
-    chi2 = float(np.sum(w * resid**2) / max(use.sum() - 2, 1))
-    cov = np.linalg.inv(A) * max(1.0, chi2)
+    coef, cov = weighted_line(shape, s.rv2[use], s.rv2_err[use])
+    resid = s.rv2[use] - (coef[0] + coef[1] * shape)
+    chi2 = float(np.sum((resid / s.rv2_err[use]) ** 2) / max(use.sum() - 2, 1))
+    cov = cov * max(1.0, chi2)
     k2, k2_err = float(coef[1]), float(np.sqrt(cov[1, 1]))
     k1, k1_err = o.semi_amplitude, fit.errors["semi_amplitude"]
     q = k1 / k2

@@ -24,7 +24,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .linefit import batched_fit, gaussian_pixels
+from .linefit import batched_fit, gaussian_pixels, weighted_line
 from .model import C_MS, Spectrum
 from .peak import FWHM_PER_SIGMA
 from .prepare import pixel_edges
@@ -156,21 +156,12 @@ def check_spectrum(spectrum: Spectrum, lab_wave: np.ndarray, settings: Wavecheck
     return line_rows, order_rows
 
 
-def _line_fit(x, r, e):
-    """Weighted straight line r = a + b x; returns a, b, cov."""
-    w = 1 / e**2
-    X = np.column_stack((np.ones_like(x), x))
-    A = X.T @ (X * w[:, None])
-    coef = np.linalg.solve(A, X.T @ (w * r))
-    return coef, np.linalg.inv(A)
-
-
 def _clip_order(residual, err, pix, status, sel, clip):
     for _ in range(5):
         use = sel[status[sel] == "ok"]
         if use.size < 4:
             return
-        coef, _ = _line_fit(pix[use], residual[use], err[use])
+        coef, _ = weighted_line(pix[use], residual[use], err[use])
         z = (residual[use] - coef[0] - coef[1] * pix[use]) / err[use]
         scale = max(1.0, 1.4826 * np.median(np.abs(z - np.median(z))))
         out = use[np.abs(z) > clip * scale]
@@ -191,7 +182,7 @@ def _order_summary(path, idx, residual, err, pix, status, sel, npix, settings) -
     row.update(offset=mean, offset_err=float(np.sqrt(1 / np.sum(w)) * np.sqrt(max(1.0, chi2)) if use.size > 1
                                            else np.sqrt(1 / np.sum(w))), chi2_red=chi2)
     if use.size >= 2:
-        coef, cov = _line_fit(pix[use], residual[use], err[use])
+        coef, cov = weighted_line(pix[use], residual[use], err[use])
         fit = coef[0] + coef[1] * pix[use]
         chi2l = float(np.sum(w * (residual[use] - fit) ** 2) / max(use.size - 2, 1))
         span = npix - 1
@@ -219,5 +210,5 @@ def file_summary(order_rows: list[dict]) -> dict:
 def fit_drift(t_days: np.ndarray, offset: np.ndarray, err: np.ndarray) -> tuple[float, float, float]:
     """Linear drift of the global offset: (rate in m/s per hour, its error, offset at the first time)."""
     t = (np.asarray(t_days) - np.min(t_days)) * 24.0
-    coef, cov = _line_fit(t, np.asarray(offset), np.asarray(err))
+    coef, cov = weighted_line(t, np.asarray(offset), np.asarray(err))
     return float(coef[1]), float(np.sqrt(cov[1, 1])), float(coef[0])
