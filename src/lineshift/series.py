@@ -73,11 +73,6 @@ class Series:
     def datasets(self) -> list[str]:
         return list(dict.fromkeys(self.dataset.tolist()))
 
-    def select(self, keep: np.ndarray) -> Series:
-        return Series(self.t[keep], self.rv[keep], self.err[keep], self.dataset[keep], self.file[keep],
-                      self.n_dropped, self.flag[keep], self.flag_reason[keep], self.n_binned[keep],
-                      self.bis[keep], self.bis_err[keep], self.rv2[keep], self.rv2_err[keep])
-
 
 def _read_table(path: str) -> pd.DataFrame:
     ext = os.path.splitext(path)[1].lower()
