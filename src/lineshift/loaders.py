@@ -199,17 +199,34 @@ def _find_ext(hdul, names):
     return None
 
 
-def _uncertainty_from_ext(hdul, flux: np.ndarray, path: str, notes: list):
-    for names, kind in ((STD_NAMES, "std"), (VAR_NAMES, "var"), (IVAR_NAMES, "ivar")):
-        hdu = _find_ext(hdul, names)
-        if hdu is not None:
-            arr = np.asarray(hdu.data, dtype=float)
-            if arr.shape != flux.shape:
-                raise SpectrumFormatError(
-                    f"extension {hdu.name} has shape {arr.shape}, flux has {flux.shape}", path=path)
-            return _to_variance(arr, kind)
+_UNCERTAINTY_KINDS = ((STD_NAMES, "std"), (VAR_NAMES, "var"), (IVAR_NAMES, "ivar"))
+
+
+def _variance(find, flux: np.ndarray, notes: list) -> np.ndarray:
+    """Variance from the first uncertainty found (std, then variance, then inverse variance names);
+    Poisson variance from the counts, with a note, when there is none.
+
+    ``find(names)`` returns the array stored under one of ``names``, or None.
+    """
+    for names, kind in _UNCERTAINTY_KINDS:
+        arr = find(names)
+        if arr is not None:
+            return _to_variance(np.asarray(arr, dtype=float), kind)
     notes.append(_POISSON_NOTE)
     return np.where(flux > 0, flux, np.nan)
+
+
+def _uncertainty_from_ext(hdul, flux: np.ndarray, path: str, notes: list):
+    def find(names):
+        hdu = _find_ext(hdul, names)
+        if hdu is None:
+            return None
+        if hdu.data.shape != flux.shape:
+            raise SpectrumFormatError(
+                f"extension {hdu.name} has shape {hdu.data.shape}, flux has {flux.shape}", path=path)
+        return hdu.data
+
+    return _variance(find, flux, notes)
 
 
 def _to_variance(arr: np.ndarray, kind: str) -> np.ndarray:
@@ -346,15 +363,11 @@ def _load_fits_table(hdu, cols, primary, path: str, *, medium: str | None, array
     factor = _wave_factor(cols[wname].unit, path, f"unit of column {cols[wname].name}")
     wave = np.asarray(data[cols[wname].name], dtype=float) * factor
     flux = np.asarray(data[cols["FLUX"].name], dtype=float)
-    var = None
-    for names, kind in ((STD_NAMES, "std"), (VAR_NAMES, "var"), (IVAR_NAMES, "ivar")):
+    def find(names):
         name = next((n for n in names if n in cols), None)
-        if name is not None:
-            var = _to_variance(np.asarray(data[cols[name].name], dtype=float), kind)
-            break
-    if var is None:
-        notes.append(_POISSON_NOTE)
-        var = np.where(flux > 0, flux, np.nan)
+        return None if name is None else data[cols[name].name]
+
+    var = _variance(find, flux, notes)
     if wave.shape != flux.shape or var.shape != flux.shape:
         raise SpectrumFormatError("wavelength, flux and uncertainty columns differ in shape", path=path)
     if wave.ndim == 1:
@@ -420,15 +433,7 @@ def _load_text(text: str, path: str, *, medium: str | None, arrays: bool):
     col = {n: table[:, i] for i, n in enumerate(names)}
     factor = _wave_factor(header.get("WAVEUNIT") or header.get("CUNIT1"), path, "WAVEUNIT")
     wave, flux = col[wname] * factor, col["FLUX"]
-    var = None
-    for names_, kind in ((STD_NAMES, "std"), (VAR_NAMES, "var"), (IVAR_NAMES, "ivar")):
-        name = next((n for n in names_ if n in col), None)
-        if name is not None:
-            var = _to_variance(col[name], kind)
-            break
-    if var is None:
-        notes.append(_POISSON_NOTE)
-        var = np.where(flux > 0, flux, np.nan)
+    var = _variance(lambda names: next((col[n] for n in names if n in col), None), flux, notes)
     if "ORDER" in col:
         ords = col["ORDER"]
         parts = [(wave[ords == k], flux[ords == k], var[ords == k], None) for k in np.unique(ords)]
