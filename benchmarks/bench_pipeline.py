@@ -28,13 +28,13 @@ from dataclasses import replace
 
 import numpy as np
 
-from lineshift import simulate as sim
-from lineshift.barycentric import barycentric_batch
-from lineshift.loaders import load_spectrum, read_observation
-from lineshift.mask_engine import SearchSettings, measure_mask
+from lineshift.calib.barycentric import barycentric_batch
+from lineshift.io.loaders import load_spectrum, read_observation
+from lineshift.measure.mask_engine import SearchSettings, measure_mask
+from lineshift.measure.prepare import prepare_spectrum
 from lineshift.model import LineMask
-from lineshift.pipeline import MeasureSettings, measure_files
-from lineshift.prepare import prepare_spectrum
+from lineshift.run.pipeline import MeasureSettings, measure_files
+from lineshift.sim import simulate as sim
 
 
 def _median_ms(fn, repeats: int) -> float:
@@ -71,8 +71,8 @@ def _case(density: float, tmp: str, repeats: int, batch: int) -> dict:
     }
     res["sum of stages"] = sum(v for k, v in res.items() if k != "mask lines")
     # template engine: a template from 8 noise realisations, then one leave-one-out fit
-    from lineshift.coadd import TemplateAccumulator, log_grid
-    from lineshift.template_engine import TemplateSettings, TemplateState, measure_template
+    from lineshift.measure.coadd import TemplateAccumulator, log_grid
+    from lineshift.measure.template_engine import TemplateSettings, TemplateState, measure_template
 
     rng = np.random.default_rng(11)
     factor = (1 + berv / 299792458.0) / (1 + exp.truth["rv_true"] / 299792458.0)

@@ -11,10 +11,10 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from lineshift import simulate as sim
-from lineshift.mask_engine import SearchSettings, measure_mask
+from lineshift.measure.mask_engine import SearchSettings, measure_mask
+from lineshift.measure.prepare import prepare_spectrum
 from lineshift.model import LineMask
-from lineshift.prepare import prepare_spectrum
+from lineshift.sim import simulate as sim
 
 
 @dataclass
@@ -70,9 +70,9 @@ def recover_template(star: sim.Star, instrument: sim.Instrument, *, n_velocities
     All spectra are kept in memory: first-pass mask velocities, a co-added template, then each
     spectrum fitted against the template without itself, iterated.
     """
-    from lineshift.coadd import TemplateAccumulator, log_grid
+    from lineshift.measure.coadd import TemplateAccumulator, log_grid
+    from lineshift.measure.template_engine import TemplateSettings, TemplateState, measure_template
     from lineshift.model import C_MS
-    from lineshift.template_engine import TemplateSettings, TemplateState, measure_template
 
     rng = np.random.default_rng(seed)
     mask = star_mask(star)

@@ -6,8 +6,8 @@ import pytest
 from numpy.testing import assert_allclose
 from specutils.utils.wcs_utils import air_to_vac, refraction_index, vac_to_air
 
-from lineshift import airvac
 from lineshift.errors import SpectrumFormatError
+from lineshift.io import airvac
 from lineshift.model import C_MS
 
 LAM = np.linspace(3000.0, 11000.0, 401)

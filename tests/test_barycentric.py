@@ -10,7 +10,7 @@ import pytest
 from astropy.coordinates import EarthLocation, SkyCoord
 from astropy.time import Time
 
-from lineshift.barycentric import Target, barycentric_batch, compose_velocity
+from lineshift.calib.barycentric import Target, barycentric_batch, compose_velocity
 from lineshift.errors import ConfigError, DegradedAccuracyWarning, IERSPredictionWarning
 from lineshift.model import C_MS, Observation
 

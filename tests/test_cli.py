@@ -12,7 +12,7 @@ from astropy.io import fits
 from astropy.table import Table
 
 from lineshift.cli import main
-from lineshift.pipeline import COLUMNS
+from lineshift.io.table import COLUMNS
 
 
 def _truth(directory):
@@ -288,7 +288,7 @@ def test_velocity_range_and_step_overrides(sample_set, tmp_path):
 
 
 def test_progress_reports(capsys, monkeypatch):
-    from lineshift import cli
+    from lineshift.cli import app as cli
 
     quiet = cli._Progress(100, quiet=True)
     for _ in range(100):

@@ -3,8 +3,8 @@
 import pytest
 from astropy.coordinates import Angle
 
-from lineshift.config import load_config, parse_site
 from lineshift.errors import ConfigError
+from lineshift.run.config import load_config, parse_site
 
 
 def _cfg(tmp_path, text):

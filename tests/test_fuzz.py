@@ -15,10 +15,10 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from lineshift.errors import LineshiftError, MeasurementError
-from lineshift.loaders import load_spectrum, read_observation
-from lineshift.mask_engine import SearchSettings, measure_mask
+from lineshift.io.loaders import load_spectrum, read_observation
+from lineshift.measure.mask_engine import SearchSettings, measure_mask
+from lineshift.measure.prepare import prepare_spectrum
 from lineshift.model import LineMask, Observation, Order, Spectrum
-from lineshift.prepare import prepare_spectrum
 
 FUZZ = settings(max_examples=int(os.environ.get("LINESHIFT_FUZZ_EXAMPLES", "120")), deadline=None,
                 suppress_health_check=[HealthCheck.too_slow])

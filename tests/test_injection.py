@@ -12,7 +12,7 @@ import numpy as np
 import pytest
 
 from injection import recover
-from lineshift import simulate as sim
+from lineshift.sim import simulate as sim
 
 SCENARIOS = {
     # name: (star, instrument, bound factor from the issue)

@@ -9,13 +9,13 @@ import pandas as pd
 import pytest
 from specutils.utils.wcs_utils import vac_to_air
 
-from lineshift import simulate as sim
+from lineshift.calib.linefind import LineSettings
 from lineshift.cli import main
-from lineshift.linefind import LineSettings
-from lineshift.linelists import DEFAULT_LAB_LINES, read_lab_lines, read_mask
-from lineshift.mask_builder import MaskBuildSettings, build_mask
+from lineshift.io.linelists import DEFAULT_LAB_LINES, read_lab_lines, read_mask
 from lineshift.model import C_MS
-from lineshift.pipeline import MeasureSettings
+from lineshift.run.mask_builder import MaskBuildSettings, build_mask
+from lineshift.run.pipeline import MeasureSettings
+from lineshift.sim import simulate as sim
 
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 
@@ -136,8 +136,8 @@ def test_rejection_reasons(tmp_path):
 
 
 def test_weights_follow_depth_and_sharpness():
-    from lineshift.coadd import Template
-    from lineshift.linefind import find_lines
+    from lineshift.calib.linefind import find_lines
+    from lineshift.measure.coadd import Template
 
     step = 400.0
     lnw = np.log(5000.0) + np.arange(20000) * step / C_MS

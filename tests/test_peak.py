@@ -4,7 +4,7 @@ import numpy as np
 import pytest
 
 from lineshift.errors import MeasurementError
-from lineshift.peak import FWHM_PER_SIGMA, fit_gaussian, gaussian_profile
+from lineshift.measure.peak import FWHM_PER_SIGMA, fit_gaussian, gaussian_profile
 
 
 def test_fwhm_constant():

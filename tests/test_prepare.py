@@ -3,10 +3,10 @@
 import numpy as np
 import pytest
 
-from lineshift.linelists import DEFAULT_TELLURIC, read_telluric_bands
+from lineshift.io.linelists import DEFAULT_TELLURIC, read_telluric_bands
+from lineshift.measure.prepare import fit_continuum, prepare_spectrum, reject_telluric_lines
 from lineshift.model import C_MS, LineMask, Order, Spectrum
 from lineshift.model import Observation as Obs
-from lineshift.prepare import fit_continuum, prepare_spectrum, reject_telluric_lines
 
 
 def test_continuum_fit_follows_upper_envelope_under_lines():

@@ -13,7 +13,7 @@ import pytest
 from astropy.io import fits
 
 from lineshift.cli import main
-from lineshift.store import ResultStore
+from lineshift.run.store import ResultStore
 
 
 def _copies(src: str, directory, n: int) -> list[str]:
@@ -171,7 +171,7 @@ def test_dask_cluster_gives_identical_velocities(sample_set, tmp_path, dask_clus
 
 def test_unreachable_scheduler_is_a_usage_error(echelle_file, tmp_path, capfd, monkeypatch):
     pytest.importorskip("distributed")
-    from lineshift import executors
+    from lineshift.run import executors
 
     monkeypatch.setattr(executors, "CONNECT_TIMEOUT", "2s")
     src, mask = echelle_file
@@ -182,9 +182,9 @@ def test_unreachable_scheduler_is_a_usage_error(echelle_file, tmp_path, capfd, m
 
 
 def test_executor_keeps_a_bounded_number_in_flight(echelle_file, tmp_path):
-    from lineshift.executors import run_tasks
-    from lineshift.linelists import read_mask
-    from lineshift.pipeline import Context, MeasureSettings, Task
+    from lineshift.io.linelists import read_mask
+    from lineshift.run.executors import run_tasks
+    from lineshift.run.pipeline import Context, MeasureSettings, Task, measure_task
 
     src, mask = echelle_file
     files = _copies(src, tmp_path, 12)
@@ -198,7 +198,7 @@ def test_executor_keeps_a_bounded_number_in_flight(echelle_file, tmp_path):
 
     limit = 3
     received = 0
-    for _task, row in run_tasks(tasks(), ctx, workers=2, max_in_flight=limit):
+    for _task, row in run_tasks(measure_task, tasks(), ctx, workers=2, max_in_flight=limit):
         received += 1
         assert row["status"] == "ok"
         # never more than `limit` tasks submitted beyond those already handed back

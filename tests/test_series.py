@@ -9,9 +9,9 @@ import pytest
 from astropy import constants as const
 from astropy.timeseries import LombScargle
 
-from lineshift import series as ser
 from lineshift.cli import main
-from lineshift.orbit import (
+from lineshift.series import analysis as ser
+from lineshift.series.orbit import (
     Orbit,
     jupiter_masses,
     mass_function,
@@ -170,7 +170,7 @@ def test_sample_spectra_recover_the_invented_companion(tmp_path):
     assert main(["series", str(rv), "--dataset-column", "layout", "--fit-orbit", "--stellar-mass", "1.0",
                  "-o", str(tmp_path / "series.csv"), "--json", str(js), "-q"]) == 0
     s = json.loads(js.read_text())
-    from lineshift.simulate import DEMO_STAR
+    from lineshift.sim.simulate import DEMO_STAR
 
     o = DEMO_STAR.orbit
     assert s["period"] == pytest.approx(o.period, rel=0.01)

@@ -3,10 +3,9 @@
 Importing the package configures astropy for offline use (see :mod:`lineshift._offline`).
 """
 
-from ._offline import configure_offline
+from lineshift._offline import configure_offline
+from lineshift._version import __version__
 
 configure_offline()
-
-__version__ = "0.1.0"
 
 __all__ = ["__version__"]

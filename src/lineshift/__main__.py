@@ -2,6 +2,6 @@
 
 import sys
 
-from .cli import main
+from lineshift.cli.app import main
 
 sys.exit(main())

@@ -15,13 +15,13 @@ from collections.abc import Sequence
 import astropy.units as u
 from astropy.table import QTable
 
-from .barycentric import Target
-from .errors import ConfigError
-from .linelists import read_mask
-from .mask_engine import SearchSettings
-from .model import LineMask
-from .pipeline import COLUMNS, EXTRA_COLUMNS, MeasureSettings, Overrides, expand_inputs, measure_files
-from .table import UNITS, rows_to_frame
+from lineshift.calib.barycentric import Target
+from lineshift.errors import ConfigError
+from lineshift.io.linelists import read_mask
+from lineshift.io.table import COLUMNS, EXTRA_COLUMNS, UNITS, rows_to_frame
+from lineshift.measure.mask_engine import SearchSettings
+from lineshift.model import LineMask
+from lineshift.run.pipeline import MeasureSettings, Overrides, expand_inputs, measure_files
 
 __all__ = ["measure"]
 

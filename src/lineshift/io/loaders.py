@@ -1,0 +1,500 @@
+"""Spectrum loaders: any supported file to orders of (vacuum wavelength, flux, variance).
+
+The layout is detected from the file's content, not its name (``shared/interface.md``):
+
+``wcs-1d``       FITS 1-D image with a spectral WCS (FITS WCS Paper III, Greisen et al. 2006):
+                 CTYPE1 ``WAVE``, ``AWAV``, ``WAVE-LOG``, ``AWAV-LOG``; CUNIT1; CRVAL1/CRPIX1 with
+                 CDELT1 or CD1_1.  Uncertainty from an image extension ``ERR``/``ERROR``/``SIGMA``/
+                 ``UNCERT`` (standard deviation), ``VAR``/``VARIANCE`` or ``IVAR``.
+``table``        FITS binary table with wavelength / flux / uncertainty columns.  Array-valued
+                 columns give one order per row.
+``multi-order``  FITS image extensions ``FLUX`` and ``WAVE`` (orders x pixels), ``ERR`` (or
+                 ``VAR``/``IVAR``), optional ``BLAZE``; metadata in the primary header.
+``text``         CSV or whitespace table with a header row naming the columns; ``# KEY = value``
+                 comment lines are read as header keywords, ``# medium: air`` marks air
+                 wavelengths; an optional ``order`` column splits orders.
+
+gzip-compressed files are recognised by their magic bytes.  We compute WCS wavelengths ourselves
+(specutils reads ``AWAV`` like ``WAVE`` and leaves no air flag) and check them against
+``astropy.wcs`` in the tests.  Air wavelengths are converted to vacuum on load (:mod:`.airvac`).
+"""
+
+from __future__ import annotations
+
+import gzip
+import io
+import os
+import warnings
+from collections.abc import Callable
+from dataclasses import replace
+
+import numpy as np
+
+from lineshift.errors import LineshiftError, MetadataError, SpectrumFormatError
+from lineshift.io import airvac
+from lineshift.io.metadata import read_site, read_target, read_time
+from lineshift.model import Observation, Order, Spectrum
+
+__all__ = ["load_spectrum", "read_observation"]
+
+WAVE_NAMES = ("WAVE", "WAVELENGTH", "LAMBDA", "LAM")
+FLUX_NAMES = ("FLUX",)
+STD_NAMES = ("ERR", "ERROR", "SIGMA", "UNCERT")
+VAR_NAMES = ("VAR", "VARIANCE")
+IVAR_NAMES = ("IVAR",)
+_UNIT_TO_ANGSTROM = {
+    "angstrom": 1.0, "angstroms": 1.0, "a": 1.0, "aa": 1.0, "0.1nm": 1.0,
+    "nm": 10.0, "nanometer": 10.0, "nanometers": 10.0,
+    "um": 1.0e4, "micron": 1.0e4, "microns": 1.0e4, "micrometer": 1.0e4,
+    "m": 1.0e10, "meter": 1.0e10, "cm": 1.0e8, "mm": 1.0e7,
+}
+_POISSON_NOTE = "no uncertainty given: Poisson variance from the counts assumed"
+
+
+# --------------------------------------------------------------------------- file access
+
+def _read_bytes(path: str) -> bytes:
+    try:
+        with open(path, "rb") as fh:
+            raw = fh.read()
+    except IsADirectoryError:
+        raise SpectrumFormatError("is a directory, not a spectrum", path=path) from None
+    except OSError as exc:
+        raise SpectrumFormatError(f"cannot be read ({exc.strerror or exc})", path=path) from None
+    if raw[:2] == b"\x1f\x8b":
+        try:
+            raw = gzip.decompress(raw)
+        except (OSError, EOFError, gzip.BadGzipFile) as exc:
+            raise SpectrumFormatError(f"is a damaged gzip file ({exc})", path=path) from None
+    if not raw.strip():
+        raise SpectrumFormatError("is empty", path=path, status="empty file")
+    return raw
+
+
+def _is_fits(raw: bytes) -> bool:
+    return raw[:9] == b"SIMPLE  ="
+
+
+def _open_fits(raw: bytes, path: str, *, read_data: bool = True):
+    from astropy.io import fits
+
+    if len(raw) % 2880:
+        raise SpectrumFormatError(
+            f"is truncated ({len(raw)} bytes is not a whole number of 2880-byte FITS blocks)",
+            path=path, status="truncated")
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("error")
+            hdul = fits.open(io.BytesIO(raw), memmap=False, lazy_load_hdus=False)
+            if read_data:
+                for hdu in hdul:
+                    _ = hdu.data  # force reading: a damaged data unit fails here, not later
+    except Exception as exc:  # astropy raises many types for damaged files
+        raise SpectrumFormatError(f"is not a readable FITS file ({_short(exc)})", path=path) from None
+    return hdul
+
+
+def _short(exc: BaseException) -> str:
+    text = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+    return text[:160]
+
+
+def _header_getter(*headers) -> Callable[[str], object]:
+    """First value found for a keyword across headers (blank strings count as absent)."""
+
+    def get(key: str):
+        for h in headers:
+            if h is not None and key in h:
+                value = h[key]
+                if value is None or (isinstance(value, str) and not value.strip()):
+                    continue
+                if type(value).__name__ == "Undefined":
+                    continue
+                return value
+        return None
+
+    return get
+
+
+def _wave_factor(unit, path: str, what: str) -> float:
+    if unit is None or not str(unit).strip():
+        return 1.0
+    key = str(unit).strip().lower()
+    if key not in _UNIT_TO_ANGSTROM:
+        raise SpectrumFormatError(f"{what} = {unit!r} is not a wavelength unit (Angstrom, nm, um, m)",
+                                  path=path, status="bad wavelengths")
+    return _UNIT_TO_ANGSTROM[key]
+
+
+# --------------------------------------------------------------------------- public API
+
+def read_observation(path: str, *, medium: str | None = None) -> Observation:
+    """Read only the observation record of a file (cheap: no arrays are validated)."""
+    return _load(path, medium=medium, arrays=False)[0]
+
+
+def load_spectrum(path: str, *, medium: str | None = None) -> Spectrum:
+    """Load a spectrum file of any supported layout.
+
+    Parameters
+    ----------
+    path : str
+        The file.
+    medium : {'air', 'vacuum'} or None
+        Override the medium of the file's wavelengths (config / ``--medium``).
+
+    Returns
+    -------
+    Spectrum
+        Orders with vacuum wavelengths in Angstrom, flux and variance, plus the observation record.
+
+    Raises
+    ------
+    SpectrumFormatError
+        Not a spectrum in a supported layout, truncated, or with unusable arrays.
+    MetadataError
+        A metadata keyword is present but malformed (missing metadata is not an error here).
+    """
+    obs, orders = _load(path, medium=medium, arrays=True)
+    return Spectrum(obs, tuple(orders))
+
+
+def _load(path: str, *, medium: str | None, arrays: bool):
+    path = os.fspath(path)
+    raw = _read_bytes(path)
+    if _is_fits(raw):
+        hdul = _open_fits(raw, path, read_data=arrays)
+        try:
+            return _load_fits(hdul, path, medium=medium, arrays=arrays)
+        except LineshiftError:
+            raise
+        except Exception as exc:  # any surprise inside a damaged header is still a format error
+            raise SpectrumFormatError(f"could not be interpreted ({_short(exc)})", path=path) from None
+    try:
+        if b"\x00" in raw[:65536]:
+            raise UnicodeDecodeError("utf-8", raw[:1], 0, 1, "binary content")
+        text = raw.decode("utf-8")
+    except UnicodeDecodeError:
+        raise SpectrumFormatError("is neither FITS nor a text table", path=path) from None
+    try:
+        return _load_text(text, path, medium=medium, arrays=arrays)
+    except LineshiftError:
+        raise
+    except Exception as exc:  # a surprise inside a damaged text file is still a format error
+        raise SpectrumFormatError(f"could not be interpreted ({_short(exc)})", path=path) from None
+
+
+# --------------------------------------------------------------------------- FITS
+
+def _has_data(hdu) -> bool:
+    """Whether an HDU has a non-empty data unit, from its header alone (no data is read)."""
+    naxis = int(hdu.header.get("NAXIS", 0) or 0)
+    return naxis > 0 and all(int(hdu.header.get(f"NAXIS{k}", 0) or 0) > 0 for k in range(1, naxis + 1))
+
+
+def _find_ext(hdul, names):
+    for hdu in hdul[1:]:
+        if hdu.name.upper() in names and _has_data(hdu):
+            return hdu
+    return None
+
+
+_UNCERTAINTY_KINDS = ((STD_NAMES, "std"), (VAR_NAMES, "var"), (IVAR_NAMES, "ivar"))
+
+
+def _variance(find, flux: np.ndarray, notes: list) -> np.ndarray:
+    """Variance from the first uncertainty found (std, then variance, then inverse variance names);
+    Poisson variance from the counts, with a note, when there is none.
+
+    ``find(names)`` returns the array stored under one of ``names``, or None.
+    """
+    for names, kind in _UNCERTAINTY_KINDS:
+        arr = find(names)
+        if arr is not None:
+            return _to_variance(np.asarray(arr, dtype=float), kind)
+    notes.append(_POISSON_NOTE)
+    return np.where(flux > 0, flux, np.nan)
+
+
+def _uncertainty_from_ext(hdul, flux: np.ndarray, path: str, notes: list):
+    def find(names):
+        hdu = _find_ext(hdul, names)
+        if hdu is None:
+            return None
+        if hdu.data.shape != flux.shape:
+            raise SpectrumFormatError(
+                f"extension {hdu.name} has shape {hdu.data.shape}, flux has {flux.shape}", path=path)
+        return hdu.data
+
+    return _variance(find, flux, notes)
+
+
+def _to_variance(arr: np.ndarray, kind: str) -> np.ndarray:
+    with np.errstate(divide="ignore", invalid="ignore"):
+        if kind == "std":
+            return np.where(arr > 0, arr * arr, np.nan)
+        if kind == "var":
+            return np.where(arr > 0, arr, np.nan)
+        return np.where(arr > 0, 1.0 / arr, np.nan)
+
+
+def _medium_from_ctype(ctype: str | None) -> str:
+    return "air" if ctype and str(ctype).strip().upper().startswith("AWAV") else "vacuum"
+
+
+def _load_fits(hdul, path: str, *, medium: str | None, arrays: bool):
+    from astropy.io import fits
+
+    primary = hdul[0].header
+    flux_ext = _find_ext(hdul, ("FLUX",))
+    wave_ext = _find_ext(hdul, ("WAVE", "WAVELENGTH"))
+    if flux_ext is not None and wave_ext is not None and isinstance(flux_ext, fits.ImageHDU):
+        get = _header_getter(primary, flux_ext.header)
+        file_medium = medium or _medium_from_ctype(get("CTYPE1"))
+        notes: list[str] = []
+        obs = _observation(get, path, "multi-order", file_medium, notes)
+        if not arrays:
+            return obs, []
+        flux = np.atleast_2d(np.asarray(flux_ext.data, dtype=float))
+        wave = np.atleast_2d(np.asarray(wave_ext.data, dtype=float))
+        if wave.shape != flux.shape:
+            raise SpectrumFormatError(f"WAVE has shape {wave.shape}, FLUX has {flux.shape}", path=path)
+        wave = wave * _wave_factor(wave_ext.header.get("BUNIT") or wave_ext.header.get("CUNIT1"),
+                                   path, "WAVE unit")
+        var = np.atleast_2d(_uncertainty_from_ext(hdul, flux, path, notes))
+        blaze_ext = _find_ext(hdul, ("BLAZE",))
+        blaze = None
+        if blaze_ext is not None:
+            blaze = np.atleast_2d(np.asarray(blaze_ext.data, dtype=float))
+            if blaze.shape != flux.shape:
+                raise SpectrumFormatError(f"BLAZE has shape {blaze.shape}, FLUX has {flux.shape}", path=path)
+        orders = [(wave[i], flux[i], var[i], None if blaze is None else blaze[i]) for i in range(flux.shape[0])]
+        orders = _build_orders(orders, file_medium, path, notes)
+        return replace(obs, notes=tuple(notes)), orders
+
+    for hdu in hdul:
+        if isinstance(hdu, fits.BinTableHDU) and _has_data(hdu):
+            cols = {c.name.upper(): c for c in hdu.columns}
+            if any(n in cols for n in WAVE_NAMES) and "FLUX" in cols:
+                return _load_fits_table(hdu, cols, primary, path, medium=medium, arrays=arrays)
+
+    for hdu in hdul:
+        if isinstance(hdu, fits.PrimaryHDU | fits.ImageHDU) and _has_data(hdu):
+            if hdu.header.get("CTYPE1") is not None:
+                return _load_wcs_1d(hdul, hdu, primary, path, medium=medium, arrays=arrays)
+            break
+    raise SpectrumFormatError(
+        "has no spectrum: no 1-D image with CTYPE1, no table with wavelength and FLUX columns, "
+        "no FLUX+WAVE image extensions", path=path, status="not a spectrum")
+
+
+def wcs_wavelengths(header, n: int, path: str = "") -> tuple[np.ndarray, str]:
+    """Pixel-centre wavelengths (Angstrom, in the header's medium) of a 1-D spectral WCS.
+
+    Linear: ``lambda = CRVAL1 + CDELT1 (p - CRPIX1)``; ``-LOG``: ``lambda = CRVAL1 exp(CDELT1 (p -
+    CRPIX1) / CRVAL1)`` (Greisen et al. 2006, FITS WCS Paper III, sect. 3.2), p = 1..n.  The older
+    convention ``DC-FLAG = 1`` (CRVAL1, CDELT1 in log10 Angstrom) is also read.
+    Returns the wavelengths and the medium (``air`` for ``AWAV*``).
+    """
+    ctype = str(header.get("CTYPE1", "")).strip().upper()
+    base, _, algo = ctype.partition("-")
+    algo = algo.strip("-")
+    if base not in ("WAVE", "AWAV", "LINEAR") or algo not in ("", "LOG"):
+        raise SpectrumFormatError(
+            f"CTYPE1 = {ctype!r} is not a wavelength axis (WAVE, AWAV, WAVE-LOG, AWAV-LOG)",
+            path=path, status="bad wavelengths")
+    try:
+        crval = float(header["CRVAL1"])
+        crpix = float(header.get("CRPIX1", 1.0))
+        delt = header.get("CDELT1", header.get("CD1_1"))
+        if delt is None:
+            raise KeyError("CDELT1")
+        delt = float(delt)
+    except KeyError as exc:
+        raise SpectrumFormatError(f"spectral WCS lacks {exc.args[0]}", path=path, status="bad wavelengths") from None
+    except (TypeError, ValueError):
+        raise SpectrumFormatError("spectral WCS keywords are not numbers", path=path,
+                                  status="bad wavelengths") from None
+    if not (np.isfinite(crval) and np.isfinite(delt) and np.isfinite(crpix)):
+        raise SpectrumFormatError("spectral WCS keywords are not finite", path=path, status="bad wavelengths")
+    if delt == 0:
+        raise SpectrumFormatError("zero dispersion (CDELT1 = 0)", path=path, status="bad wavelengths")
+    if delt < 0:
+        raise SpectrumFormatError(
+            "reversed dispersion (CDELT1 < 0): wavelengths must increase with pixel", path=path,
+            status="bad wavelengths")
+    pix = np.arange(1, n + 1, dtype=float) - crpix
+    if int(header.get("DC-FLAG", 0) or 0) == 1:
+        wave = 10.0 ** (crval + delt * pix)
+        factor = 1.0
+    else:
+        factor = _wave_factor(header.get("CUNIT1"), path, "CUNIT1")
+        wave = crval * np.exp(delt * pix / crval) if algo == "LOG" else crval + delt * pix
+    return wave * factor, ("air" if base == "AWAV" else "vacuum")
+
+
+def _load_wcs_1d(hdul, hdu, primary, path: str, *, medium: str | None, arrays: bool):
+    get = _header_getter(hdu.header, primary)
+    notes: list[str] = []
+    shape = [int(hdu.header.get(f"NAXIS{k}", 0)) for k in range(1, int(hdu.header["NAXIS"]) + 1)]
+    if shape[0] < 2 or any(n != 1 for n in shape[1:]):
+        raise SpectrumFormatError(f"image with CTYPE1 has shape {tuple(shape[::-1])}, expected 1-D along axis 1",
+                                  path=path)
+    wave, wcs_medium = wcs_wavelengths(hdu.header, shape[0], path)
+    file_medium = medium or wcs_medium
+    obs = _observation(get, path, "wcs-1d", file_medium, notes)
+    if not arrays:
+        return obs, []
+    data = np.asarray(hdu.data, dtype=float).ravel()
+    var = _uncertainty_from_ext(hdul, data, path, notes)
+    orders = _build_orders([(wave, data, var, None)], file_medium, path, notes)
+    return replace(obs, notes=tuple(notes)), orders
+
+
+def _load_fits_table(hdu, cols, primary, path: str, *, medium: str | None, arrays: bool):
+    get = _header_getter(primary, hdu.header)
+    notes: list[str] = []
+    file_medium = medium or _medium_from_ctype(get("CTYPE1"))
+    obs = _observation(get, path, "table", file_medium, notes)
+    if not arrays:
+        return obs, []
+    data = hdu.data
+    wname = next(n for n in WAVE_NAMES if n in cols)
+    factor = _wave_factor(cols[wname].unit, path, f"unit of column {cols[wname].name}")
+    wave = np.asarray(data[cols[wname].name], dtype=float) * factor
+    flux = np.asarray(data[cols["FLUX"].name], dtype=float)
+    def find(names):
+        name = next((n for n in names if n in cols), None)
+        return None if name is None else data[cols[name].name]
+
+    var = _variance(find, flux, notes)
+    if wave.shape != flux.shape or var.shape != flux.shape:
+        raise SpectrumFormatError("wavelength, flux and uncertainty columns differ in shape", path=path)
+    if wave.ndim == 1:
+        parts = [(wave, flux, var, None)]
+    else:  # one order per row
+        parts = [(wave[i], flux[i], var[i], None) for i in range(wave.shape[0])]
+    orders = _build_orders(parts, file_medium, path, notes)
+    return replace(obs, notes=tuple(notes)), orders
+
+
+# --------------------------------------------------------------------------- text
+
+def _load_text(text: str, path: str, *, medium: str | None, arrays: bool):
+    header: dict[str, str] = {}
+    rows: list[str] = []
+    text_medium = None
+    for line in text.splitlines():
+        stripped = line.strip()
+        if not stripped:
+            continue
+        if stripped.startswith("#"):
+            body = stripped.lstrip("#").strip()
+            for sep in ("=", ":"):
+                if sep in body:
+                    key, _, value = body.partition(sep)
+                    key = key.strip().upper()
+                    value = value.split(" / ")[0].strip().strip("'\"").strip()
+                    if key == "MEDIUM":
+                        text_medium = value.lower()
+                    elif key and " " not in key:
+                        header.setdefault(key, value)
+                    break
+            continue
+        rows.append(stripped)
+    if len(rows) < 2:
+        raise SpectrumFormatError("is not a spectrum: no header row and data rows found", path=path,
+                                  status="not a spectrum")
+    delim = "," if "," in rows[0] else None
+    names = [n.strip().strip('"').upper() for n in (rows[0].split(delim) if delim else rows[0].split())]
+    wname = next((n for n in WAVE_NAMES if n in names), None)
+    if wname is None or "FLUX" not in names:
+        raise SpectrumFormatError(
+            "text table needs a header row naming a wavelength column (wavelength, wave, lambda, lam) "
+            "and a flux column", path=path, status="not a spectrum")
+    if text_medium not in (None, "air", "vacuum"):
+        raise SpectrumFormatError(f"medium {text_medium!r} is neither air nor vacuum", path=path)
+    file_medium = medium or text_medium or "vacuum"
+    notes: list[str] = []
+    get = _header_getter(header)
+    obs = _observation(get, path, "text", file_medium, notes)
+    if not arrays:
+        return obs, []
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            table = np.genfromtxt(io.StringIO("\n".join(rows[1:])), delimiter=delim, dtype=float,
+                                  invalid_raise=True)
+    except ValueError as exc:
+        raise SpectrumFormatError(f"text table has malformed rows ({_short(exc)})", path=path) from None
+    table = np.atleast_2d(table)
+    if table.shape[1] != len(names):
+        raise SpectrumFormatError(f"header names {len(names)} columns, rows have {table.shape[1]}", path=path)
+    col = {n: table[:, i] for i, n in enumerate(names)}
+    factor = _wave_factor(header.get("WAVEUNIT") or header.get("CUNIT1"), path, "WAVEUNIT")
+    wave, flux = col[wname] * factor, col["FLUX"]
+    var = _variance(lambda names: next((col[n] for n in names if n in col), None), flux, notes)
+    if "ORDER" in col:
+        ords = col["ORDER"]
+        parts = [(wave[ords == k], flux[ords == k], var[ords == k], None) for k in np.unique(ords)]
+    else:
+        parts = [(wave, flux, var, None)]
+    orders = _build_orders(parts, file_medium, path, notes)
+    return replace(obs, notes=tuple(notes)), orders
+
+
+# --------------------------------------------------------------------------- shared
+
+def _observation(get, path: str, layout: str, medium: str, notes: list) -> Observation:
+    if medium not in ("air", "vacuum"):
+        raise MetadataError(f"medium {medium!r} is neither air nor vacuum", path=path)
+    mjd, scale, source, exptime = read_time(get, path)
+    ra, dec, frame, equinox = read_target(get, path)
+    site = read_site(get, path)
+    obj = get("OBJECT")
+    return Observation(
+        path=path, layout=layout, object=str(obj).strip() if obj is not None else "",
+        mjd_mid=mjd, time_scale=scale, time_source=source, exptime=exptime, ra_deg=ra, dec_deg=dec,
+        frame=frame, equinox=equinox, site_xyz=site, medium=medium, notes=tuple(notes))
+
+
+def _build_orders(parts, medium: str, path: str, notes: list) -> list[Order]:
+    """Validate each order's arrays, convert air to vacuum, return :class:`Order` records."""
+    orders = []
+    for index, (wave, flux, var, blaze) in enumerate(parts):
+        wave = np.asarray(wave, dtype=float)
+        flux = np.asarray(flux, dtype=float)
+        var = np.asarray(var, dtype=float)
+        if wave.size < 8:
+            raise SpectrumFormatError(f"order {index} has only {wave.size} pixels", path=path)
+        if not np.all(np.isfinite(wave)):
+            raise SpectrumFormatError(f"order {index} has non-finite wavelengths", path=path,
+                                      status="bad wavelengths")
+        step = np.diff(wave)
+        if np.all(step < 0):
+            wave, flux, var = wave[::-1], flux[::-1], var[::-1]
+            blaze = None if blaze is None else np.asarray(blaze)[::-1]
+            step = -step[::-1]
+            if "wavelengths decrease with pixel: arrays flipped" not in notes:
+                notes.append("wavelengths decrease with pixel: arrays flipped")
+        if np.any(step == 0):
+            raise SpectrumFormatError(f"order {index} has zero dispersion (repeated wavelengths)",
+                                      path=path, status="bad wavelengths")
+        if np.any(step < 0):
+            raise SpectrumFormatError(f"order {index} has non-monotonic wavelengths", path=path,
+                                      status="bad wavelengths")
+        if wave[0] <= 0:
+            raise SpectrumFormatError(f"order {index} has non-positive wavelengths", path=path,
+                                      status="bad wavelengths")
+        if medium == "air":
+            wave = airvac.air_to_vacuum(wave)
+        orders.append(Order(wave=wave, flux=flux, var=var,
+                            blaze=None if blaze is None else np.asarray(blaze, dtype=float), index=index))
+    if not orders:
+        raise SpectrumFormatError("contains no orders", path=path)
+    if all(not np.any(np.isfinite(o.flux)) for o in orders):
+        raise SpectrumFormatError("all flux values are NaN", path=path, status="no valid flux")
+    if all(not np.any(np.isfinite(o.var) & (o.var > 0)) for o in orders):
+        raise SpectrumFormatError("no valid uncertainties (zero, negative or NaN everywhere)", path=path,
+                                  status="no valid uncertainties")
+    return orders

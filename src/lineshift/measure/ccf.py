@@ -1,0 +1,250 @@
+"""Cross-correlation of prepared orders with a weighted line mask (Baranne et al. 1996; Pepe et al.
+2002).
+
+Each mask line ``l`` (rest vacuum wavelength ``lambda_l``, weight ``w_l``) is a box of full velocity
+width ``box_width`` centred on ``lambda_l (1 + v/c)``.  A pixel contributes by the exact fraction of
+it that the box covers (flux is taken as constant across a pixel).  For one order the correlation at
+velocity ``v`` is the photon-weighted mean of the normalised flux seen through the mask::
+
+    CCF(v) = sum_l w_l sum_p o_lp(v) q_p f_p  /  sum_l w_l sum_p o_lp(v) q_p
+
+and the orders are summed numerator and denominator alike, so the continuum of the CCF is 1 and its
+depth is the contrast.  Everything is linear in the pixel fluxes, which makes the error propagation
+exact (:func:`CorrelationData.pixel_sensitivity`).
+
+Box integrals use cumulative sums over pixel coordinate, so the whole (velocity x line) grid is
+evaluated with array operations: there is no Python loop over velocities or lines (only over orders).
+:func:`reference_ccf` is the slow, obvious version the fast one is tested against.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from lineshift.measure.prepare import PreparedOrder
+from lineshift.model import C_MS, LineMask
+
+__all__ = ["CorrelationData", "box_adjoint", "box_integrals", "correlate", "reference_ccf"]
+
+
+def _pixel_coordinate(edges: np.ndarray, lam: np.ndarray) -> np.ndarray:
+    """Continuous pixel coordinate (pixel p spans [p, p+1]) of wavelengths, linear within a pixel."""
+    return np.interp(lam, edges, np.arange(edges.size, dtype=float))
+
+
+def _cum(S: np.ndarray, g: np.ndarray, x: np.ndarray) -> np.ndarray:
+    """Integral of ``g`` from pixel coordinate 0 to ``x`` (``S`` = cumulative sums of ``g``)."""
+    i = np.minimum(x.astype(np.intp), g.size - 1)
+    return S[i] + (x - i) * g[i]
+
+
+def _cum_adjoint_at(a: np.ndarray, i: np.ndarray, f: np.ndarray, n: int) -> np.ndarray:
+    """:func:`_cum_adjoint` with the integer parts ``i`` and fractions ``f`` of x already split."""
+    cnt = np.bincount(i, a, minlength=n)            # _cum(x) = sum_{p < i} g_p + f g_i
+    below = np.concatenate((np.cumsum(cnt[::-1])[::-1][1:], [0.0]))
+    return below + np.bincount(i, a * f, minlength=n)
+
+
+def _cum_adjoint(a: np.ndarray, x: np.ndarray, n: int) -> np.ndarray:
+    """``h`` with ``sum(a * _cum(S, g, x)) == h @ g`` for every ``g`` of length ``n``."""
+    i = np.minimum(x.ravel().astype(np.intp), n - 1)
+    return _cum_adjoint_at(a.ravel(), i, x.ravel() - i, n)
+
+
+def box_integrals(g: np.ndarray, xa: np.ndarray, xb: np.ndarray) -> np.ndarray:
+    """Integral of the piecewise-constant pixel array ``g`` from pixel coordinate xa to xb."""
+    S = np.concatenate(([0.0], np.cumsum(g)))
+    return _cum(S, g, xb) - _cum(S, g, xa)
+
+
+def box_adjoint(a: np.ndarray, xa: np.ndarray, xb: np.ndarray, n: int) -> np.ndarray:
+    """Adjoint of :func:`box_integrals`: ``h`` with ``sum(a * box_integrals(g, xa, xb)) == h @ g``."""
+    return _cum_adjoint(a, xb, n) - _cum_adjoint(a, xa, n)
+
+
+@dataclass
+class _OrderTerms:
+    """One order's part of a CCF.  Box edges are stored once per line: ``edges_x[l, r + i]`` ends
+    the box of line ``l`` at velocity ``i`` and ``edges_x[l, i]`` starts it (``r`` = box width in
+    grid steps), or, when the box is not a whole number of steps, the first ``m`` columns are starts
+    and the last ``m`` ends."""
+
+    order: PreparedOrder
+    weights: np.ndarray   # (k,) line weights
+    lines: np.ndarray     # (k,) indices into the mask
+    edges_x: np.ndarray   # (k, m + r) or (k, 2m): box edges in pixel coordinate
+    r: int                # offset of the end rows (0: separate start/end blocks)
+    num: np.ndarray       # (m,)
+    den: np.ndarray       # (m,)
+    line_wavelengths: np.ndarray = None  # (k,) rest wavelengths of the lines
+
+
+def _edge_layout(velocity: np.ndarray, box_width: float) -> tuple[np.ndarray, int]:
+    """Velocities of the box edges, and the row offset of the ends (0 if not shareable)."""
+    half = 0.5 * box_width
+    m = velocity.size
+    if m > 1:
+        step = velocity[1] - velocity[0]
+        r = box_width / step
+        uniform = np.allclose(np.diff(velocity), step, rtol=1e-9, atol=1e-9)
+        if uniform and abs(r - round(r)) < 1e-9 and round(r) >= 1:
+            r = round(r)
+            return velocity[0] - half + step * np.arange(m + r), r
+    return np.concatenate((velocity - half, velocity + half)), 0
+
+
+@dataclass
+class CorrelationData:
+    """A CCF on a velocity grid, with what is needed to propagate pixel variances through it."""
+
+    velocity: np.ndarray
+    terms: list[_OrderTerms]
+
+    @property
+    def numerator(self) -> np.ndarray:
+        return np.sum([t.num for t in self.terms], axis=0)
+
+    @property
+    def denominator(self) -> np.ndarray:
+        return np.sum([t.den for t in self.terms], axis=0)
+
+    @property
+    def ccf(self) -> np.ndarray:
+        return self.numerator / self.denominator
+
+    @property
+    def n_lines(self) -> int:
+        if not self.terms:
+            return 0
+        return int(np.unique(np.concatenate([t.lines for t in self.terms])).size)
+
+    def order_ccf(self) -> list[tuple[int, np.ndarray]]:
+        """(order index, CCF) for each order that contributed."""
+        return [(t.order.index, t.num / t.den) for t in self.terms]
+
+    def variance_of(self, sensitivity: np.ndarray) -> float | np.ndarray:
+        """Variance of ``sensitivity @ ccf`` from the pixel variances (exact for this linear map).
+
+        ``d CCF_i / d f_p = q_p sum_l w_l o_lp(v_i) / D_i`` (the denominator D carries no pixel noise:
+        ``q`` is smooth), so the pixel sensitivity is the box adjoint of ``s_i w_l / D_i`` times ``q``.
+        The covariance between neighbouring CCF points, which share pixels, is included.
+
+        ``sensitivity`` may be (m,) or (n_sens, m); the result is a float or an array (n_sens,).
+        """
+        sens = np.atleast_2d(np.asarray(sensitivity, dtype=float)) / self.denominator
+        if not self.terms:
+            return np.zeros(sens.shape[0]) if np.ndim(sensitivity) == 2 else 0.0
+        out = np.sum([self._term_variance(t, sens) for t in self.terms], axis=0)
+        return out if np.ndim(sensitivity) == 2 else float(out[0])
+
+    def variances(self, sensitivity: np.ndarray, order_sensitivities: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """:meth:`variance_of` for the rows of ``sensitivity``, and for each contributing order k the
+        variance of ``order_sensitivities[k] @ order_ccf_k`` (that order's pixels, its own
+        denominator), in one pass over the orders (they share the per-order set-up)."""
+        sens = np.atleast_2d(np.asarray(sensitivity, dtype=float)) / self.denominator
+        total = np.zeros(sens.shape[0])
+        per_order = np.zeros(len(self.terms))
+        for k, t in enumerate(self.terms):
+            v = self._term_variance(t, np.vstack((sens, order_sensitivities[k:k + 1] / t.den)))
+            total += v[:-1]
+            per_order[k] = v[-1]
+        return total, per_order
+
+    @staticmethod
+    def _term_variance(t: _OrderTerms, sens: np.ndarray) -> np.ndarray:
+        """sum_p h_p^2 var_p for one order, for each row of ``sens`` (already divided by D)."""
+        n = t.order.flux.size
+        m = sens.shape[1]
+        i = np.minimum(t.edges_x.astype(np.intp), n - 1).ravel()
+        f = t.edges_x.ravel() - i
+        # per-edge weights are separable: (combined sensitivity of the edge) x (line weight)
+        if t.r:
+            e = np.zeros((sens.shape[0], m + t.r))
+            e[:, t.r:] += sens
+            e[:, :m] -= sens
+        else:
+            e = np.concatenate((-sens, sens), axis=1)
+        qv = t.order.weight * t.order.weight * t.order.var
+        out = np.empty(sens.shape[0])
+        for k in range(sens.shape[0]):
+            h = _cum_adjoint_at(np.multiply.outer(t.weights, e[k]).ravel(), i, f, n)
+            out[k] = float(np.dot(h * h, qv))
+        return out
+
+
+def select_lines(order: PreparedOrder, mask: LineMask, v_lo: float, v_hi: float,
+                 box_width: float) -> np.ndarray:
+    """Indices of mask lines whose box stays inside the order's good pixels for all v in [v_lo, v_hi]."""
+    good = np.flatnonzero(order.good)
+    lam_min = order.edges[good[0]]
+    lam_max = order.edges[good[-1] + 1]
+    half = 0.5 * box_width
+    lo = mask.wavelength * (1 + (v_lo - half) / C_MS)
+    hi = mask.wavelength * (1 + (v_hi + half) / C_MS)
+    return np.flatnonzero((lo >= lam_min) & (hi <= lam_max))
+
+
+def correlate(orders: list[PreparedOrder], mask: LineMask, velocity: np.ndarray, box_width: float,
+              *, lines: np.ndarray | None = None) -> CorrelationData:
+    """CCF of prepared orders with a mask on a velocity grid (m/s, observatory frame).
+
+    Parameters
+    ----------
+    orders : list of PreparedOrder
+    mask : LineMask
+    velocity : ndarray, m/s
+        Velocity grid (increasing).
+    box_width : float, m/s
+        Full width of each mask box in velocity.
+    lines : ndarray of int, optional
+        Restrict to these mask lines (e.g. the strongest, for a coarse search).
+    """
+    velocity = np.asarray(velocity, dtype=float)
+    m = velocity.size
+    edge_v, r = _edge_layout(velocity, box_width)
+    lam_lines = mask.wavelength
+    terms = []
+    for order in orders:
+        idx = select_lines(order, mask, velocity[0], velocity[-1], box_width)
+        if lines is not None:
+            idx = np.intersect1d(idx, lines, assume_unique=True)
+        if idx.size == 0:
+            continue
+        # line-major layout (lines x edges): consecutive queries are neighbouring pixels, which
+        # numpy's interp finds from its previous answer without a full binary search
+        x = _pixel_coordinate(order.edges, lam_lines[idx][:, None] * (1 + edge_v[None, :] / C_MS))
+        w = mask.weight[idx]
+        g_num = order.flux * order.weight
+        sums = []
+        for g in (g_num, order.weight):
+            S = np.concatenate(([0.0], np.cumsum(g)))
+            c = _cum(S, g, x)
+            box = c[:, r:] - c[:, :m] if r else c[:, m:] - c[:, :m]
+            sums.append(w @ box)
+        num, den = sums
+        if not np.all(den > 0):
+            continue
+        terms.append(_OrderTerms(order, w, idx, x, r, num, den, lam_lines[idx]))
+    return CorrelationData(velocity, terms)
+
+
+def reference_ccf(orders: list[PreparedOrder], mask: LineMask, velocity: np.ndarray,
+                  box_width: float) -> np.ndarray:
+    """Slow, obvious CCF (explicit loops and overlap fractions) for testing :func:`correlate`."""
+    num = np.zeros(len(velocity))
+    den = np.zeros(len(velocity))
+    for order in orders:
+        idx = select_lines(order, mask, velocity[0], velocity[-1], box_width)
+        for i, v in enumerate(velocity):
+            for j in idx:
+                a = mask.wavelength[j] * (1 + (v - box_width / 2) / C_MS)
+                b = mask.wavelength[j] * (1 + (v + box_width / 2) / C_MS)
+                for p in range(order.flux.size):
+                    lo, hi = order.edges[p], order.edges[p + 1]
+                    overlap = max(0.0, min(b, hi) - max(a, lo)) / (hi - lo)
+                    if overlap > 0:
+                        num[i] += mask.weight[j] * overlap * order.weight[p] * order.flux[p]
+                        den[i] += mask.weight[j] * overlap * order.weight[p]
+    return num / den

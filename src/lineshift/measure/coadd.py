@@ -1,0 +1,177 @@
+"""Co-adding spectra in the star's frame: a high-SNR template on a fine log-wavelength grid.
+
+Each prepared order (continuum-normalised flux, variance, photon weights) is shifted to the star's
+rest frame by ``lambda_rest = lambda_obs * factor`` with ``factor = (1 + z_B) / (1 + z_star)``
+(Wright & Eastman 2014 composition of the barycentric and the star's own shift), interpolated onto
+a common grid uniform in ``ln lambda`` with a cubic B-spline in pixel-index space (exact at the
+pixels, accurate to fourth order between them: linear interpolation would distort line profiles by
+amounts that move velocities at the 0.1 m/s level), and averaged with the photon weights.  The
+template keeps its own variance, the number of contributions per point, and flags for points near
+an order edge or touched by a bad pixel, so later stages can avoid them.  Points that fall in a
+telluric band in a spectrum's own (observatory) frame get no weight from that spectrum.
+
+Shared by ``lineshift mask`` (line finding) and the template-matching engine.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from scipy.ndimage import spline_filter1d
+
+from lineshift.measure.prepare import PreparedOrder
+from lineshift.model import C_MS
+
+__all__ = ["Template", "TemplateAccumulator", "bspline", "log_grid"]
+
+_BAD_REACH = 4  # pixels around a bad one that the spline prefilter's tail reaches (decays 0.27x per pixel)
+
+
+#: Cubic B-spline basis in powers of t: weight of coefficient c[i-1+k] is sum_p _BSPLINE[p, k] t^p.
+_BSPLINE = np.array([[1.0, 4.0, 1.0, 0.0], [-3.0, 0.0, 3.0, 0.0], [3.0, -6.0, 3.0, 0.0],
+                     [-1.0, 3.0, -3.0, 1.0]]) / 6.0
+_OFFSETS = np.array([-1, 0, 1, 2])
+
+
+def bspline(coef: np.ndarray, x: np.ndarray, *, second: bool = False):
+    """Uniform cubic B-spline value and derivative (per grid step) at fractional indices ``x``
+    (and the second derivative with ``second=True``).
+
+    ``coef`` are prefiltered coefficients (``scipy.ndimage.spline_filter1d(values, order=3)``), so
+    the spline passes through the values at integer ``x``.  One gather of the four coefficients, a
+    4x4 product into the power basis, then Horner's rule.
+    """
+    i = np.clip(np.floor(x).astype(np.intp), 1, coef.size - 3)
+    t = x - i
+    q = coef[i[..., None] + _OFFSETS] @ _BSPLINE.T          # (..., 4): polynomial coefficients in t
+    q0, q1, q2, q3 = q[..., 0], q[..., 1], q[..., 2], q[..., 3]
+    value = q0 + t * (q1 + t * (q2 + t * q3))
+    deriv = q1 + t * (2 * q2 + 3 * t * q3)
+    if second:
+        return value, deriv, 2 * q2 + 6 * t * q3
+    return value, deriv
+
+
+@dataclass(frozen=True)
+class Template:
+    """A co-added spectrum in the star's frame.
+
+    Attributes
+    ----------
+    wave : ndarray, vacuum Angstrom (star's frame), uniform in ln(lambda)
+    flux : ndarray, weighted mean normalised flux (NaN where nothing contributed)
+    var : ndarray, variance of ``flux``
+    count : ndarray of int, contributions (order-spectra) per point
+    flagged : ndarray of bool, within ``edge_margin`` pixels of an order edge, or next to a bad pixel,
+        in at least one contribution
+    step : float, grid step in velocity (m/s)
+    n_spectra : int
+    pixel_step : float, median detector pixel width of the inputs in velocity (m/s)
+
+    Notes
+    -----
+    ``var`` is the noise level a detector pixel at that point would have in the co-add (the
+    interpolated per-pixel variances, averaged over the spectra), not the variance of the
+    interpolated value: neighbouring template points share pixels, so a fit to template points
+    must scale its errors by ``sqrt(pixel_step / step)`` (:attr:`correlation_factor`).
+    """
+
+    wave: np.ndarray
+    flux: np.ndarray
+    var: np.ndarray
+    count: np.ndarray
+    flagged: np.ndarray
+    step: float
+    n_spectra: int
+    pixel_step: float = 0.0
+
+    @property
+    def correlation_factor(self) -> float:
+        """Error inflation for fits that treat the oversampled template points as independent."""
+        return float(np.sqrt(max(self.pixel_step / self.step, 1.0))) if self.pixel_step else 1.0
+
+
+def log_grid(lo: float, hi: float, step: float) -> np.ndarray:
+    """Wavelengths from ``lo`` to ``hi`` (Angstrom) uniform in ln(lambda) with ``step`` m/s."""
+    du = np.log1p(step / C_MS)
+    return np.exp(np.arange(np.log(lo), np.log(hi), du))
+
+
+class TemplateAccumulator:
+    """Accumulates orders onto a fixed grid; :meth:`result` gives the :class:`Template`.
+
+    Streaming: one spectrum at a time is enough (memory is that of the grid).
+    """
+
+    def __init__(self, grid: np.ndarray, *, edge_margin: int = 8, bands: np.ndarray | None = None):
+        self.grid = grid
+        self.lng = np.log(grid)
+        self.step = float(C_MS * np.expm1(self.lng[1] - self.lng[0]))
+        self.sw = np.zeros(grid.size)
+        self.swf = np.zeros(grid.size)
+        self.sw2v = np.zeros(grid.size)
+        self.count = np.zeros(grid.size, dtype=np.int64)
+        self.flagged = np.zeros(grid.size, dtype=bool)
+        self.edge_margin = edge_margin
+        self.bands = bands if bands is not None else np.zeros((0, 2))
+        self.n_spectra = 0
+        self._pixel_steps: list[float] = []
+
+    def contributions(self, orders: list[PreparedOrder], factor: float):
+        """Per order: (slice of the grid, weight, weight x flux, weight^2 x variance, flags) that
+        :meth:`add` would accumulate for this spectrum.  Used to remove a spectrum from a template."""
+        lnf = np.log(factor)
+        for o in orders:
+            u = np.log(o.wave) + lnf
+            i0 = np.searchsorted(self.lng, u[0], side="left")
+            i1 = np.searchsorted(self.lng, u[-1], side="right")
+            if i1 <= i0:
+                continue
+            pts = self.lng[i0:i1]
+            # fractional pixel index of each grid point (linear in ln lambda within a pixel)
+            fidx = np.interp(pts, u, np.arange(u.size, dtype=float))
+            j = np.minimum(fidx.astype(np.intp), u.size - 2)
+            t = fidx - j
+            good = o.good
+            if not good.all():   # bad pixels: fill for the prefilter, keep clear of their reach
+                idx = np.arange(good.size)
+                filled = np.interp(idx, idx[good], o.flux[good])
+                reach = np.convolve(~good, np.ones(2 * _BAD_REACH + 1), mode="same") > 0
+            else:
+                filled, reach = o.flux, np.zeros(good.size, dtype=bool)
+            coef = spline_filter1d(filled, order=3, mode="mirror")
+            f, _ = bspline(coef, fidx)
+            ok = good[j] & good[j + 1] & ~reach[j] & ~reach[j + 1]
+            v = (1 - t) * o.var[j] + t * o.var[j + 1]   # per-pixel noise level here (see Template)
+            w = np.where(ok, (1 - t) * o.weight[j] + t * o.weight[j + 1], 0.0)
+            if self.bands.size:
+                near = self.bands[(self.bands[:, 1] >= o.wave[0]) & (self.bands[:, 0] <= o.wave[-1])]
+                if near.size:
+                    lam_obs = np.exp(pts - lnf)
+                    inband = np.zeros(pts.size, dtype=bool)
+                    for lo, hi in near:
+                        inband |= (lam_obs >= lo) & (lam_obs <= hi)
+                    w = np.where(inband, 0.0, w)
+            near_edge = (j < self.edge_margin) | (j > o.flux.size - 2 - self.edge_margin)
+            yield slice(i0, i1), w, w * f, w * w * v, near_edge | ~ok
+
+    def add(self, orders: list[PreparedOrder], factor: float) -> None:
+        """Add one spectrum's orders, shifted by ``lambda_rest = lambda_obs * factor``."""
+        self.n_spectra += 1
+        for o in orders:
+            self._pixel_steps.append(float(np.median(C_MS * np.diff(o.wave) / o.wave[1:])))
+        for sl, w, wf, w2v, flags in self.contributions(orders, factor):
+            self.sw[sl] += w
+            self.swf[sl] += wf
+            self.sw2v[sl] += w2v
+            self.count[sl] += (w > 0).astype(np.int64)
+            self.flagged[sl] |= flags
+
+    def result(self) -> Template:
+        with np.errstate(invalid="ignore", divide="ignore"):
+            flux = np.where(self.sw > 0, self.swf / self.sw, np.nan)
+            var = np.where(self.sw > 0, self.sw2v / self.sw**2, np.nan)
+        pixel = float(np.median(self._pixel_steps)) if self._pixel_steps else 0.0
+        return Template(self.grid, flux, var, self.count.copy(), self.flagged.copy(), self.step, self.n_spectra,
+                        pixel)

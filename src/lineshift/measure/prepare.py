@@ -1,0 +1,250 @@
+"""Preparation: bad pixels, continuum normalisation, photon weights, telluric rejection of lines.
+
+Continuum
+    Each order's continuum is fitted as a Legendre polynomial in pixel with iterative asymmetric
+    sigma clipping (points more than ``clip_low`` sigma below the fit are absorption lines, more
+    than ``clip_high`` above are cosmic rays), so the fit settles on the upper envelope; this is the
+    classic iterative-rejection continuum fit described by Tody (1986, Proc. SPIE 627, 733).  Sigma
+    is the photon noise of each pixel combined with the robust scatter of the residuals.  When the
+    file gives a blaze function the polynomial is fitted to flux/blaze and multiplied back.
+
+Photon weighting
+    The normalised flux is ``f = F / c`` with variance ``var / c^2``.  The correlation averages
+    ``f`` with per-pixel weights ``q = 1 / var_f,cont``, the inverse of the variance the normalised
+    flux would have at the continuum level: ``c^2 / (alpha c + beta)``, with the counts' variance at
+    continuum pixels regressed linearly on the continuum (photon plus read noise).  For photon noise
+    ``q`` is proportional to the continuum counts, so bright pixels count as their photons do,
+    while line cores do not get extra weight from their own noisy counts.  Any smooth ``q`` leaves
+    the error propagation exact; ``q`` only sets the efficiency.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from lineshift.model import C_MS, LineMask, Order, Spectrum
+
+__all__ = ["PreparedOrder", "fit_continuum", "pixel_edges", "prepare_order", "prepare_spectrum",
+           "reject_telluric_lines"]
+
+
+@dataclass(frozen=True)
+class PreparedOrder:
+    """An order ready for correlation.
+
+    Attributes
+    ----------
+    wave : ndarray, vacuum Angstrom, pixel centres (all pixels, bad ones included)
+    edges : ndarray, pixel edges (n + 1), Angstrom
+    flux : ndarray, continuum-normalised flux, 0 at bad pixels
+    var : ndarray, variance of ``flux``, 0 at bad pixels
+    weight : ndarray, photon weight ``q`` per pixel, 0 at bad pixels
+    good : ndarray of bool, usable pixels
+    index : int, order index in the file
+    """
+
+    wave: np.ndarray
+    edges: np.ndarray
+    flux: np.ndarray
+    var: np.ndarray
+    weight: np.ndarray
+    good: np.ndarray
+    index: int
+
+
+def pixel_edges(wave: np.ndarray) -> np.ndarray:
+    """Pixel edges from pixel centres: midpoints inside, half a step beyond the ends."""
+    mid = 0.5 * (wave[1:] + wave[:-1])
+    return np.concatenate(([wave[0] - (mid[0] - wave[0])], mid, [wave[-1] + (wave[-1] - mid[-1])]))
+
+
+_DESIGN_CACHE: dict[tuple[int, int], np.ndarray] = {}
+
+
+def _legendre_design(n: int, degree: int) -> np.ndarray:
+    key = (n, degree)
+    if key not in _DESIGN_CACHE:
+        if len(_DESIGN_CACHE) > 32:
+            _DESIGN_CACHE.clear()
+        _DESIGN_CACHE[key] = np.polynomial.legendre.legvander(np.linspace(-1.0, 1.0, n), degree)
+    return _DESIGN_CACHE[key]
+
+
+def _weighted_polyfit(V: np.ndarray, y: np.ndarray, w: np.ndarray) -> np.ndarray:
+    """Batched weighted least squares: rows of ``y`` (orders x pixels) with 0/1 weights ``w``."""
+    k = V.shape[1]
+    VV = (V[:, :, None] * V[:, None, :]).reshape(V.shape[0], k * k)
+    A = (w @ VV).reshape(-1, k, k)
+    b = (w * y) @ V
+    A += np.eye(V.shape[1])[None] * 1e-12 * np.trace(A, axis1=1, axis2=2)[:, None, None]
+    return np.linalg.solve(A, b[..., None])[..., 0]
+
+
+def _continuum_core(flux, var, good, degree, clip_low, clip_high, max_iter):
+    """Clipping iterations on every ``stride``-th pixel; returns (coef, used, stride, scatter^2)."""
+    n = flux.shape[1]
+    # a degree-4 polynomial needs no more than ~1000 points: the iterations run on a subset
+    stride = max(1, n // 1024)
+    V = _legendre_design(n, degree)[::stride]
+    g = good[:, ::stride]
+    y = np.where(g, flux[:, ::stride], 0.0)
+    v0 = np.where(g, var[:, ::stride], 0.0)
+    used = g.copy()
+    coef = np.zeros((flux.shape[0], degree + 1))
+    scatter2 = np.zeros(flux.shape[0])
+    for _ in range(max_iter):
+        enough = used.sum(axis=1) > degree + 1
+        coef = _weighted_polyfit(V, y, np.where(enough[:, None], used, g).astype(float))
+        resid = y - coef @ V.T
+        nused = np.maximum(used.sum(axis=1), 1)
+        scatter2 = np.maximum(np.sum(np.where(used, resid**2 - v0, 0.0), axis=1) / nused, 0.0)
+        sigma = np.sqrt(v0 + scatter2[:, None])
+        new = g & (resid > -clip_low * sigma) & (resid < clip_high * sigma)
+        changed = np.count_nonzero(new != used)
+        used = new
+        if changed <= 1e-3 * new.size:  # converged (a few pixels may flip back and forth)
+            break
+    return coef, used, stride, scatter2
+
+
+def fit_continuum(flux: np.ndarray, var: np.ndarray, good: np.ndarray, *, degree: int = 4,
+                  clip_low: float = 2.0, clip_high: float = 3.0, max_iter: int = 10):
+    """Iterative asymmetric sigma-clipped Legendre fit to the upper envelope, for one or more orders.
+
+    Parameters
+    ----------
+    flux, var : ndarray, shape (n,) or (orders, n)
+        Flux and its variance per pixel.
+    good : ndarray of bool, same shape
+        Pixels that may be used.
+    degree : int
+        Legendre degree in pixel.
+    clip_low, clip_high : float
+        Rejection thresholds in sigma below / above the fit.  Sigma combines each pixel's photon
+        noise with the rms of the residuals of the pixels in use.
+
+    Returns
+    -------
+    continuum : ndarray, same shape
+        The fitted continuum (NaN for an order with too few usable pixels).
+    used : ndarray of bool, same shape
+        Pixels the final fit rests on (continuum pixels).
+
+    Notes
+    -----
+    The clipping iterations run on every ``n // 1024``-th pixel (a degree-4 polynomial needs no
+    more); the final polynomial is evaluated, and the continuum pixels chosen, at every pixel.
+    """
+    one = flux.ndim == 1
+    flux, var, good = np.atleast_2d(flux), np.atleast_2d(var), np.atleast_2d(good)
+    coef, used, _, scatter2 = _continuum_core(flux, var, good, degree, clip_low, clip_high, max_iter)
+    fit = coef @ _legendre_design(flux.shape[1], degree).T
+    resid = np.where(good, flux, 0.0) - fit
+    sigma = np.sqrt(np.where(good, var, 0.0) + scatter2[:, None])
+    used_full = good & (resid > -clip_low * sigma) & (resid < clip_high * sigma)
+    fit = np.where((used.sum(axis=1) > degree + 1)[:, None], fit, np.nan)
+    return (fit[0], used_full[0]) if one else (fit, used_full)
+
+
+def _prepare_block(orders: list[Order], degree: int) -> list[PreparedOrder | None]:
+    """Prepare orders of equal length together (array operations across orders)."""
+    flux = np.vstack([o.flux for o in orders])
+    var = np.vstack([o.var for o in orders])
+    good = np.isfinite(flux) & np.isfinite(var) & (var > 0)
+    blaze = np.ones_like(flux)
+    given = [k for k, o in enumerate(orders) if o.blaze is not None]
+    if given:
+        b = np.vstack([orders[k].blaze for k in given])
+        usable = np.all((np.isfinite(b) & (b > 0)) | ~good[given], axis=1)
+        for k, bk, ok in zip(given, b, usable, strict=True):
+            if ok:
+                blaze[k] = np.where(good[k], bk, 1.0)
+    f = np.where(good, flux, 0.0)
+    v = np.where(good, var, 0.0)
+    coef, used, stride, _ = _continuum_core(f / blaze, v / blaze**2, good, degree, 2.0, 3.0, 10)
+    enough = used.sum(axis=1) > degree + 1
+    cont = np.where(enough[:, None], coef @ _legendre_design(flux.shape[1], degree).T, np.nan) * blaze
+    good &= np.isfinite(cont) & (cont > 0)
+    c = np.where(good, cont, 1.0)
+    fn = np.where(good, f / c, 0.0)
+    vn = np.where(good, v / c**2, 0.0)
+    # photon weight q = 1 / var_f at continuum level = c^2 / (alpha c + beta): the variance of the
+    # counts at the continuum, regressed linearly on the continuum (exact for photon + read noise),
+    # on the same pixel subset as the continuum's clipping
+    used &= good[:, ::stride]
+    w = used.astype(float)
+    cs, vs = c[:, ::stride], v[:, ::stride]
+    nw = np.maximum(w.sum(axis=1), 1.0)
+    mc = np.sum(w * cs, axis=1) / nw
+    mv = np.sum(w * vs, axis=1) / nw
+    cov = np.sum(w * (cs - mc[:, None]) * (vs - mv[:, None]), axis=1)
+    scc = np.sum(w * (cs - mc[:, None]) ** 2, axis=1)
+    alpha = np.where(scc > 0, cov / np.where(scc > 0, scc, 1.0), 0.0)
+    vcont = mv[:, None] + alpha[:, None] * (c - mc[:, None])
+    floor = 0.25 * mv
+    q = np.where(good, c**2 / np.maximum(vcont, floor[:, None]), 0.0)
+    usable = (good.sum(axis=1) >= max(32, 4 * (degree + 1))) & (used.sum(axis=1) * stride >= 10)
+    return [PreparedOrder(o.wave, pixel_edges(o.wave), fn[k], vn[k], q[k], good[k], o.index) if usable[k] else None
+            for k, o in enumerate(orders)]
+
+
+def prepare_order(order: Order, *, degree: int = 4) -> PreparedOrder | None:
+    """Prepare one order; None when too little of it is usable."""
+    return _prepare_block([order], degree)[0]
+
+
+def prepare_spectrum(spectrum: Spectrum, *, degree: int = 4) -> list[PreparedOrder]:
+    """Prepare every usable order of a spectrum (orders with too few good pixels are skipped).
+
+    Bad pixels (NaN flux, NaN or non-positive variance, zero inverse variance) get zero weight.
+    Orders of equal length are processed together.
+    """
+    by_len: dict[int, list[int]] = {}
+    for k, o in enumerate(spectrum.orders):
+        by_len.setdefault(o.flux.size, []).append(k)
+    prepared: dict[int, PreparedOrder | None] = {}
+    for idx in by_len.values():
+        for k, p in zip(idx, _prepare_block([spectrum.orders[k] for k in idx], degree), strict=True):
+            prepared[k] = p
+    return [prepared[k] for k in sorted(prepared) if prepared[k] is not None]
+
+
+def reject_telluric_lines(mask: LineMask, bands: np.ndarray, *, rv_star: float, berv_min: float,
+                          berv_max: float, box_width: float, margin: float = 0.0) -> np.ndarray:
+    """Which mask lines stay clear of telluric bands for every BERV in the batch's range.
+
+    A stellar line at rest wavelength ``lambda_l`` appears in the observatory frame at
+    ``lambda_l (1 + rv_star/c) / (1 + berv/c)`` (Wright & Eastman 2014 composition).  Over the batch's
+    range of BERV it sweeps an interval; the line is rejected when that interval, widened by half
+    the box width and ``margin`` (m/s), meets any band.
+
+    Parameters
+    ----------
+    bands : ndarray, shape (n, 2)
+        Vacuum wavelength intervals (Angstrom) of telluric bands, observatory frame.
+    rv_star : float, m/s
+        The star's approximate barycentric velocity.
+    berv_min, berv_max : float, m/s
+        Range of barycentric corrections over the batch.
+
+    Returns
+    -------
+    keep : ndarray of bool
+    """
+    lam = mask.wavelength
+    if bands.size == 0:
+        return np.ones(lam.size, dtype=bool)
+    half = 0.5 * box_width + margin
+    lo = lam * (1 + rv_star / C_MS) / (1 + berv_max / C_MS) * (1 - half / C_MS)
+    hi = lam * (1 + rv_star / C_MS) / (1 + berv_min / C_MS) * (1 + half / C_MS)
+    start = np.sort(bands[:, 0])
+    end = bands[np.argsort(bands[:, 0]), 1]
+    # a line interval [lo, hi] meets band [s, e] when s <= hi and e >= lo
+    idx = np.searchsorted(start, hi, side="right")  # bands with s <= hi are start[:idx]
+    max_end = np.maximum.accumulate(end)
+    hit = np.zeros(lam.size, dtype=bool)
+    has = idx > 0
+    hit[has] = max_end[idx[has] - 1] >= lo[has]
+    return ~hit

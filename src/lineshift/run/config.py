@@ -1,0 +1,142 @@
+"""TOML configuration: validated into plain values, overridable from the command line.
+
+Example (every key optional)::
+
+    [target]
+    object = "Vessa-9"
+    ra = "08:45:37.50"        # degrees, or sexagesimal hours
+    dec = -18.72361           # degrees, or sexagesimal degrees
+    frame = "icrs"            # icrs, fk5, fk4
+    pm_ra_cosdec = -41.2      # mas/yr   } space motion: give all four
+    pm_dec = 12.7             # mas/yr   }
+    parallax = 21.4           # mas      }
+    epoch = 2016.0            # Julian year of the catalogue position }
+    radial_velocity = 14230.0 # m/s, used with the space motion
+
+    [site]                    # lon/lat/height (deg, deg, m, WGS84) or x/y/z (geocentric m)
+    lon = 35.2133
+    lat = -12.4418
+    height = 1850.0
+
+    [measure]
+    mask = "line_lists/vessa9_mask.csv"
+    method = "mask"
+    medium = "vacuum"         # override the files' medium
+    velocity_range = [-300000.0, 300000.0]   # barycentric, m/s
+    velocity_step = 800.0     # m/s
+    box_width = 820.0         # m/s
+    systemic_velocity = 14230.0              # m/s, for telluric rejection (else measured)
+    telluric_bands = "line_lists/telluric_bands.csv"   # or false to disable
+    continuum_degree = 4
+    ephemeris = "/path/to/de421.bsp"         # or "builtin"
+
+Unknown sections or keys, and values of the wrong type, are a :class:`ConfigError` (exit 2).
+Nothing read from a config is evaluated or unpickled.
+"""
+
+from __future__ import annotations
+
+import tomllib
+
+from lineshift.errors import ConfigError, MetadataError
+from lineshift.io.metadata import geodetic_to_xyz, parse_dec, parse_ra
+
+__all__ = ["SCHEMA", "load_config", "parse_site"]
+
+_NUM = (int, float)
+SCHEMA: dict[str, dict[str, tuple]] = {
+    "target": {"object": (str,), "ra": (str, *_NUM), "dec": (str, *_NUM), "frame": (str,),
+               "equinox": (str, *_NUM), "pm_ra_cosdec": _NUM, "pm_dec": _NUM, "parallax": _NUM,
+               "epoch": _NUM, "radial_velocity": _NUM},
+    "site": {"lon": _NUM, "lat": _NUM, "height": _NUM, "x": _NUM, "y": _NUM, "z": _NUM},
+    "measure": {"mask": (str,), "method": (str,), "medium": (str,), "velocity_range": (list,),
+                "velocity_step": _NUM, "box_width": _NUM, "systemic_velocity": _NUM,
+                "telluric_bands": (str, bool), "continuum_degree": (int,), "ephemeris": (str,)},
+}
+
+
+def load_config(path: str) -> dict[str, dict]:
+    """Read and validate a TOML config; returns ``{section: {key: value}}`` with checked values."""
+    try:
+        with open(path, "rb") as fh:
+            data = tomllib.load(fh)
+    except OSError as exc:
+        raise ConfigError(f"config cannot be read ({exc.strerror or exc})", path=path) from None
+    except tomllib.TOMLDecodeError as exc:
+        raise ConfigError(f"config is not valid TOML ({exc})", path=path) from None
+    out: dict[str, dict] = {s: {} for s in SCHEMA}
+    for section, values in data.items():
+        if section not in SCHEMA:
+            raise ConfigError(f"unknown config section [{section}] (known: {', '.join(SCHEMA)})", path=path)
+        if not isinstance(values, dict):
+            raise ConfigError(f"[{section}] must be a table", path=path)
+        for key, value in values.items():
+            types = SCHEMA[section].get(key)
+            if types is None:
+                raise ConfigError(f"unknown key {key!r} in [{section}] (known: {', '.join(SCHEMA[section])})",
+                                  path=path)
+            if (isinstance(value, bool) and bool not in types) or not isinstance(value, types):
+                names = "/".join(t.__name__ for t in types)
+                raise ConfigError(f"[{section}] {key} = {value!r} should be {names}", path=path)
+            out[section][key] = value
+    _validate(out, path)
+    return out
+
+
+def _validate(cfg: dict, path: str) -> None:
+    t = cfg["target"]
+    try:
+        if "ra" in t:
+            t["ra"] = parse_ra(t["ra"])
+        if "dec" in t:
+            t["dec"] = parse_dec(t["dec"])
+    except MetadataError as exc:
+        raise ConfigError(f"[target] {exc.reason}", path=path) from None
+    if "frame" in t and t["frame"].lower() not in ("icrs", "fk5", "fk4"):
+        raise ConfigError(f"[target] frame = {t['frame']!r} is not icrs, fk5 or fk4", path=path)
+    motion = [k for k in ("pm_ra_cosdec", "pm_dec", "parallax", "epoch") if k in t]
+    if motion and len(motion) != 4:
+        raise ConfigError("[target] space motion needs pm_ra_cosdec, pm_dec, parallax and epoch together",
+                          path=path)
+    if "parallax" in t and t["parallax"] <= 0:
+        raise ConfigError("[target] parallax must be positive (mas)", path=path)
+    s = cfg["site"]
+    if s:
+        geo, xyz = {"lon", "lat", "height"}, {"x", "y", "z"}
+        if set(s) == geo:
+            try:
+                cfg["site"] = {"xyz": geodetic_to_xyz(s["lon"], s["lat"], s["height"])}
+            except MetadataError as exc:
+                raise ConfigError(f"[site] {exc.reason}", path=path) from None
+        elif set(s) == xyz:
+            cfg["site"] = {"xyz": (float(s["x"]), float(s["y"]), float(s["z"]))}
+        else:
+            raise ConfigError("[site] needs either lon, lat, height or x, y, z", path=path)
+    m = cfg["measure"]
+    if "velocity_range" in m:
+        vr = m["velocity_range"]
+        if len(vr) != 2 or not all(isinstance(v, _NUM) and not isinstance(v, bool) for v in vr) or vr[0] >= vr[1]:
+            raise ConfigError("[measure] velocity_range must be [low, high] in m/s with low < high", path=path)
+        m["velocity_range"] = (float(vr[0]), float(vr[1]))
+    for key in ("velocity_step", "box_width"):
+        if key in m and m[key] <= 0:
+            raise ConfigError(f"[measure] {key} must be positive (m/s)", path=path)
+    if "medium" in m and m["medium"] not in ("air", "vacuum"):
+        raise ConfigError("[measure] medium must be 'air' or 'vacuum'", path=path)
+    if "continuum_degree" in m and not 0 <= m["continuum_degree"] <= 12:
+        raise ConfigError("[measure] continuum_degree must be 0..12", path=path)
+
+
+def parse_site(text: str) -> tuple[float, float, float]:
+    """``--site LON,LAT,HEIGHT`` (degrees east, degrees, metres) to geocentric metres."""
+    parts = [p.strip() for p in text.split(",")]
+    if len(parts) != 3:
+        raise ConfigError(f"--site {text!r}: expected LON,LAT,HEIGHT (degrees, degrees, metres)")
+    try:
+        lon, lat, h = (float(p) for p in parts)
+    except ValueError:
+        raise ConfigError(f"--site {text!r}: LON,LAT,HEIGHT must be numbers") from None
+    try:
+        return geodetic_to_xyz(lon, lat, h)
+    except MetadataError as exc:
+        raise ConfigError(f"--site: {exc.reason}") from None

@@ -1,0 +1,122 @@
+"""Where per-spectrum tasks run: this process, local processes, or an existing Dask cluster.
+
+Executors know nothing of what a task does: ``run_tasks(fn, tasks, ctx)`` calls the module-level,
+picklable function ``fn(task, ctx)`` for each task. Every executor yields ``(task, row)`` as tasks
+finish and keeps at most ``max_in_flight`` tasks submitted ahead, so memory stays bounded whatever
+the batch size. The batch context (mask and settings) is sent to each worker once. Results are the
+same floating-point numbers whichever executor runs them: the task function is pure and
+deterministic.
+"""
+
+from __future__ import annotations
+
+import warnings
+from collections.abc import Iterator
+
+from lineshift.errors import ConfigError
+
+__all__ = ["run_tasks"]
+
+_WORKER_CTX = None
+_WORKER_FN = None
+
+#: How long to try reaching a Dask scheduler before giving up.
+CONNECT_TIMEOUT = "15s"
+
+
+def _init_worker(fn, ctx) -> None:
+    global _WORKER_CTX, _WORKER_FN
+    _WORKER_CTX = ctx
+    _WORKER_FN = fn
+    warnings.simplefilter("ignore")
+
+
+def _run_in_worker(task):
+    return _WORKER_FN(task, _WORKER_CTX)
+
+
+def _serial(fn, tasks, ctx) -> Iterator:
+    for t in tasks:
+        yield t, fn(t, ctx)
+
+
+def _processes(fn, tasks, ctx, workers: int, limit: int) -> Iterator:
+    import concurrent.futures as cf
+    import multiprocessing as mp
+
+    with cf.ProcessPoolExecutor(max_workers=workers, mp_context=mp.get_context("spawn"),
+                                initializer=_init_worker, initargs=(fn, ctx)) as pool:
+        pending: dict = {}
+        it = iter(tasks)
+        for t in it:
+            pending[pool.submit(_run_in_worker, t)] = t
+            if len(pending) >= limit:
+                break
+        while pending:
+            done, _ = cf.wait(pending, return_when=cf.FIRST_COMPLETED)
+            for fut in done:
+                t = pending.pop(fut)
+                yield t, fut.result()
+                nxt = next(it, None)
+                if nxt is not None:
+                    pending[pool.submit(_run_in_worker, nxt)] = nxt
+
+
+def _dask(fn, tasks, ctx, address: str, limit: int) -> Iterator:
+    try:
+        from distributed import Client, as_completed
+    except ImportError:
+        raise ConfigError("--scheduler needs Dask: pip install -e \".[dask]\"") from None
+
+    try:
+        client = Client(address, timeout=CONNECT_TIMEOUT, set_as_default=False)
+    except (OSError, TimeoutError, ValueError) as exc:
+        raise ConfigError(f"cannot reach the Dask scheduler at {address} ({exc})") from None
+    try:
+        ctx_future = client.scatter(ctx, broadcast=True, hash=False)
+        it = iter(tasks)
+        owner = {}
+        first = []
+        for t in it:
+            f = client.submit(fn, t, ctx_future, pure=False)
+            owner[f.key] = t
+            first.append(f)
+            if len(owner) >= limit:
+                break
+        if not first:
+            return
+        ac = as_completed(first, loop=client.loop)
+        for f in ac:
+            t = owner.pop(f.key)
+            row = f.result()
+            f.release()
+            yield t, row
+            nxt = next(it, None)
+            if nxt is not None:
+                g = client.submit(fn, nxt, ctx_future, pure=False)
+                owner[g.key] = nxt
+                ac.add(g)
+    finally:
+        client.close()
+
+
+def run_tasks(fn, tasks, ctx, *, workers: int = 1, scheduler: str | None = None,
+              max_in_flight: int | None = None) -> Iterator:
+    """Run ``fn(task, ctx)`` for every task and yield (task, row) in completion order.
+
+    Parameters
+    ----------
+    fn : callable
+        A module-level (picklable) function of ``(task, ctx)``.
+    workers : int
+        Local processes (1: this process).  Ignored with ``scheduler``.
+    scheduler : str, optional
+        Address of a running Dask distributed scheduler, e.g. ``tcp://127.0.0.1:8786``.
+    max_in_flight : int, optional
+        Tasks submitted ahead of those finished (default 4 per worker, 64 on Dask).
+    """
+    if scheduler:
+        return _dask(fn, tasks, ctx, scheduler, max_in_flight or 64)
+    if workers <= 1:
+        return _serial(fn, tasks, ctx)
+    return _processes(fn, tasks, ctx, workers, max_in_flight or 4 * workers)

@@ -1,0 +1,472 @@
+"""The measurement pipeline: files to barycentric velocities, one row per input.
+
+Batch path (each phase streams; memory does not grow with the number of spectra beyond one small
+record per input):
+
+1. **survey** - read each file's observation record (headers only) and apply overrides;
+2. **barycentric** - BERV and BJD_TDB for the whole batch, vectorised (:mod:`.barycentric`);
+3. **mask** - drop mask lines that a telluric band can reach anywhere in the batch's BERV range
+   (systemic velocity from the settings, or measured on the first usable spectrum);
+4. **measure** - per spectrum, a pure function of (task, context): load, prepare, correlate, fit,
+   compose with BERV.  Tasks run serially, on local processes, or on any executor with the
+   ``concurrent.futures`` interface; the driver alone consumes the rows (``on_row``), in completion
+   order, and returns them in input order.
+
+A file that fails at any phase becomes a row with a non-ok ``status`` and an error message; it never
+stops the batch.
+"""
+
+from __future__ import annotations
+
+import glob
+import os
+import warnings
+from collections.abc import Callable, Iterable
+from dataclasses import dataclass, field, replace
+
+import numpy as np
+
+from lineshift._version import __version__
+from lineshift.calib.barycentric import BarycentricResult, Target, barycentric_batch, compose_velocity
+from lineshift.errors import ConfigError, LineshiftError, MeasurementError, SpectrumFormatError
+from lineshift.io import airvac
+from lineshift.io.linelists import read_telluric_bands
+from lineshift.io.loaders import load_spectrum, read_observation
+from lineshift.io.table import COLUMNS, EXTRA_COLUMNS, SB2_COLUMNS
+from lineshift.measure.mask_engine import SearchSettings, measure_mask
+from lineshift.measure.prepare import prepare_spectrum, reject_telluric_lines
+from lineshift.model import C_MS, LineMask, Observation
+from lineshift.run.executors import run_tasks
+
+__all__ = ["COLUMNS", "MeasureSettings", "Overrides", "expand_inputs", "measure_files"]
+
+SPECTRUM_SUFFIXES = (".fits", ".fit", ".fts", ".fits.gz", ".fit.gz", ".fts.gz", ".csv", ".csv.gz",
+                     ".txt", ".txt.gz", ".dat", ".dat.gz", ".tsv", ".tsv.gz")
+
+ENGINES: dict[str, Callable] = {"mask": measure_mask, "template": measure_mask}  # template: first pass by mask
+
+#: Set by ``--debug``: unexpected errors propagate instead of becoming a row status.
+DEBUG = False
+
+
+@dataclass(frozen=True)
+class Overrides:
+    """Metadata given on the command line or in the config; each wins over the file's headers."""
+
+    object: str | None = None
+    ra_deg: float | None = None
+    dec_deg: float | None = None
+    frame: str | None = None
+    equinox: str | None = None
+    site_xyz: tuple[float, float, float] | None = None
+
+    def apply(self, obs: Observation) -> Observation:
+        changes = {k: v for k, v in (("object", self.object), ("ra_deg", self.ra_deg),
+                                     ("dec_deg", self.dec_deg), ("frame", self.frame),
+                                     ("equinox", self.equinox), ("site_xyz", self.site_xyz)) if v is not None}
+        return replace(obs, **changes) if changes else obs
+
+
+@dataclass(frozen=True)
+class MeasureSettings:
+    """Everything that determines a measurement besides the input file (part of the store key)."""
+
+    method: str = "mask"
+    search: SearchSettings = field(default_factory=SearchSettings)
+    continuum_degree: int = 4
+    medium: str | None = None
+    overrides: Overrides = field(default_factory=Overrides)
+    target: Target = field(default_factory=Target)
+    ephemeris: str | None = None
+    telluric_bands: str | bool | None = None     # None: shipped list; False: none; str: a file
+    systemic_velocity: float | None = None
+    keep_ccf: bool = False
+    components: int = 1
+
+    def __post_init__(self):
+        if self.method not in ENGINES:
+            raise ConfigError(f"unknown method {self.method!r} (known: {', '.join(ENGINES)})")
+        if self.components not in (1, 2):
+            raise ConfigError(f"components must be 1 or 2, not {self.components}")
+        if self.components == 2 and self.method == "template":
+            raise ConfigError("--components 2 works with the mask engine only (--method mask)")
+
+
+@dataclass(frozen=True)
+class Task:
+    """One spectrum's work, small enough to send to another process or machine."""
+
+    index: int
+    path: str
+    berv: float
+    bjd_tdb: float
+    notes: tuple[str, ...]
+    input_hash: str = ""
+    delta0: float | None = None      # template engine: starting ln(1 + rv_topo/c) in the template frame
+    factor: float | None = None      # template engine: the factor this spectrum entered the template with
+
+
+@dataclass(frozen=True)
+class Context:
+    """What every task of a batch shares."""
+
+    mask: LineMask
+    settings: MeasureSettings
+    template: object = None          # TemplateState for the template engine's second pass
+
+
+def expand_inputs(items: Iterable[str]) -> list[str]:
+    """Files, directories (their spectrum files, sorted, not recursive) and globs, in order given.
+
+    A name that matches nothing is kept, so that it is reported as unreadable.
+    """
+    out: list[str] = []
+    for item in items:
+        if os.path.isdir(item):
+            names = sorted(n for n in os.listdir(item) if not n.startswith(".")
+                           and n.lower().endswith(SPECTRUM_SUFFIXES))
+            out.extend(os.path.join(item, n) for n in names if os.path.isfile(os.path.join(item, n)))
+        elif not os.path.exists(item) and any(ch in item for ch in "*?["):
+            out.extend(sorted(glob.glob(item)))
+        else:
+            out.append(item)
+    return out
+
+
+def _empty_row(path: str, obs: Observation | None, status: str, message: str, settings) -> dict:
+    row = dict.fromkeys(COLUMNS + EXTRA_COLUMNS)
+    row.update(file=path, object=obs.object if obs else "", status=status, method=settings.method,
+               notes=message)
+    if obs is not None:
+        row.update(mjd_mid=obs.mjd_mid, time_scale=obs.time_scale, time_source=obs.time_source,
+                   layout=obs.layout, medium=obs.medium)
+    return row
+
+
+def survey(paths: list[str], settings: MeasureSettings) -> list[Observation | LineshiftError]:
+    """Phase 1: the observation record of every input (or the error that prevents reading it)."""
+    out: list = []
+    for path in paths:
+        try:
+            out.append(settings.overrides.apply(read_observation(path, medium=settings.medium)))
+        except LineshiftError as exc:
+            exc.path = exc.path or path
+            out.append(exc)
+    return out
+
+
+def effective_mask(mask: LineMask, settings: MeasureSettings, bervs: np.ndarray,
+                   estimate_systemic: Callable[[], float | None]) -> tuple[LineMask, str]:
+    """Phase 3: the mask with telluric-contaminated lines removed; returns it and a description."""
+    if settings.telluric_bands is False or bervs.size == 0:
+        return mask, "no telluric rejection"
+    bands = read_telluric_bands(settings.telluric_bands or None)
+    rv = settings.systemic_velocity
+    if rv is None:
+        rv = estimate_systemic()
+    if rv is None:
+        return mask, "no telluric rejection (no spectrum gave a systemic velocity)"
+    box = settings.search.box_width or 2000.0
+    keep = reject_telluric_lines(mask, bands, rv_star=rv, berv_min=float(bervs.min()),
+                                 berv_max=float(bervs.max()), box_width=box, margin=2000.0)
+    note = (f"{int((~keep).sum())} of {len(mask)} mask lines dropped for telluric bands "
+            f"(BERV {bervs.min() / 1e3:+.2f}..{bervs.max() / 1e3:+.2f} km/s, systemic {rv / 1e3:+.2f} km/s)")
+    return mask.select(keep), note
+
+
+def measure_task(task: Task, ctx: Context) -> dict:
+    """Phase 4 for one spectrum: a pure function of its task and the batch context.
+
+    Returns the output row (with ``_ccf`` holding the CCF arrays when ``keep_ccf``).  Never raises
+    for bad input: the row's ``status`` says what went wrong and ``_error`` holds the message.
+    """
+    s = ctx.settings
+    obs = None
+    try:
+        spectrum = load_spectrum(task.path, medium=s.medium)
+        obs = s.overrides.apply(spectrum.obs)
+        orders = prepare_spectrum(spectrum, degree=s.continuum_degree)
+        lo, hi = spectrum.wavelength_range
+        inside = (ctx.mask.wavelength > lo) & (ctx.mask.wavelength < hi)
+        if not inside.any():
+            raise MeasurementError(
+                f"spectrum ({lo:.1f}-{hi:.1f} A) lies outside the mask's range "
+                f"({ctx.mask.wavelength[0]:.1f}-{ctx.mask.wavelength[-1]:.1f} A)", path=task.path,
+                status="outside mask range")
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)
+            if s.components == 2:
+                return _two_component_row(task, obs, orders, ctx)
+            if ctx.template is not None:
+                return _template_row(task, obs, orders, ctx)
+            res = ENGINES[s.method](orders, ctx.mask, s.search, berv=task.berv, path=task.path)
+    except LineshiftError as exc:
+        exc.path = exc.path or task.path
+        row = _empty_row(task.path, obs, exc.status, str(exc), s)
+        row.update(bjd_tdb=task.bjd_tdb, berv=task.berv, _error=str(exc))
+        return row
+    except Exception as exc:  # a bug must not stop the batch; --debug re-raises it
+        if DEBUG:
+            raise
+        message = f"{task.path}: unexpected error ({type(exc).__name__}: {exc}); rerun with --debug"
+        row = _empty_row(task.path, obs, "internal error", message, s)
+        row.update(bjd_tdb=task.bjd_tdb, berv=task.berv, _error=message)
+        return row
+    rv = float(compose_velocity(res.rv, task.berv))
+    notes = tuple(obs.notes) + task.notes
+    row = _empty_row(task.path, obs, "ok", "; ".join(notes), s)
+    row.update(
+        bjd_tdb=task.bjd_tdb, rv=rv, rv_err=res.rv_err * (1 + task.berv / C_MS), berv=task.berv,
+        rv_topo=res.rv, fwhm=res.fwhm, contrast=res.contrast, snr=res.snr, n_lines=res.n_lines,
+        fwhm_err=res.fwhm_err, contrast_err=res.contrast_err, n_orders=res.n_orders,
+        bis_span=res.bis_span, bis_span_err=res.bis_span_err, rv_chromatic_slope=res.chromatic_slope,
+        rv_chromatic_slope_err=res.chromatic_slope_err)
+    row["_orders"] = [dict(o) for o in res.orders]
+    if s.keep_ccf:
+        row["_ccf"] = (res.velocity, res.ccf, res.model, res.bisector)
+    return row
+
+
+def _template_row(task: Task, obs: Observation, orders, ctx: Context) -> dict:
+    from lineshift.measure.template_engine import TemplateSettings, measure_template
+
+    if task.delta0 is None:
+        raise MeasurementError("no first-pass velocity to start the template fit from", path=task.path,
+                               status="no velocity")
+    res = measure_template(orders, ctx.template, TemplateSettings(), delta0=task.delta0, factor=task.factor,
+                           berv=task.berv, path=task.path)
+    flagged = [o for o in res.orders if o["flag"]]
+    notes = tuple(obs.notes) + task.notes + ((f"{len(flagged)} order(s) flagged (poor fit or rejected)",)
+                                             if flagged else ())
+    row = _empty_row(task.path, obs, "ok", "; ".join(notes), ctx.settings)
+    row.update(bjd_tdb=task.bjd_tdb, berv=task.berv, rv=float(compose_velocity(res.rv, task.berv)),
+               rv_err=res.rv_err * (1 + task.berv / C_MS), rv_topo=res.rv, snr=res.snr, n_orders=res.n_orders,
+               method="template")
+    row["_orders"] = [dict(o) for o in res.orders]
+    return row
+
+
+def _run_template(tasks: list[Task], first: dict[int, dict], ctx: Context, *, workers: int, scheduler,
+                  max_iter: int = 3) -> dict[int, dict]:
+    """The template engine's passes: co-add with the current velocities, fit every spectrum against
+    the template without itself, repeat until the velocities move by less than a tenth of their errors."""
+    from lineshift.measure.coadd import TemplateAccumulator, log_grid
+    from lineshift.measure.template_engine import TemplateState
+
+    rows = dict(first)
+    bands = np.zeros((0, 2)) if ctx.settings.telluric_bands is False else read_telluric_bands(
+        ctx.settings.telluric_bands or None)
+    ranges: dict[int, tuple[float, float, float]] = {}   # per file, once: they do not change between passes
+    for t in tasks:
+        if rows[t.index].get("status") == "ok":
+            sp = load_spectrum(t.path, medium=ctx.settings.medium)
+            a, b = sp.wavelength_range
+            step = float(np.median(np.concatenate([C_MS * np.diff(o.wave) / o.wave[1:] for o in sp.orders])))
+            ranges[t.index] = (a, b, step)
+    for _ in range(max_iter):
+        use = [t for t in tasks if rows[t.index].get("status") == "ok" and t.index in ranges]
+        if len(use) < 2:
+            raise MeasurementError("the template engine needs at least two spectra with a first-pass velocity")
+        factor = {t.index: (1 + t.berv / C_MS) / (1 + rows[t.index]["rv"] / C_MS) for t in use}
+        lo = min(ranges[t.index][0] * factor[t.index] for t in use)
+        hi = max(ranges[t.index][1] * factor[t.index] for t in use)
+        steps = [ranges[t.index][2] for t in use]
+        acc = TemplateAccumulator(log_grid(lo * (1 - 1e-4), hi * (1 + 1e-4), np.median(steps) / 2), bands=bands)
+        for t in use:
+            acc.add(prepare_spectrum(load_spectrum(t.path, medium=ctx.settings.medium),
+                                     degree=ctx.settings.continuum_degree), factor[t.index])
+        state = TemplateState.from_accumulator(acc)
+        tctx = Context(ctx.mask, ctx.settings, state)
+        ttasks = [replace(t, delta0=-float(np.log(factor[t.index])), factor=factor[t.index]) for t in use]
+        new = {}
+        for task, row in run_tasks(measure_task, ttasks, tctx, workers=workers, scheduler=scheduler):
+            first_row = first[task.index]
+            for k in ("fwhm", "contrast", "fwhm_err", "contrast_err", "bis_span", "bis_span_err", "n_lines"):
+                row[k] = first_row.get(k)
+            new[task.index] = row
+        moved = [abs(new[i]["rv"] - rows[i]["rv"]) / new[i]["rv_err"] for i in new
+                 if new[i]["status"] == "ok" and rows[i].get("method") == "template"]
+        rows.update(new)
+        if moved and max(moved) < 0.1:
+            break
+    return rows
+
+
+def _two_component_row(task: Task, obs: Observation, orders, ctx: Context) -> dict:
+    from lineshift.measure.sb2 import measure_two
+
+    s = ctx.settings
+    res = measure_two(orders, ctx.mask, s.search, berv=task.berv, path=task.path)
+    row = _empty_row(task.path, obs, "ok", "; ".join(tuple(obs.notes) + task.notes), s)
+    scale = 1 + task.berv / C_MS
+    row.update(
+        bjd_tdb=task.bjd_tdb, berv=task.berv, rv=float(compose_velocity(res.rv[0], task.berv)),
+        rv_err=res.rv_err[0] * scale, rv_topo=res.rv[0], fwhm=res.fwhm[0], contrast=res.contrast[0],
+        fwhm_err=res.fwhm_err[0], contrast_err=res.contrast_err[0], snr=res.snr, n_lines=res.n_lines,
+        n_orders=res.n_orders, rv2=float(compose_velocity(res.rv[1], task.berv)), rv2_err=res.rv_err[1] * scale,
+        rv2_topo=res.rv[1], fwhm2=res.fwhm[1], fwhm2_err=res.fwhm_err[1], contrast2=res.contrast[1],
+        contrast2_err=res.contrast_err[1], flux_ratio=res.flux_ratio)
+    if s.keep_ccf:
+        row["_ccf"] = (res.velocity, res.ccf, res.model, None)
+    return row
+
+
+# --------------------------------------------------------------------------- driver
+
+@dataclass
+class BatchReport:
+    """What a batch did besides the rows."""
+
+    mask_note: str = ""
+    n_lines_mask: int = 0
+    skipped: int = 0            # rows taken from the results store
+    settings_hash: str = ""
+    swaps: int = 0              # two components exchanged to keep each star's identity
+
+
+def measure_files(paths: list[str], mask: LineMask, settings: MeasureSettings, *, workers: int = 1,
+                  scheduler: str | None = None, store=None,
+                  on_row: Callable[[dict], None] | None = None, report: BatchReport | None = None
+                  ) -> list[dict]:
+    """Measure many spectra; one row per path, in the order given.
+
+    Parameters
+    ----------
+    paths : list of str
+        Input files.
+    mask : LineMask
+        Rest-frame mask (vacuum).
+    settings : MeasureSettings
+    workers : int
+        Local processes (1: in this process).
+    scheduler : str, optional
+        Address of a Dask distributed scheduler to run the measurements on.
+    store : ResultStore, optional
+        Rows already in the store (same file content, same settings) are taken from it and not
+        measured again; each new row is committed to it as it arrives (by this process only).
+    on_row : callable, optional
+        Called with each row as soon as it exists (failed surveys first, then measurements in
+        completion order), e.g. to commit it to a store or draw its plot.
+    report : BatchReport, optional
+        Filled with the batch-level notes (telluric rejection).
+
+    Returns
+    -------
+    list of dict
+        The rows, columns :data:`COLUMNS` then :data:`EXTRA_COLUMNS` (and ``_error`` / ``_ccf``).
+    """
+    report = report if report is not None else BatchReport()
+    rows: list[dict | None] = [None] * len(paths)
+
+    def emit(i: int, row: dict) -> None:
+        rows[i] = row
+        if on_row is not None:
+            on_row(row)
+
+    observations = survey(paths, settings)
+    hashes: list[str] = [""] * len(paths)
+    if store is not None:
+        from lineshift.run.store import content_hash
+
+        for i, o in enumerate(observations):
+            if isinstance(o, Observation):
+                try:
+                    hashes[i] = content_hash(paths[i])
+                except OSError as exc:
+                    observations[i] = SpectrumFormatError(f"cannot be read ({exc.strerror or exc})", path=paths[i])
+    ok_idx = [i for i, o in enumerate(observations) if isinstance(o, Observation)]
+    bary = barycentric_batch([observations[i] for i in ok_idx], target=settings.target,
+                             ephemeris=settings.ephemeris)
+    tasks: list[Task] = []
+    for i, o in enumerate(observations):
+        if not isinstance(o, Observation):
+            emit(i, {**_empty_row(paths[i], None, o.status, str(o), settings), "_error": str(o)})
+    for i, b in zip(ok_idx, bary, strict=True):
+        if not isinstance(observations[i], Observation):
+            continue
+        if isinstance(b, BarycentricResult):
+            tasks.append(Task(i, paths[i], b.berv, b.bjd_tdb, b.notes, hashes[i]))
+        else:
+            obs = observations[i]
+            emit(i, {**_empty_row(paths[i], obs, b.status, str(b), settings), "_error": str(b)})
+
+    bervs = np.array([t.berv for t in tasks])
+
+    def estimate_systemic() -> float | None:
+        plain = Context(mask, replace(settings, keep_ccf=False))
+        for t in tasks[:3]:
+            row = measure_task(t, plain)
+            if row["status"] == "ok":
+                return float(row["rv"])
+        return None
+
+    use_mask, note = effective_mask(mask, settings, bervs, estimate_systemic)
+    report.mask_note, report.n_lines_mask = note, len(use_mask)
+    ctx = Context(use_mask, settings)
+    todo = tasks
+    if store is not None:
+        from lineshift.run.store import settings_hash
+
+        key = settings_hash(settings, use_mask)
+        if settings.method == "template":  # the template is made of all the inputs
+            import hashlib
+
+            key = hashlib.sha256((key + "".join(sorted(t.input_hash for t in tasks))).encode()).hexdigest()
+        report.settings_hash = key
+        todo = []
+        for t in tasks:
+            row = store.get(t.input_hash, key)
+            if row is None:
+                todo.append(t)
+                continue
+            row.update(file=t.path)  # the path as given this time (the content is the same)
+            report.skipped += 1
+            emit(t.index, row)
+    if settings.method == "template":
+        # every result depends on every input through the template: measure all of them (any stored
+        # rows were for exactly this set of inputs, since the input hashes are part of the key)
+        first = {t.index: row for t, row in run_tasks(measure_task, tasks if todo else [], ctx, workers=workers,
+                                                      scheduler=scheduler)}
+        try:
+            final = _run_template(tasks, first, ctx, workers=workers, scheduler=scheduler) if todo else {}
+        except MeasurementError as exc:   # e.g. fewer than two usable spectra: no template at all
+            final = {}
+            for i, row in first.items():
+                if row.get("status") == "ok":
+                    failed = _empty_row(row["file"], None, "no template", f"{row['file']}: {exc.reason}", settings)
+                    failed.update(bjd_tdb=row["bjd_tdb"], berv=row["berv"], _error=f"{row['file']}: {exc.reason}")
+                    final[i] = failed
+        for t in todo:
+            row = final.get(t.index, first.get(t.index))
+            if store is not None:
+                store.put(t.input_hash, report.settings_hash, row)
+            emit(t.index, row)
+    else:
+        for task, row in run_tasks(measure_task, todo, ctx, workers=workers, scheduler=scheduler):
+            if store is not None:
+                store.put(task.input_hash, report.settings_hash, row)
+            emit(task.index, row)
+    out = [r for r in rows if r is not None]
+    if settings.components == 2:
+        from lineshift.measure.sb2 import assign_components
+
+        for r in out:
+            for c in SB2_COLUMNS:
+                r.setdefault(c, None)
+        report.swaps = assign_components(out)
+    return out
+
+
+def provenance(mask: LineMask, settings: MeasureSettings, report: BatchReport) -> dict[str, str]:
+    """Metadata written with the table: conventions, software, mask and settings."""
+    return {
+        "SOFTWARE": f"lineshift {__version__}",
+        "RV_CONVENTION": "IAU 2000 Resolution C1 barycentric radial-velocity measure cz_B, m/s",
+        "BERV_COMPOSITION": "(1+rv/c) = (1+rv_topo/c)(1+berv/c), Wright & Eastman 2014",
+        "TIME": "bjd_tdb: mid-exposure BJD in TDB, days (Eastman et al. 2010)",
+        "AIRVAC_FORMULA": airvac.FORMULA,
+        "MASK": f"{mask.source} ({len(mask)} lines; {report.n_lines_mask} after telluric rejection)",
+        "TELLURIC": report.mask_note,
+        "METHOD": settings.method,
+        "EPHEMERIS": settings.ephemeris or "builtin (ERFA)",
+    }
