@@ -288,16 +288,24 @@ def test_velocity_range_and_step_overrides(sample_set, tmp_path):
 
 
 def test_progress_reports(capsys, monkeypatch):
-    from lineshift.cli import app as cli
+    from lineshift.cli import common as cli
 
-    quiet = cli._Progress(100, quiet=True)
+    quiet = cli.Progress(100, quiet=True)
     for _ in range(100):
         quiet.update()
     assert capsys.readouterr().err == ""
     clock = iter(float(t) for t in range(0, 10000, 7))
     monkeypatch.setattr(cli.time, "monotonic", lambda: next(clock))
-    log = cli._Progress(100, quiet=False)  # stderr is not a terminal under pytest: one-line log
+    log = cli.Progress(100, quiet=False)  # stderr is not a terminal under pytest: one-line log
     for _ in range(10):
         log.update()
     err = capsys.readouterr().err.splitlines()
     assert err and all(line.startswith("lineshift: ") and "spectra" in line and "/s" in line for line in err)
+
+
+def test_a_mistyped_command_names_the_program_once(capsys):
+    assert main(["measur", "x.fits"]) == 2
+    err = capsys.readouterr().err.strip()
+    assert "see 'lineshift --help'" in err and "lineshift lineshift" not in err
+    assert main(["measure", "x.fits", "--box-width", "wide"]) == 2
+    assert "see 'lineshift measure --help'" in capsys.readouterr().err

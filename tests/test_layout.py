@@ -57,7 +57,8 @@ def _imports(name: str, path: str, known: set[str]) -> set[str]:
                 mod = ".".join(base[: len(base) - node.level + 1] + ([node.module] if node.module else []))
             else:
                 mod = node.module or ""
-            cands = [mod] + [f"{mod}.{a.name}" for a in node.names]
+            # "from pkg import sub" depends on the submodule; "from pkg import name" on pkg itself
+            cands = [f"{mod}.{a.name}" if f"{mod}.{a.name}" in known else mod for a in node.names]
         else:
             continue
         for c in cands:
@@ -131,4 +132,4 @@ def test_checker_sees_an_upward_import(tmp_path):
     f = tmp_path / "mod.py"
     f.write_text("def g():\n    from ..run import pipeline\n")
     deps = _imports("lineshift.measure.mod", str(f), {"lineshift.run", "lineshift.run.pipeline"})
-    assert deps == {"lineshift.run", "lineshift.run.pipeline"}
+    assert deps == {"lineshift.run.pipeline"}

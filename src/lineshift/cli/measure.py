@@ -1,0 +1,160 @@
+"""``lineshift measure``: spectra to barycentric velocities and BJD_TDB."""
+
+from __future__ import annotations
+
+import os
+import sys
+import warnings
+
+from lineshift.cli.common import Progress, settings_from
+from lineshift.errors import ConfigError, LineshiftError
+
+
+def add_parser(sub) -> None:
+    """Declare the command and its options on the subcommand set ``sub``."""
+    p = sub.add_parser("measure", help="spectra to barycentric velocities",
+                       description="Measure barycentric radial velocities (m/s, IAU cz_B) and BJD_TDB.")
+    p.add_argument("spectra", nargs="+", metavar="SPECTRUM", help="files, directories or globs")
+    p.add_argument("--mask", help="line mask CSV (rest vacuum wavelengths, weights); without one, a relative "
+                                  "mask is built from the inputs")
+    p.add_argument("--save-mask", metavar="CSV", help="write the mask built from the inputs here")
+    p.add_argument("-o", "--output", metavar="TABLE",
+                   help="output table (.csv, .ecsv, .fits, .parquet); stdout if absent")
+    p.add_argument("--config", metavar="TOML", help="configuration file")
+    p.add_argument("--ra", help="target RA (degrees or hh:mm:ss), overrides headers")
+    p.add_argument("--dec", help="target Dec (degrees or dd:mm:ss), overrides headers")
+    p.add_argument("--object", help="target name, overrides headers")
+    p.add_argument("--site", metavar="LON,LAT,HEIGHT", help="observatory (deg east, deg, m), overrides headers")
+    p.add_argument("--medium", choices=("air", "vacuum"), help="medium of the files' wavelengths")
+    p.add_argument("--velocity-range", metavar="LO,HI", help="barycentric search range, m/s (default -300000,300000)")
+    p.add_argument("--velocity-step", type=float, metavar="M_S", help="fine CCF step, m/s (default one pixel)")
+    p.add_argument("--box-width", type=float, metavar="M_S", help="mask box full width, m/s (default one pixel)")
+    p.add_argument("--method", choices=("mask", "template"),
+                   help="velocity engine: mask CCF (default) or least-squares template matching")
+    p.add_argument("--components", type=int, choices=(1, 2), default=1,
+                   help="2: fit two correlation profiles (double-lined binary); rv2... columns for the secondary")
+    p.add_argument("--orders-table", metavar="TABLE", help="per-order velocities (one row per file and order)")
+    p.add_argument("--systemic-velocity", type=float, metavar="M_S",
+                   help="approximate barycentric velocity for telluric rejection (default: measured)")
+    p.add_argument("--telluric", metavar="CSV", help="telluric band list (default: the shipped one)")
+    p.add_argument("--no-telluric", action="store_true", help="keep mask lines in telluric bands")
+    p.add_argument("--ephemeris", metavar="PATH", help="local JPL .bsp ephemeris (default: astropy builtin)")
+    p.add_argument("--workers", type=int, default=1, metavar="N", help="local worker processes (default 1)")
+    p.add_argument("--store", metavar="FILE.sqlite",
+                   help="results store: keep every result, skip inputs already measured with these settings")
+    p.add_argument("--scheduler", metavar="ADDRESS",
+                   help="run the measurements on an existing Dask cluster (e.g. tcp://127.0.0.1:8786)")
+    p.add_argument("--plots", metavar="DIR", help="write a CCF plot per spectrum and rv_time.png here")
+    p.add_argument("-q", "--quiet", action="store_true", help="no progress or summary on stderr")
+    p.add_argument("--debug", action="store_true", help="show tracebacks of unexpected errors")
+
+
+def run(args) -> int:
+    from dataclasses import replace
+
+    from lineshift.io.linelists import read_mask
+    from lineshift.io.table import table_format, write_table
+    from lineshift.run import pipeline
+    from lineshift.run.config import load_config
+    from lineshift.run.pipeline import BatchReport, expand_inputs, measure_files, provenance
+
+    pipeline.DEBUG = args.debug
+    cfg = load_config(args.config) if args.config else {"target": {}, "site": {}, "measure": {}}
+    settings = settings_from(args, cfg)
+    mask_path = args.mask or cfg["measure"].get("mask")
+    mask = read_mask(mask_path) if mask_path else None
+    paths = expand_inputs(args.spectra)
+    if not paths:
+        raise ConfigError("no input spectra found")
+    inputs = {os.path.abspath(p) for p in paths} | ({os.path.abspath(mask_path)} if mask_path else set())
+    if args.orders_table:
+        table_format(args.orders_table)
+        if os.path.abspath(args.orders_table) in inputs:
+            raise ConfigError(f"--orders-table {args.orders_table!r} is one of the inputs")
+    if args.output:
+        table_format(args.output)
+        if os.path.abspath(args.output) in inputs:
+            raise ConfigError(f"output {args.output!r} is one of the inputs: refusing to overwrite it")
+    if args.store and (os.path.abspath(args.store) in inputs
+                       or (args.output and os.path.abspath(args.store) == os.path.abspath(args.output))):
+        raise ConfigError(f"store {args.store!r} is one of the inputs or the output table")
+    if args.scheduler and not args.scheduler.startswith(("tcp://", "tls://", "inproc://", "ucx://")):
+        raise ConfigError(f"--scheduler {args.scheduler!r}: expected an address like tcp://HOST:PORT")
+    if args.save_mask and os.path.abspath(args.save_mask) in inputs:
+        raise ConfigError(f"--save-mask {args.save_mask!r} is one of the inputs: refusing to overwrite it")
+    if mask is None:
+        from lineshift.run.mask_builder import build_mask, write_mask_file
+
+        try:
+            built = build_mask(paths, settings)
+        except LineshiftError as exc:
+            print(f"lineshift: no --mask given and none could be built from the inputs: {exc.reason}",
+                  file=sys.stderr)
+            return 1
+        mask = replace(built.mask, source="built from the inputs (relative zero point)")
+        if not args.quiet:
+            print(f"lineshift: no --mask given: built a relative mask of {len(mask)} lines from "
+                  f"{len(built.paths)} of the inputs; velocities are differential (arbitrary zero point)",
+                  file=sys.stderr)
+        if args.save_mask:
+            write_mask_file(mask, args.save_mask)
+    elif args.save_mask:
+        raise ConfigError("--save-mask only applies when no --mask is given")
+    store = None
+    if args.store:
+        from lineshift.run.store import ResultStore
+
+        store = ResultStore(args.store)
+    progress = Progress(len(paths), args.quiet)
+    failures: list[str] = []
+
+    def on_row(row):
+        progress.update()
+        if row["status"] != "ok":
+            failures.append(row["file"])
+            progress.write(f"lineshift: {row.get('_error') or row['status']}")
+        elif args.plots and "_ccf" in row:
+            from lineshift.plots.figures import plot_ccf
+
+            os.makedirs(args.plots, exist_ok=True)
+            plot_ccf(row, args.plots)
+            row.pop("_ccf", None)
+
+    report = BatchReport()
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        try:
+            rows = measure_files(paths, mask, settings, workers=args.workers, scheduler=args.scheduler,
+                                 store=store, on_row=on_row, report=report)
+        finally:
+            progress.close()
+            if store is not None:
+                store.close()
+    for w in {str(w.message): w for w in caught}.values():
+        print(f"lineshift: warning: {str(w.message).splitlines()[0]}", file=sys.stderr)
+    meta = provenance(mask, settings, report)
+    if settings.components == 2:
+        meta["COMPONENTS"] = ("2: rv/fwhm/contrast describe the primary (the deeper profile, kept the same star "
+                              f"across the batch; {report.swaps} exchanged), rv2... the secondary")
+    write_table(rows, args.output, meta)
+    if args.orders_table:
+        import pandas as pd
+
+        from lineshift.io.table import write_frame
+
+        per_order = [{"file": r["file"], **o} for r in rows for o in r.get("_orders", [])]
+        write_frame(pd.DataFrame(per_order, columns=["file", "order", "wavelength", "rv", "rv_err", "n_lines",
+                                                    "chi2_red", "flag"]),
+                    args.orders_table, {"RV": "per-order topocentric velocity (profile width fixed), m/s"},
+                    name="ORDERS")
+    if args.plots:
+        from lineshift.plots.figures import plot_rv_time
+
+        os.makedirs(args.plots, exist_ok=True)
+        plot_rv_time(rows, args.plots)
+    if not args.quiet:
+        n_ok = len(rows) - len(failures)
+        skipped = f" ({report.skipped} already in the store, skipped)" if store is not None else ""
+        print(f"lineshift: {n_ok} of {len(rows)} spectra have a velocity{skipped}; {report.mask_note}"
+              + (f"; table written to {args.output}" if args.output else ""), file=sys.stderr)
+    return 1 if failures else 0
