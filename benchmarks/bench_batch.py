@@ -23,7 +23,7 @@ import time
 
 from astropy.io import fits
 
-from lineshift.sim import simulate as sim
+from lineshift import sim
 
 
 def _tree(pid: int) -> list[int]:

@@ -28,13 +28,13 @@ from dataclasses import replace
 
 import numpy as np
 
+from lineshift import sim
 from lineshift.calib.barycentric import barycentric_batch
 from lineshift.io.loaders import load_spectrum, read_observation
 from lineshift.measure.mask_engine import SearchSettings, measure_mask
 from lineshift.measure.prepare import prepare_spectrum
 from lineshift.model import LineMask
 from lineshift.run.pipeline import MeasureSettings, measure_files
-from lineshift.sim import simulate as sim
 
 
 def _median_ms(fn, repeats: int) -> float:

@@ -10,7 +10,7 @@ import pytest
 
 sys.path.insert(0, os.path.dirname(__file__))  # for the injection helper
 
-from lineshift.sim import simulate as sim
+from lineshift import sim
 
 _LOCAL = ("127.0.0.1", "localhost", "::1")
 

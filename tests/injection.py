@@ -11,10 +11,10 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from lineshift import sim
 from lineshift.measure.mask_engine import SearchSettings, measure_mask
 from lineshift.measure.prepare import prepare_spectrum
 from lineshift.model import LineMask
-from lineshift.sim import simulate as sim
 
 
 @dataclass

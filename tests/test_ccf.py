@@ -4,10 +4,10 @@ import numpy as np
 import pytest
 from numpy.testing import assert_allclose
 
+from lineshift import sim
 from lineshift.measure.ccf import box_adjoint, box_integrals, correlate, reference_ccf
 from lineshift.measure.prepare import PreparedOrder, pixel_edges, prepare_order
 from lineshift.model import C_MS, LineMask, Order
-from lineshift.sim import simulate as sim
 
 
 def _order(n=300, lam0=5000.0, step=0.02, seed=0, index=0):

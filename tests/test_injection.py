@@ -12,7 +12,7 @@ import numpy as np
 import pytest
 
 from injection import recover
-from lineshift.sim import simulate as sim
+from lineshift import sim
 
 SCENARIOS = {
     # name: (star, instrument, bound factor from the issue)

@@ -13,11 +13,11 @@ from astropy.time import Time
 from astropy.wcs import WCS
 from numpy.testing import assert_allclose
 
+from lineshift import sim
 from lineshift.errors import MetadataError, SpectrumFormatError
 from lineshift.io import airvac
 from lineshift.io.loaders import load_spectrum, read_observation, wcs_wavelengths
 from lineshift.model import C_MS
-from lineshift.sim import simulate as sim
 
 BASE = {"OBJECT": "Vessa-9", "DATE-OBS": "2026-03-01T22:00:00", "EXPTIME": 600.0, "RA": 131.40625,
         "DEC": -18.72361, "OBSGEO-X": 5090896.6, "OBSGEO-Y": 3593002.6, "OBSGEO-Z": -1365567.2}

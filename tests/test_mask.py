@@ -9,13 +9,13 @@ import pandas as pd
 import pytest
 from specutils.utils.wcs_utils import vac_to_air
 
+from lineshift import sim
 from lineshift.calib.linefind import LineSettings
 from lineshift.cli import main
 from lineshift.io.linelists import DEFAULT_LAB_LINES, read_lab_lines, read_mask
 from lineshift.model import C_MS
 from lineshift.run.mask_builder import MaskBuildSettings, build_mask
 from lineshift.run.pipeline import MeasureSettings
-from lineshift.sim import simulate as sim
 
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 

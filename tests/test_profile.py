@@ -9,12 +9,12 @@ import pandas as pd
 import pytest
 
 from injection import star_mask
+from lineshift import sim
 from lineshift.cli import main
 from lineshift.measure.mask_engine import SearchSettings, measure_mask
 from lineshift.measure.prepare import prepare_spectrum
 from lineshift.measure.profile import bisector
 from lineshift.model import C_MS, Order, Spectrum
-from lineshift.sim import simulate as sim
 
 
 def _linear_bisector_ccf(s, v0=100.0, sig=3000.0, amp=0.4, step=50.0):

@@ -6,8 +6,8 @@ import numpy as np
 import pandas as pd
 from astropy.io import fits
 
+from lineshift import sim
 from lineshift.cli import main
-from lineshift.sim import simulate as sim
 
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 

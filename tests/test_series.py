@@ -170,7 +170,7 @@ def test_sample_spectra_recover_the_invented_companion(tmp_path):
     assert main(["series", str(rv), "--dataset-column", "layout", "--fit-orbit", "--stellar-mass", "1.0",
                  "-o", str(tmp_path / "series.csv"), "--json", str(js), "-q"]) == 0
     s = json.loads(js.read_text())
-    from lineshift.sim.simulate import DEMO_STAR
+    from lineshift.sim import DEMO_STAR
 
     o = DEMO_STAR.orbit
     assert s["period"] == pytest.approx(o.period, rel=0.01)

@@ -8,12 +8,12 @@ import pandas as pd
 import pytest
 
 from injection import recover_template
+from lineshift import sim
 from lineshift.cli import main
 from lineshift.measure.coadd import TemplateAccumulator, log_grid
 from lineshift.measure.prepare import prepare_spectrum
 from lineshift.measure.template_engine import TemplateSettings, TemplateState, measure_template
 from lineshift.model import C_MS, Order, Spectrum
-from lineshift.sim import simulate as sim
 from test_injection import SCENARIOS
 
 INS = sim.Instrument("tm-echelle", "multi-order", 110_000, 8, 2048, 5000.0, snr=150)

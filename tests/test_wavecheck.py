@@ -8,10 +8,10 @@ import pandas as pd
 import pytest
 from specutils.utils.wcs_utils import vac_to_air
 
+from lineshift import sim
 from lineshift.calib.wavecheck import WavecheckSettings, check_spectrum, file_summary
 from lineshift.cli import main
 from lineshift.io.linelists import read_lab_lines
-from lineshift.sim import simulate as sim
 
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 LAMP_LIST = os.path.join(ROOT, "line_lists", "lamp_lines_hg_ne_ar.csv")

@@ -37,7 +37,7 @@ def add_parser(sub) -> None:
 def run(args) -> int:
     from dataclasses import replace
 
-    from lineshift.sim import simulate as sim
+    from lineshift import sim
 
     plan = []
     for item in args.instrument or ["demo-echelle:20", "demo-1d:4", "demo-table:4", "demo-text:4"]:
