@@ -152,6 +152,40 @@ def test_cleaning_binning_jitter_and_export(tmp_path, capfd):
     assert len(b) == t.size - 1 - 2 - 1                     # dropped row, 3 -> 1, the flagged outlier
 
 
+def test_binning_carries_every_indicator_with_propagated_errors(tmp_path):
+    # inverse-variance mean and its error 1/sqrt(sum 1/e^2) (common practice, e.g. Bevington & Robinson,
+    # Data Reduction and Error Analysis, eq. 4.17-4.19), computed here by hand for one bin of three
+    rng = np.random.default_rng(8)
+    t = 2461000.0 + 2.0 * np.arange(12)
+    t[3:6] = t[3] + np.array([0.0, 0.01, 0.02])
+    err = np.full(t.size, 2.0)
+    rv = 50.0 + rng.normal(size=t.size) * err
+    fwhm, fwhm_err = 7000 + rng.normal(size=t.size), np.array([1.0, 2.0, 4.0] * 4)
+    bis, bis_err = rng.normal(size=t.size) * 5, np.array([3.0, 6.0, 2.0] * 4)
+    slope = rng.normal(size=t.size)
+    extra = {"fwhm": fwhm, "fwhm_err": fwhm_err, "contrast": 0.4 + 0.01 * rng.normal(size=t.size),
+             "contrast_err": np.full(t.size, 0.002), "bis_span": bis, "bis_span_err": bis_err,
+             "rv_chromatic_slope": slope, "rv_chromatic_slope_err": np.full(t.size, 0.5),
+             "rv2": np.full(t.size, np.nan), "rv2_err": np.full(t.size, np.nan)}
+    path = _table(tmp_path / "t.csv", t, rv, err, extra=extra)
+    out = tmp_path / "b.csv"
+    assert main(["series", path, "-o", str(out), "--bin", "1", "-q"]) == 0
+    b = pd.read_csv(out, comment="#")
+    for c in extra:
+        assert c in b.columns, c
+    row = b[b.n_binned == 3].iloc[0]
+    sel = slice(3, 6)
+    for name in ("fwhm", "bis_span"):
+        w = 1 / extra[f"{name}_err"][sel] ** 2
+        assert row[name] == pytest.approx(np.sum(w * extra[name][sel]) / np.sum(w), rel=1e-12)
+        assert row[f"{name}_err"] == pytest.approx(1 / np.sqrt(np.sum(w)), rel=1e-12)
+    assert row.rv_chromatic_slope_err == pytest.approx(0.5 / np.sqrt(3), rel=1e-12)
+    assert np.isnan(row.rv2) and np.isnan(row.rv2_err)          # absent stays absent, never a number
+    single = b[b.n_binned == 1].iloc[0]
+    k = int(np.flatnonzero(np.isclose(t, single.bjd_tdb))[0])
+    assert single.bis_span == pytest.approx(bis[k]) and single.bis_span_err == pytest.approx(bis_err[k])
+
+
 def test_series_usage_errors(tmp_path, capfd):
     bad = tmp_path / "bad.csv"
     bad.write_text("a,b\n1,2\n")

@@ -104,12 +104,14 @@ def run(args) -> int:
     frame = pd.DataFrame({"bjd_tdb": s.t, "rv": s.rv, "rv_err": s.err, "dataset": s.dataset.astype(str),
                           "offset": aligned_offset, "rv_aligned": s.rv - aligned_offset, "flag": s.flag,
                           "flag_reason": s.flag_reason.astype(str), "n_binned": s.n_binned,
-                          "file": s.file.astype(str)})
+                          **s.indicators, "file": s.file.astype(str)})
     meta = {"TIME": "bjd_tdb: mid-exposure BJD in TDB (days)",
             "VELOCITY": "rv, rv_err, offset, rv_aligned in m/s; rv is the IAU 2000 Resolution C1 barycentric "
                         "radial-velocity measure cz_B as measured; rv_aligned = rv - offset "
                         "(fitted data-set zero point)",
             "FLAGS": "flag = robust outlier (kept, not deleted); flag_reason says why",
+            "INDICATORS": "line-shape and secondary columns as in the measure table (same units); with --bin "
+                          "inverse-variance means with propagated errors",
             "SOFTWARE": f"lineshift {__version__}"}
     if table_format(args.output) == "csv":
         with atomic_path(args.output) as tmp, open(tmp, "w", newline="") as fh:

@@ -31,12 +31,16 @@ from lineshift.errors import ConfigError
 from lineshift.linefit import weighted_line
 from lineshift.series.orbit import Orbit, jupiter_masses, mass_function, minimum_mass, radial_velocity, semi_major_axis
 
-__all__ = ["Series", "bin_series", "bisector_correlation", "fit_orbit", "flag_outliers", "jitter", "periodogram",
-           "read_series", "secondary_orbit"]
+__all__ = ["INDICATORS", "Series", "bin_series", "bisector_correlation", "fit_orbit", "flag_outliers", "jitter",
+           "periodogram", "read_series", "secondary_orbit"]
 
 CAVEATS = ("m sin i is a minimum mass: the orbital inclination is unknown.",
            "A periodogram peak can be an alias of the sampling (1 d, 1 yr, or a peak of the window function) "
            "or stellar activity (rotation, spots); check line-shape indicators before calling it a companion.")
+
+
+#: measure-table columns carried into the series (and through binning) where present; each may have ``_err``
+INDICATORS = ("fwhm", "contrast", "bis_span", "rv_chromatic_slope", "rv2", "fwhm2", "contrast2", "flux_ratio")
 
 
 @dataclass
@@ -56,6 +60,8 @@ class Series:
     bis_err: np.ndarray = field(default_factory=lambda: np.zeros(0))
     rv2: np.ndarray = field(default_factory=lambda: np.zeros(0))       # secondary's velocity (NaN if absent)
     rv2_err: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    #: every indicator column of the input tables present (INDICATORS and their ``_err``), aligned with ``t``
+    indicators: dict[str, np.ndarray] = field(default_factory=dict)
 
     def __post_init__(self):
         n = self.t.size
@@ -117,9 +123,11 @@ def read_series(paths: list[str], *, dataset_column: str | None = None) -> Serie
     def col(name):
         return pd.to_numeric(df[name], errors="coerce").to_numpy(float) if name in df else np.full(len(df), np.nan)
 
+    indicators = {c: col(c) for name in INDICATORS for c in (name, f"{name}_err") if c in df}
     return Series(df["bjd_tdb"].to_numpy(float), df["rv"].to_numpy(float), df["rv_err"].to_numpy(float),
                   df["_ds"].to_numpy(object), df.get("file", pd.Series([""] * len(df))).to_numpy(object), dropped,
-                  bis=col("bis_span"), bis_err=col("bis_span_err"), rv2=col("rv2"), rv2_err=col("rv2_err"))
+                  bis=col("bis_span"), bis_err=col("bis_span_err"), rv2=col("rv2"), rv2_err=col("rv2_err"),
+                  indicators=indicators)
 
 
 # --------------------------------------------------------------------------- jitter, offsets, outliers
@@ -162,9 +170,26 @@ def flag_outliers(s: Series, model: np.ndarray, *, threshold: float = 5.0, s_jit
     s.flag_reason[out] = [f"residual {zz:+.1f} sigma" for zz in z[out]]
 
 
+def _weighted_mean(x: np.ndarray, err: np.ndarray | None, w_rv: np.ndarray) -> tuple[float, float]:
+    """Inverse-variance mean of the finite values and its propagated error (common practice).
+
+    With no error column the velocities' weights are used and the error is NaN."""
+    ok = np.isfinite(x) & (np.isfinite(err) & (err > 0) if err is not None else True)
+    if not ok.any():
+        return np.nan, np.nan
+    if err is None:
+        return float(np.sum(w_rv[ok] * x[ok]) / np.sum(w_rv[ok])), np.nan
+    w = 1 / err[ok] ** 2
+    return float(np.sum(w * x[ok]) / np.sum(w)), float(1 / np.sqrt(np.sum(w)))
+
+
 def bin_series(s: Series, window_days: float) -> Series:
-    """Weighted means of unflagged points within ``window_days`` of the first point of a bin, per data set."""
-    rows = []
+    """Weighted means of unflagged points within ``window_days`` of the first point of a bin, per data set.
+
+    Time and velocity are inverse-variance means with the velocity errors; every indicator column is the
+    inverse-variance mean with its own errors (propagated: ``1 / sqrt(sum w)``), or, where the table has no
+    error column for it, the mean with the velocities' weights."""
+    bins = []
     for d in s.datasets:
         idx = np.flatnonzero((s.dataset == d) & ~s.flag)
         i = 0
@@ -172,15 +197,34 @@ def bin_series(s: Series, window_days: float) -> Series:
             j = i
             while j + 1 < idx.size and s.t[idx[j + 1]] - s.t[idx[i]] <= window_days:
                 j += 1
-            sel = idx[i:j + 1]
-            w = 1 / s.err[sel] ** 2
-            rows.append((np.sum(w * s.t[sel]) / np.sum(w), np.sum(w * s.rv[sel]) / np.sum(w),
-                         1 / np.sqrt(np.sum(w)), d, ";".join(map(str, s.file[sel])), sel.size))
+            bins.append((d, idx[i:j + 1]))
             i = j + 1
-    rows.sort(key=lambda r: r[0])
-    t, rv, err, ds, files, n = (np.array(c, dtype=object) for c in zip(*rows, strict=True))
-    return Series(t.astype(float), rv.astype(float), err.astype(float), ds, files, s.n_dropped,
-                  n_binned=n.astype(int))
+    t, rv, err, ds, files, n = [], [], [], [], [], []
+    ind: dict[str, list[float]] = {c: [] for c in s.indicators}
+    for d, sel in bins:
+        w = 1 / s.err[sel] ** 2
+        t.append(np.sum(w * s.t[sel]) / np.sum(w))
+        rv.append(np.sum(w * s.rv[sel]) / np.sum(w))
+        err.append(1 / np.sqrt(np.sum(w)))
+        ds.append(d)
+        files.append(";".join(map(str, s.file[sel])))
+        n.append(sel.size)
+        for c in s.indicators:
+            if c.endswith("_err") and c[:-4] in s.indicators:
+                continue
+            e = s.indicators.get(f"{c}_err")
+            value, value_err = _weighted_mean(s.indicators[c][sel], None if e is None else e[sel], w)
+            ind[c].append(value)
+            if e is not None:
+                ind[f"{c}_err"].append(value_err)
+    order = np.argsort(t, kind="stable")
+    indicators = {c: np.asarray(v, float)[order] for c, v in ind.items()}
+    nan = np.full(order.size, np.nan)
+    return Series(np.asarray(t)[order], np.asarray(rv)[order], np.asarray(err)[order],
+                  np.asarray(ds, dtype=object)[order], np.asarray(files, dtype=object)[order], s.n_dropped,
+                  n_binned=np.asarray(n, int)[order], indicators=indicators,
+                  bis=indicators.get("bis_span", nan), bis_err=indicators.get("bis_span_err", nan),
+                  rv2=indicators.get("rv2", nan), rv2_err=indicators.get("rv2_err", nan))
 
 
 # --------------------------------------------------------------------------- periodogram
