@@ -48,3 +48,24 @@ def sample_set(tmp_path_factory):
     mask = str(out / "truth" / "mask.csv")
     sim.write_mask(sim.DEMO_STAR, mask)
     return str(out), mask, rows
+
+
+@pytest.fixture
+def drawn(monkeypatch):
+    """Every matplotlib figure saved during the test, as (figure, path), for checks of what it shows."""
+    from matplotlib.figure import Figure
+
+    saved = []
+    original = Figure.savefig
+
+    def record(self, fname, *args, **kwargs):
+        out = original(self, fname, *args, **kwargs)
+        path = str(fname)
+        base = os.path.basename(path)
+        if base.startswith(".") and base.endswith(".tmp"):  # an atomic write: ".NAME.XXXX.tmp" becomes NAME
+            path = os.path.join(os.path.dirname(path), base[1:].rsplit(".", 2)[0])
+        saved.append((self, path))
+        return out
+
+    monkeypatch.setattr(Figure, "savefig", record)
+    return saved

@@ -13,6 +13,7 @@ from astropy.table import Table
 
 from lineshift.cli import main
 from lineshift.io.table import COLUMNS
+from plotcheck import check_plot
 
 
 def _truth(directory):
@@ -68,7 +69,7 @@ def test_stdout_when_no_output(sample_set, capsys):
     assert len(out.splitlines()) == 2
 
 
-def test_plots(sample_set, tmp_path):
+def test_plots(sample_set, tmp_path, drawn):
     directory, mask, rows = sample_set
     files = [os.path.join(directory, r["file"]) for r in rows[:3]]
     plots = tmp_path / "plots"
@@ -76,6 +77,12 @@ def test_plots(sample_set, tmp_path):
     names = sorted(os.listdir(plots))
     assert "rv_time.png" in names
     assert sum(n.endswith("_ccf.png") for n in names) == 3
+    check_plot(drawn, plots / "rv_time.png", points=3)          # one point per spectrum
+    for name in names:
+        if name.endswith("_ccf.png"):
+            fig = check_plot(drawn, plots / name, min_points=20, axes_with_data=2)   # CCF, residual (+ bisector)
+            ccf_ax = fig.axes[0]
+            assert {t.get_text() for t in ccf_ax.get_legend().get_texts()} >= {"CCF", "fit"}
 
 
 def _make_bad_files(directory, good_file, wcs_file):
@@ -309,3 +316,42 @@ def test_a_mistyped_command_names_the_program_once(capsys):
     assert "see 'lineshift --help'" in err and "lineshift lineshift" not in err
     assert main(["measure", "x.fits", "--box-width", "wide"]) == 2
     assert "see 'lineshift measure --help'" in capsys.readouterr().err
+
+
+def test_progress_bar_on_a_terminal(sample_set, tmp_path):
+    """On a real (pseudo-)terminal the bar is drawn in place and ends at 100 %; -q draws nothing."""
+    import fcntl
+    import pty
+    import struct
+    import subprocess
+    import sys
+    import termios
+
+    directory, mask, rows = sample_set
+    files = [os.path.join(directory, r["file"]) for r in rows[:4]]
+
+    def run(*extra):
+        leader, follower = pty.openpty()
+        fcntl.ioctl(follower, termios.TIOCSWINSZ, struct.pack("HHHH", 24, 100, 0, 0))  # a 100-column terminal
+        cmd = [sys.executable, "-m", "lineshift", "measure", *files, "--mask", mask,
+               "-o", str(tmp_path / "t.csv"), *extra]
+        proc = subprocess.Popen(cmd, stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL, stderr=follower,
+                                env=os.environ.copy())
+        os.close(follower)
+        chunks = []
+        while True:
+            try:
+                data = os.read(leader, 4096)
+            except OSError:  # EIO: the child closed the terminal
+                break
+            if not data:
+                break
+            chunks.append(data)
+        os.close(leader)
+        assert proc.wait(timeout=120) == 0
+        return b"".join(chunks).decode("utf-8", "replace")
+
+    text = run()
+    assert "\r" in text                                  # redrawn in place, the way a terminal bar is
+    assert "100%" in text and "4/4" in text and "spectrum" in text
+    assert run("-q") == ""

@@ -16,6 +16,7 @@ from lineshift.io.linelists import DEFAULT_LAB_LINES, read_lab_lines, read_mask
 from lineshift.model import C_MS
 from lineshift.run.mask_builder import MaskBuildSettings, build_mask
 from lineshift.run.pipeline import MeasureSettings
+from plotcheck import check_plot
 
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 
@@ -179,7 +180,7 @@ def test_anchor_gives_the_absolute_zero_point(tmp_path, capfd):
     assert sigma < 30.0
 
 
-def test_mask_command_usage(tmp_path, sample_set, capfd):
+def test_mask_command_usage(tmp_path, sample_set, capfd, drawn):
     directory, mask, rows = sample_set
     files = [os.path.join(directory, r["file"]) for r in rows if r["layout"] == "multi-order"]
     assert main(["mask", *files, "-o", str(tmp_path / "m.csv"), "--start-mask", mask, "--plot",
@@ -189,7 +190,9 @@ def test_mask_command_usage(tmp_path, sample_set, capfd):
     built = read_mask(str(tmp_path / "m.csv"))
     assert len(built) > 10
     assert any("starting mask" in line for line in built.provenance)
-    assert (tmp_path / "t.png").stat().st_size > 10_000
+    fig = check_plot(drawn, tmp_path / "t.png", min_points=0, axes_with_data=5)    # overview + 4 zooms
+    kept_marks = sum(1 for ax in fig.axes[1:] for line in ax.lines if line.get_color() == "tab:red")
+    assert 0 < kept_marks <= len(built)                      # kept lines marked in the zooms, no more than kept
     assert main(["mask", *files, "-o", str(tmp_path / "x.csv"), "--min-depth", "2"]) == 2
     assert main(["mask", *files, "-o", files[0]]) == 2
     assert main(["mask", *files, "-o", str(tmp_path / "y.csv"), "--anchor", str(tmp_path / "none.csv")]) == 2

@@ -15,6 +15,7 @@ from lineshift.measure.mask_engine import SearchSettings, measure_mask
 from lineshift.measure.prepare import prepare_spectrum
 from lineshift.measure.profile import bisector
 from lineshift.model import C_MS, Order, Spectrum
+from plotcheck import check_plot
 
 
 def _linear_bisector_ccf(s, v0=100.0, sig=3000.0, amp=0.4, step=50.0):
@@ -173,7 +174,7 @@ def test_mass_ratio_from_the_two_semi_amplitudes(binary_run):
     assert s["mass_ratio"] == pytest.approx(q_true, abs=3 * s["mass_ratio_err"] + 0.002)
 
 
-def test_series_warns_about_a_velocity_bisector_correlation(tmp_path, capfd):
+def test_series_warns_about_a_velocity_bisector_correlation(tmp_path, capfd, drawn):
     rng = np.random.default_rng(2)
     t = 2461000.0 + np.sort(rng.uniform(0, 60, 40))
     rv = 30.0 * np.sin(2 * np.pi * t / 9.3) + rng.normal(size=t.size)
@@ -185,7 +186,7 @@ def test_series_warns_about_a_velocity_bisector_correlation(tmp_path, capfd):
                  str(tmp_path / "a.json"), "--plots", str(tmp_path / "p")]) == 0
     assert "WARNING: velocity and bisector span correlate" in capfd.readouterr().err
     assert json.loads((tmp_path / "a.json").read_text())["rv_bisector_correlation"]["significant"]
-    assert (tmp_path / "p" / "rv_bisector.png").exists()
+    check_plot(drawn, tmp_path / "p" / "rv_bisector.png", points=t.size)      # every point, none flagged here
     df["bis_span"] = rng.normal(size=t.size) * 2
     df.to_csv(tmp_path / "quiet.csv", index=False)
     assert main(["series", str(tmp_path / "quiet.csv"), "-o", str(tmp_path / "o2.csv")]) == 0

@@ -12,6 +12,7 @@ from lineshift import sim
 from lineshift.calib.wavecheck import WavecheckSettings, check_spectrum, file_summary
 from lineshift.cli import main
 from lineshift.io.linelists import read_lab_lines
+from plotcheck import check_plot
 
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 LAMP_LIST = os.path.join(ROOT, "line_lists", "lamp_lines_hg_ne_ar.csv")
@@ -48,7 +49,7 @@ def test_injected_offsets_and_tilts_are_recovered(invented_lamp):
     assert 0.85 < np.std(z) < 1.15
 
 
-def test_drift_series_is_recovered(tmp_path, invented_lamp):
+def test_drift_series_is_recovered(tmp_path, invented_lamp, drawn):
     lam, counts = invented_lamp
     lines_csv = tmp_path / "lamp.csv"
     pd.DataFrame({"wavelength": lam}).to_csv(lines_csv, index=False)
@@ -69,8 +70,11 @@ def test_drift_series_is_recovered(tmp_path, invented_lamp):
     t = (table.mjd_mid - table.mjd_mid.min()) * 24
     slope, _ = np.polyfit(t, table.offset, 1)
     assert slope == pytest.approx(rate, abs=0.15)
-    assert (tmp_path / "p" / "drift.png").exists()
-    assert (tmp_path / "p" / "lamp0_orders.png").exists()
+    check_plot(drawn, tmp_path / "p" / "drift.png", points=6)                 # one point per exposure
+    orders = pd.read_csv(tmp_path / "o.csv")
+    check_plot(drawn, tmp_path / "p" / "lamp0_orders.png", points=int((orders.file == files[0]).sum()))
+    lines = pd.read_csv(tmp_path / "l.csv")
+    check_plot(drawn, tmp_path / "p" / "lamp0_residuals.png", points=int((lines.file == files[0]).sum()))
 
 
 def test_lamp_list_vacuum_values_come_from_specutils():

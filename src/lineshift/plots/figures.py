@@ -117,6 +117,8 @@ def plot_template(template, found, path: str, *, panels: int = 4, width: float =
                 ax.axvline(lam, color="tab:red" if k else "0.7", lw=0.8, ymax=0.12 if k else 0.06)
         ax.set_xlim(c - width / 2, c + width / 2)
         ax.set_ylim(0, 1.15)
+    for ax in axes:
+        ax.set_ylabel("normalised flux")
     axes[-1].set_xlabel("vacuum wavelength, template frame (A)")
     fig.tight_layout()
     return _save(fig, path)
