@@ -129,3 +129,35 @@ def test_template_needs_two_spectra_and_one_component(tmp_path, capfd):
     assert pd.read_csv(table).status[0] == "no template"
     assert "at least two spectra" in capfd.readouterr().err
     assert main(["measure", str(out), "--mask", str(mask), "--method", "template", "--components", "2"]) == 2
+
+
+def test_store_keeps_the_template_and_measures_only_new_spectra(tmp_path, capfd):
+    out = tmp_path / "s"
+    rows = sim.simulate_set(str(out), [(sim.INSTRUMENTS["demo-echelle"], 7)], seed=4, compress=False)
+    files = sorted(str(out / r["file"]) for r in rows)
+    mask = tmp_path / "m.csv"
+    sim.write_mask(sim.DEMO_STAR, str(mask))
+    store = str(tmp_path / "r.sqlite")
+    base = ["--mask", str(mask), "--method", "template", "--store", store]
+    first, second, rebuilt = tmp_path / "a.csv", tmp_path / "b.csv", tmp_path / "c.csv"
+    assert main(["measure", *files[:6], *base, "-o", str(first)]) == 0
+    a = pd.read_csv(first)
+    assert a.notes.str.contains("co-added in this run (6 spectra), kept in the store", regex=False).all()
+    capfd.readouterr()
+    # one new spectrum: the six are taken from the store, the new one is fitted against the stored template
+    assert main(["measure", *files, *base, "-o", str(second)]) == 0
+    assert "(6 already in the store, skipped)" in capfd.readouterr().err
+    b = pd.read_csv(second)
+    np.testing.assert_array_equal(b.rv[:6], a.rv)                  # untouched
+    template_id = a.notes[0].split("template ")[1].split()[0]
+    assert f"template {template_id} from the store (6 spectra)" in b.notes[6]
+    # the new spectrum agrees with the truth like the others (same zero point: relative to the same template)
+    truth = pd.DataFrame(rows).set_index("file").loc[[os.path.basename(f) for f in files]]
+    d = b.rv.to_numpy() - truth.rv_true.to_numpy()
+    assert abs(d[6] - np.mean(d[:6])) < 5 * np.hypot(b.rv_err[6], np.std(d[:6]))
+    # --rebuild-template: a new co-add of all seven, every spectrum measured again
+    assert main(["measure", *files, *base, "-o", str(rebuilt), "--rebuild-template"]) == 0
+    assert "(0 already in the store, skipped)" in capfd.readouterr().err
+    c = pd.read_csv(rebuilt)
+    assert c.notes.str.contains("co-added in this run (7 spectra)", regex=False).all()
+    assert abs(c.rv[6] - b.rv[6]) < 2 * b.rv_err[6]

@@ -42,6 +42,9 @@ def add_parser(sub) -> None:
     p.add_argument("--workers", type=int, default=1, metavar="N", help="local worker processes (default 1)")
     p.add_argument("--store", metavar="FILE.sqlite",
                    help="results store: keep every result, skip inputs already measured with these settings")
+    p.add_argument("--rebuild-template", action="store_true",
+                   help="with --method template and --store: co-add a new template from all inputs and measure "
+                        "all of them again (default: new spectra are measured against the stored template)")
     p.add_argument("--scheduler", metavar="ADDRESS",
                    help="run the measurements on an existing Dask cluster (e.g. tcp://127.0.0.1:8786)")
     p.add_argument("--plots", metavar="DIR", help="write a CCF plot per spectrum and rv_time.png here")
@@ -125,7 +128,7 @@ def run(args) -> int:
         warnings.simplefilter("always")
         try:
             rows = measure_files(paths, mask, settings, workers=args.workers, scheduler=args.scheduler,
-                                 store=store, on_row=on_row, report=report)
+                                 store=store, rebuild_template=args.rebuild_template, on_row=on_row, report=report)
         finally:
             progress.close()
             if store is not None:

@@ -66,6 +66,17 @@ class TemplateState:
         return cls(float(acc.lng[0]), float(acc.lng[1] - acc.lng[0]), acc.sw.copy(), acc.swf.copy(),
                    acc.sw2v.copy(), acc.flagged.copy(), acc.bands, acc.edge_margin, acc.n_spectra)
 
+    def to_arrays(self) -> dict[str, np.ndarray]:
+        """Plain arrays (for the results store): the inverse of :meth:`from_arrays`."""
+        return {"lng0": np.array(self.lng0), "dlng": np.array(self.dlng), "sw": self.sw, "swf": self.swf,
+                "sw2v": self.sw2v, "flagged": self.flagged, "bands": np.asarray(self.bands, float),
+                "edge_margin": np.array(self.edge_margin), "n_spectra": np.array(self.n_spectra)}
+
+    @classmethod
+    def from_arrays(cls, a: dict[str, np.ndarray]) -> TemplateState:
+        return cls(float(a["lng0"]), float(a["dlng"]), a["sw"], a["swf"], a["sw2v"], a["flagged"].astype(bool),
+                   a["bands"].reshape(-1, 2), int(a["edge_margin"]), int(a["n_spectra"]))
+
     def _grid(self) -> TemplateAccumulator:
         """An empty accumulator on this template's grid (built once, for recomputing contributions)."""
         acc = self.__dict__.get("_acc")

@@ -246,10 +246,29 @@ def _template_row(task: Task, obs: Observation, orders, ctx: Context) -> dict:
     return row
 
 
+def _fit_against(tasks: list[Task], first: dict[int, dict], rv: dict[int, float], ctx: Context, state,
+                 in_template: dict[int, float], *, workers: int, scheduler) -> dict[int, dict]:
+    """Fit each spectrum against the template ``state``, starting from velocity ``rv`` (m/s); a spectrum that
+    is part of the template (``in_template``: its co-adding factor) is fitted against the template without
+    itself.  Line-shape columns come from the mask pass (``first``)."""
+    tctx = Context(ctx.mask, ctx.settings, state)
+    ttasks = [replace(t, delta0=float(np.log((1 + rv[t.index] / C_MS) / (1 + t.berv / C_MS))),
+                      factor=in_template.get(t.index)) for t in tasks]
+    new = {}
+    for task, row in run_tasks(measure_task, ttasks, tctx, workers=workers, scheduler=scheduler):
+        first_row = first[task.index]
+        for k in ("fwhm", "contrast", "fwhm_err", "contrast_err", "bis_span", "bis_span_err", "n_lines"):
+            row[k] = first_row.get(k)
+        new[task.index] = row
+    return new
+
+
 def _run_template(tasks: list[Task], first: dict[int, dict], ctx: Context, *, workers: int, scheduler,
-                  max_iter: int = 3) -> dict[int, dict]:
+                  max_iter: int = 3):
     """The template engine's passes: co-add with the current velocities, fit every spectrum against
-    the template without itself, repeat until the velocities move by less than a tenth of their errors."""
+    the template without itself, repeat until the velocities move by less than a tenth of their errors.
+
+    Returns the rows, the last template and the co-adding factor of each spectrum in it."""
     from lineshift.measure.coadd import TemplateAccumulator, log_grid
     from lineshift.measure.template_engine import TemplateState
 
@@ -276,20 +295,14 @@ def _run_template(tasks: list[Task], first: dict[int, dict], ctx: Context, *, wo
             acc.add(prepare_spectrum(load_spectrum(t.path, medium=ctx.settings.medium),
                                      degree=ctx.settings.continuum_degree), factor[t.index])
         state = TemplateState.from_accumulator(acc)
-        tctx = Context(ctx.mask, ctx.settings, state)
-        ttasks = [replace(t, delta0=-float(np.log(factor[t.index])), factor=factor[t.index]) for t in use]
-        new = {}
-        for task, row in run_tasks(measure_task, ttasks, tctx, workers=workers, scheduler=scheduler):
-            first_row = first[task.index]
-            for k in ("fwhm", "contrast", "fwhm_err", "contrast_err", "bis_span", "bis_span_err", "n_lines"):
-                row[k] = first_row.get(k)
-            new[task.index] = row
+        new = _fit_against(use, first, {t.index: rows[t.index]["rv"] for t in use}, ctx, state, factor,
+                           workers=workers, scheduler=scheduler)
         moved = [abs(new[i]["rv"] - rows[i]["rv"]) / new[i]["rv_err"] for i in new
                  if new[i]["status"] == "ok" and rows[i].get("method") == "template"]
         rows.update(new)
         if moved and max(moved) < 0.1:
             break
-    return rows
+    return rows, state, factor
 
 
 def _two_component_row(task: Task, obs: Observation, orders, ctx: Context) -> dict:
@@ -313,6 +326,50 @@ def _two_component_row(task: Task, obs: Observation, orders, ctx: Context) -> di
 
 # --------------------------------------------------------------------------- driver
 
+def _template_rows(tasks: list[Task], todo: list[Task], ctx: Context, store, stored, report, *, workers: int,
+                   scheduler) -> dict[int, dict]:
+    """Rows of the template engine for ``todo``: against the stored template where there is one, else
+    from a new co-add of all ``tasks`` (then kept in the store).  Each row's notes name its template."""
+    from lineshift.measure.template_engine import TemplateState
+
+    first = {t.index: row for t, row in run_tasks(measure_task, todo, ctx, workers=workers, scheduler=scheduler)}
+    if not todo:
+        return {}
+    try:
+        if stored is not None:
+            template_id, inputs, arrays = stored
+            state = TemplateState.from_arrays(arrays)
+            use = [t for t in todo if first[t.index].get("status") == "ok"]
+            in_template = {t.index: inputs[t.input_hash] for t in use if t.input_hash in inputs}
+            final = dict(first)
+            final.update(_fit_against(use, first, {t.index: first[t.index]["rv"] for t in use}, ctx, state,
+                                      in_template, workers=workers, scheduler=scheduler))
+            note = f"template {template_id} from the store ({state.n_spectra} spectra)"
+        else:
+            final, state, factor = _run_template(tasks, first, ctx, workers=workers, scheduler=scheduler)
+            if store is not None:
+                by_index = {t.index: t.input_hash for t in tasks}
+                template_id = store.put_template(report.settings_hash,
+                                                 {by_index[i]: f for i, f in factor.items()}, state.to_arrays())
+                note = f"template {template_id} co-added in this run ({state.n_spectra} spectra), kept in the store"
+            else:
+                note = f"template co-added in this run ({state.n_spectra} spectra)"
+    except MeasurementError as exc:   # e.g. fewer than two usable spectra: no template at all
+        final = {}
+        for i, row in first.items():
+            if row.get("status") == "ok":
+                failed = _empty_row(row["file"], None, "no template", f"{row['file']}: {exc.reason}", ctx.settings)
+                failed.update(bjd_tdb=row["bjd_tdb"], berv=row["berv"], _error=f"{row['file']}: {exc.reason}")
+                final[i] = failed
+            else:
+                final[i] = row
+        return final
+    for row in final.values():
+        if row.get("method") == "template" and row.get("status") == "ok":
+            row["notes"] = "; ".join(n for n in (row.get("notes"), note) if n)
+    return final
+
+
 @dataclass
 class BatchReport:
     """What a batch did besides the rows."""
@@ -325,7 +382,7 @@ class BatchReport:
 
 
 def measure_files(paths: list[str], mask: LineMask, settings: MeasureSettings, *, workers: int = 1,
-                  scheduler: str | None = None, store=None,
+                  scheduler: str | None = None, store=None, rebuild_template: bool = False,
                   on_row: Callable[[dict], None] | None = None, report: BatchReport | None = None
                   ) -> list[dict]:
     """Measure many spectra; one row per path, in the order given.
@@ -343,6 +400,9 @@ def measure_files(paths: list[str], mask: LineMask, settings: MeasureSettings, *
         Address of a Dask distributed scheduler to run the measurements on.
     store : ResultStore, optional
         Rows already in the store (same file content, same settings) are taken from it and not
+        measured again.  With the template engine the co-added template is kept in the store too: new
+        spectra are measured against it, unless ``rebuild_template`` (or no template is stored yet), when
+        every input is co-added and measured again.  Otherwise rows are taken from it and not
         measured again; each new row is committed to it as it arrives (by this process only).
     on_row : callable, optional
         Called with each row as soon as it exists (failed surveys first, then measurements in
@@ -404,43 +464,30 @@ def measure_files(paths: list[str], mask: LineMask, settings: MeasureSettings, *
     report.mask_note, report.n_lines_mask = note, len(use_mask)
     ctx = Context(use_mask, settings)
     todo = tasks
+    stored_template = None
     if store is not None:
         from lineshift.run.store import settings_hash
 
-        key = settings_hash(settings, use_mask)
-        if settings.method == "template":  # the template is made of all the inputs
-            import hashlib
-
-            key = hashlib.sha256((key + "".join(sorted(t.input_hash for t in tasks))).encode()).hexdigest()
-        report.settings_hash = key
-        todo = []
-        for t in tasks:
-            row = store.get(t.input_hash, key)
-            if row is None:
-                todo.append(t)
-                continue
-            row.update(file=t.path)  # the path as given this time (the content is the same)
-            report.skipped += 1
-            emit(t.index, row)
+        key = report.settings_hash = settings_hash(settings, use_mask)
+        if settings.method == "template" and not rebuild_template:
+            stored_template = store.get_template(key)
+        if settings.method != "template" or stored_template is not None:
+            todo = []
+            for t in tasks:
+                row = store.get(t.input_hash, key)
+                if row is None:
+                    todo.append(t)
+                    continue
+                row.update(file=t.path)  # the path as given this time (the content is the same)
+                report.skipped += 1
+                emit(t.index, row)
     if settings.method == "template":
-        # every result depends on every input through the template: measure all of them (any stored
-        # rows were for exactly this set of inputs, since the input hashes are part of the key)
-        first = {t.index: row for t, row in run_tasks(measure_task, tasks if todo else [], ctx, workers=workers,
-                                                      scheduler=scheduler)}
-        try:
-            final = _run_template(tasks, first, ctx, workers=workers, scheduler=scheduler) if todo else {}
-        except MeasurementError as exc:   # e.g. fewer than two usable spectra: no template at all
-            final = {}
-            for i, row in first.items():
-                if row.get("status") == "ok":
-                    failed = _empty_row(row["file"], None, "no template", f"{row['file']}: {exc.reason}", settings)
-                    failed.update(bjd_tdb=row["bjd_tdb"], berv=row["berv"], _error=f"{row['file']}: {exc.reason}")
-                    final[i] = failed
+        final = _template_rows(tasks, todo, ctx, store, stored_template, report, workers=workers,
+                               scheduler=scheduler)
         for t in todo:
-            row = final.get(t.index, first.get(t.index))
             if store is not None:
-                store.put(t.input_hash, report.settings_hash, row)
-            emit(t.index, row)
+                store.put(t.input_hash, report.settings_hash, final[t.index])
+            emit(t.index, final[t.index])
     else:
         for task, row in run_tasks(measure_task, todo, ctx, workers=workers, scheduler=scheduler):
             if store is not None:

@@ -5,6 +5,10 @@ everything else that determines the result (software version, engine settings, o
 astrometry, ephemeris, and the exact mask lines used after telluric rejection).  A renamed or moved
 file is still found; a changed file or setting is measured again.
 
+For the template engine the store also keeps each co-added template (table ``templates``, keyed by the
+settings hash) with the hashes of the inputs it was made of: a later run measures only new spectra,
+against that template, until ``rebuild_template`` asks for a new co-add of everything.
+
 Each row is committed in its own transaction as soon as it arrives (WAL journal), so a run killed at
 any moment loses nothing already committed.  Rows are stored as JSON text; nothing read from the
 store is unpickled or evaluated.  Only the driver process writes.
@@ -98,6 +102,9 @@ class ResultStore:
                 "file TEXT NOT NULL, status TEXT NOT NULL, row TEXT NOT NULL, created REAL NOT NULL, "
                 "PRIMARY KEY (input_hash, settings_hash))")
             self._db.execute("CREATE TABLE IF NOT EXISTS meta (key TEXT PRIMARY KEY, value TEXT NOT NULL)")
+            self._db.execute(
+                "CREATE TABLE IF NOT EXISTS templates (settings_hash TEXT PRIMARY KEY, template_id TEXT NOT NULL, "
+                "inputs TEXT NOT NULL, state BLOB NOT NULL, created REAL NOT NULL)")
             self._db.execute("INSERT OR IGNORE INTO meta VALUES ('schema', ?)", (str(_SCHEMA_VERSION),))
             (schema,) = self._db.execute("SELECT value FROM meta WHERE key = 'schema'").fetchone()
         except sqlite3.DatabaseError as exc:
@@ -127,6 +134,36 @@ class ResultStore:
         except BaseException:
             self._db.execute("ROLLBACK")
             raise
+
+    def get_template(self, settings_key: str) -> tuple[str, dict[str, float], dict[str, np.ndarray]] | None:
+        """The stored template for these settings: (template id, {input hash: co-adding factor}, arrays)."""
+        found = self._db.execute("SELECT template_id, inputs, state FROM templates WHERE settings_hash = ?",
+                                 (settings_key,)).fetchone()
+        if found is None:
+            return None
+        import io
+
+        with np.load(io.BytesIO(found[2]), allow_pickle=False) as data:   # plain arrays only, never pickles
+            arrays = {k: data[k] for k in data.files}
+        return found[0], json.loads(found[1]), arrays
+
+    def put_template(self, settings_key: str, inputs: dict[str, float], arrays: dict[str, np.ndarray]) -> str:
+        """Keep a template (replacing any for these settings); returns its id (hash of settings and inputs)."""
+        import io
+
+        buf = io.BytesIO()
+        np.savez(buf, **arrays)
+        template_id = hashlib.sha256((settings_key + json.dumps(sorted(inputs))).encode()).hexdigest()[:12]
+        self._db.execute("BEGIN IMMEDIATE")
+        try:
+            self._db.execute("INSERT OR REPLACE INTO templates VALUES (?, ?, ?, ?, ?)",
+                             (settings_key, template_id, json.dumps(inputs, sort_keys=True), buf.getvalue(),
+                              time.time()))
+            self._db.execute("COMMIT")
+        except BaseException:
+            self._db.execute("ROLLBACK")
+            raise
+        return template_id
 
     def __len__(self) -> int:
         return int(self._db.execute("SELECT COUNT(*) FROM results").fetchone()[0])
