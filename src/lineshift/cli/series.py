@@ -6,6 +6,7 @@ import os
 import sys
 
 from lineshift._version import __version__
+from lineshift.cli.common import add_shared, check_inputs
 from lineshift.errors import ConfigError
 
 
@@ -18,18 +19,20 @@ def add_parser(sub) -> None:
     p.add_argument("-o", "--output", required=True, metavar="SERIES",
                    help="clean series (.csv, .ecsv, .fits, .parquet)")
     p.add_argument("--fit-orbit", action="store_true", help="fit a Keplerian orbit from the strongest peaks")
-    p.add_argument("--stellar-mass", type=float, metavar="MSUN", help="stellar mass for m sin i and a")
-    p.add_argument("--stellar-mass-err", type=float, default=0.0, metavar="MSUN")
+    p.add_argument("--stellar-mass", type=float, metavar="MSUN",
+                   help="stellar mass, solar masses, for m sin i and the semi-major axis")
+    p.add_argument("--stellar-mass-err", type=float, default=0.0, metavar="MSUN",
+                   help="1-sigma error of --stellar-mass, solar masses, propagated into min_mass_err")
     p.add_argument("--json", metavar="SUMMARY", help="JSON summary (period, semi_amplitude, eccentricity, fap, ...)")
     p.add_argument("--dataset-column", metavar="COLUMN",
                    help="split data sets by this column (e.g. layout) instead of one per input table")
     p.add_argument("--bin", type=float, metavar="HOURS", help="bin exposures taken within this many hours")
-    p.add_argument("--outlier-threshold", type=float, default=5.0, help="flag residuals beyond this many robust sigma")
+    p.add_argument("--outlier-threshold", type=float, default=5.0, metavar="SIGMA",
+                   help="flag residuals beyond this many robust sigma")
     p.add_argument("--min-period", type=float, metavar="DAYS", help="shortest period searched (default 1.2 d)")
     p.add_argument("--max-period", type=float, metavar="DAYS", help="longest period searched (default 2 x span)")
     p.add_argument("--plots", metavar="DIR", help="periodogram, orbit and series plots")
-    p.add_argument("-q", "--quiet", action="store_true")
-    p.add_argument("--debug", action="store_true")
+    add_shared(p, "-q", "--debug")
 
 
 def run(args) -> int:
@@ -50,6 +53,7 @@ def run(args) -> int:
     for out in (args.output, args.json):
         if out and os.path.abspath(out) in ins:
             raise ConfigError(f"output {out!r} is one of the inputs: refusing to overwrite it")
+    check_inputs(args.tables, "table")
     s = ser.read_series(args.tables, dataset_column=args.dataset_column)
     say = (lambda text: None) if args.quiet else (lambda text: print(f"lineshift: {text}", file=sys.stderr))
     say(f"{s.t.size} velocities in {len(s.datasets)} data set(s); {s.n_dropped} row(s) without a velocity dropped")

@@ -63,8 +63,8 @@ def plot_ccf(row: dict, outdir: str) -> str:
         axb.set_ylim(1, 0)
         axb.set_xlabel("bisector - rv_topo (m/s)")
         axb.set_ylabel("fractional depth")
-        span = row.get("bis_span", np.nan)
-        axb.set_title(f"BIS {span:+.1f} ± {row.get('bis_span_err', np.nan):.1f} m/s", fontsize=8)
+        span = row.get("bisector_span", np.nan)
+        axb.set_title(f"bisector span {span:+.1f} ± {row.get('bisector_span_err', np.nan):.1f} m/s", fontsize=8)
     fig.tight_layout()
     return _save(fig, os.path.join(outdir, f"{_stem(row['file'])}_ccf.png"))
 

@@ -29,6 +29,7 @@ from scipy.optimize import brentq, least_squares
 
 from lineshift.errors import ConfigError
 from lineshift.linefit import weighted_line
+from lineshift.model import OLD_COLUMN_NAMES
 from lineshift.series.orbit import Orbit, jupiter_masses, mass_function, minimum_mass, radial_velocity, semi_major_axis
 
 __all__ = ["Series", "bin_series", "bisector_correlation", "fit_orbit", "flag_outliers", "jitter", "periodogram",
@@ -114,12 +115,14 @@ def read_series(paths: list[str], *, dataset_column: str | None = None) -> Serie
         raise ConfigError("no row with status ok in the input tables")
     df = df.sort_values("bjd_tdb", kind="stable")
 
+    df = df.rename(columns={old: new for old, new in OLD_COLUMN_NAMES.items() if old in df and new not in df})
+
     def col(name):
         return pd.to_numeric(df[name], errors="coerce").to_numpy(float) if name in df else np.full(len(df), np.nan)
 
     return Series(df["bjd_tdb"].to_numpy(float), df["rv"].to_numpy(float), df["rv_err"].to_numpy(float),
                   df["_ds"].to_numpy(object), df.get("file", pd.Series([""] * len(df))).to_numpy(object), dropped,
-                  bis=col("bis_span"), bis_err=col("bis_span_err"), rv2=col("rv2"), rv2_err=col("rv2_err"))
+                  bis=col("bisector_span"), bis_err=col("bisector_span_err"), rv2=col("rv2"), rv2_err=col("rv2_err"))
 
 
 # --------------------------------------------------------------------------- jitter, offsets, outliers
