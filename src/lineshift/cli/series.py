@@ -10,6 +10,14 @@ from lineshift.cli.common import add_shared, check_inputs
 from lineshift.errors import ConfigError
 
 
+#: Units of the JSON summary's physical fields (``<name>_err`` has the unit of ``<name>``; written as "units").
+JSON_UNITS = {"period": "d", "semi_amplitude": "m / s", "eccentricity": "", "omega": "rad", "time_periastron": "d (BJD_TDB)",
+              "jitter": "m / s", "rms": "m / s", "chi2_red": "", "fap": "", "gammas": "m / s", "offsets": "m / s",
+              "min_mass": "M_jup", "semi_major_axis": "AU", "mass_function": "M_sun", "stellar_mass": "M_sun",
+              "semi_amplitude_2": "m / s", "mass_ratio": "",
+              "peaks": {"period": "d", "frequency": "1 / d", "power": "", "fap": ""}}
+
+
 def add_parser(sub) -> None:
     """Declare the command and its options on the subcommand set ``sub``."""
     p = sub.add_parser("series", help="velocity series: combine, bin, periodogram, quick orbit, export",
@@ -115,13 +123,8 @@ def run(args) -> int:
                         "(fitted data-set zero point)",
             "FLAGS": "flag = robust outlier (kept, not deleted); flag_reason says why",
             "SOFTWARE": f"lineshift {__version__}"}
-    if table_format(args.output) == "csv":
-        with atomic_path(args.output) as tmp, open(tmp, "w", newline="") as fh:
-            for k, v in meta.items():
-                fh.write(f"# {k}: {v}\n")
-            frame.to_csv(fh, index=False)
-    else:
-        write_frame(frame, args.output, meta, name="SERIES")
+    write_frame(frame, args.output, meta, name="SERIES")
+    summary["units"] = {k: v for k, v in JSON_UNITS.items() if k in summary}
     if args.json:
         with atomic_path(args.json) as tmp, open(tmp, "w") as fh:
             json.dump(summary, fh, indent=2, default=float)

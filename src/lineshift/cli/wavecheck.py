@@ -118,9 +118,10 @@ def run(args) -> int:
             text = ", ".join(f"{r['order']} ({r['offset']:+.1f} +- {r['offset_err']:.1f})" for r in flagged) or "none"
             n_ok = sum(r["status"] == "ok" for r in lines)
             print(f"lineshift: {os.path.basename(path)}: {n_ok} of {len(lines)} lines used; global offset "
-                  f"{summ['offset']:+.2f} +- {summ['offset_err']:.2f} m/s, order-to-order rms {summ['rms']:.2f} m/s; "
-                  f"{' (off zero: flagged)' if summ['global_flagged'] else ''}; "
-                  f"orders flagged against zero and the global offset: {text}", file=sys.stderr)
+                  f"{summ['offset']:+.2f} +- {summ['offset_err']:.2f} m/s"
+                  f"{' (off zero: flagged)' if summ['global_flagged'] else ''}, order-to-order rms "
+                  f"{summ['rms']:.2f} m/s; "
+                  f"orders off zero and off the global offset: {text}", file=sys.stderr)
         if args.plots:
             from lineshift.plots.figures import _stem, plot_order_offsets, plot_residuals
 

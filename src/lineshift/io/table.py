@@ -17,7 +17,8 @@ import pandas as pd
 from lineshift.errors import ConfigError
 from lineshift.model import OLD_COLUMN_NAMES
 
-__all__ = ["COLUMNS", "EXTRA_COLUMNS", "FORMATS", "OLD_NAMES", "SB2_COLUMNS", "UNITS", "atomic_path", "rows_to_frame",
+__all__ = ["COLUMNS", "EXTRA_COLUMNS", "FORMATS", "OLD_NAMES", "SB2_COLUMNS", "UNITS", "atomic_path", "csv_header",
+           "require_parquet", "rows_to_frame",
            "table_format", "write_frame", "write_table"]
 
 #: Columns of the secondary with ``--components 2`` (shared/interface.md), right after the contract columns.
@@ -63,7 +64,18 @@ def table_format(path: str) -> str:
         return "csv"
     if ext not in FORMATS:
         raise ConfigError(f"output {path!r}: unknown table extension {ext!r} (use .csv, .ecsv, .fits, .parquet)")
+    if FORMATS[ext] == "parquet":
+        require_parquet(path)
     return FORMATS[ext]
+
+
+def require_parquet(path: str) -> None:
+    """Parquet needs the optional pyarrow: a usage error naming the file when it is not installed."""
+    import importlib.util
+
+    if importlib.util.find_spec("pyarrow") is None:
+        raise ConfigError(f"{path!r}: Parquet tables need pyarrow, which is not installed "
+                          "(pip install pyarrow, or pip install -e \".[parquet]\"); use .csv, .ecsv or .fits")
 
 
 def rows_to_frame(rows: list[dict]) -> pd.DataFrame:

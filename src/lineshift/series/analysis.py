@@ -79,6 +79,11 @@ def _read_table(path: str) -> pd.DataFrame:
     ext = os.path.splitext(path)[1].lower()
     try:
         if ext == ".parquet":
+            import importlib.util
+
+            if importlib.util.find_spec("pyarrow") is None:
+                raise ConfigError("Parquet tables need pyarrow, which is not installed (pip install pyarrow)",
+                                  path=path)
             return pd.read_parquet(path)
         if ext in (".ecsv", ".fits", ".fit"):
             from astropy.table import Table
