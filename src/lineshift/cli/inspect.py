@@ -79,7 +79,7 @@ def run(args) -> int:
     check_inputs(args.spectra)
     paths = expand_inputs(args.spectra)
     if not paths:
-        raise ConfigError("no input files found")
+        raise ConfigError(f"no spectrum files in {', '.join(args.spectra)}")
     all_ok = True
     for k, path in enumerate(paths):
         lines, ok = _describe(path, args.medium)

@@ -57,7 +57,7 @@ def run(args) -> int:
     check_inputs(args.spectra)
     paths = expand_inputs(args.spectra)
     if not paths:
-        raise ConfigError("no input spectra found")
+        raise ConfigError(f"no spectrum files in {', '.join(args.spectra)}")
     if os.path.abspath(args.output) in {os.path.abspath(p) for p in paths}:
         raise ConfigError(f"output {args.output!r} is one of the inputs: refusing to overwrite it")
     start = read_mask(args.start_mask) if args.start_mask else None

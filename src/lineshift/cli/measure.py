@@ -65,7 +65,7 @@ def run(args) -> int:
     check_inputs(args.spectra)
     paths = expand_inputs(args.spectra)
     if not paths:
-        raise ConfigError("no input spectra found")
+        raise ConfigError(f"no spectrum files in {', '.join(args.spectra)}")
     inputs = {os.path.abspath(p) for p in paths} | ({os.path.abspath(mask_path)} if mask_path else set())
     if args.orders_table:
         table_format(args.orders_table)

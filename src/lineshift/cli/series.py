@@ -9,13 +9,16 @@ from lineshift._version import __version__
 from lineshift.cli.common import add_shared, check_inputs
 from lineshift.errors import ConfigError
 
-
 #: Units of the JSON summary's physical fields (``<name>_err`` has the unit of ``<name>``; written as "units").
-JSON_UNITS = {"period": "d", "semi_amplitude": "m / s", "eccentricity": "", "omega": "rad", "time_periastron": "d (BJD_TDB)",
-              "jitter": "m / s", "rms": "m / s", "chi2_red": "", "fap": "", "gammas": "m / s", "offsets": "m / s",
-              "min_mass": "M_jup", "semi_major_axis": "AU", "mass_function": "M_sun", "stellar_mass": "M_sun",
-              "semi_amplitude_2": "m / s", "mass_ratio": "",
-              "peaks": {"period": "d", "frequency": "1 / d", "power": "", "fap": ""}}
+JSON_UNITS = {"period": "d", "semi_amplitude": "m / s", "eccentricity": "", "omega": "rad",
+              "time_periastron": "d (BJD_TDB)",
+              "errors": "each the unit of the parameter it names", "jitter": "m / s", "rms": "m / s", "chi2_red": "",
+              "fap": "", "gammas": "m / s", "gamma_errors": "m / s", "offsets": "m / s", "min_mass": "M_jup",
+              "min_mass_err": "M_jup", "semi_major_axis": "AU", "semi_major_axis_err": "AU", "mass_function": "M_sun",
+              "stellar_mass": "M_sun", "semi_amplitude_2": "m / s", "semi_amplitude_2_err": "m / s",
+              "gamma_2": "m / s", "gamma_2_err": "m / s", "mass_ratio": "", "mass_ratio_err": "", "rms_2": "m / s",
+              "peaks": {"period": "d", "frequency": "1 / d", "power": "", "fap": "", "aliases": "d"},
+              "rv_bisector_correlation": {"r": "", "p_value": "", "n": "", "slope": "", "significant": ""}}
 
 
 def add_parser(sub) -> None:

@@ -66,7 +66,7 @@ def run(args) -> int:
     check_inputs(args.spectra)
     paths = expand_inputs(args.spectra)
     if not paths:
-        raise ConfigError("no input spectra found")
+        raise ConfigError(f"no spectrum files in {', '.join(args.spectra)}")
     inputs = {os.path.abspath(p) for p in paths} | {os.path.abspath(args.lines)}
     for out in (args.output, args.summary, args.drift):
         if out and os.path.abspath(out) in inputs:
