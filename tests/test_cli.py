@@ -165,7 +165,7 @@ def test_bad_inputs_never_stop_the_batch(sample_set, tmp_path, capfd):
     (["measure", "{dir}", "--mask", "{mask}", "--workers", "0"], "--workers must be at least 1"),
     (["measure", "{dir}", "--mask", "{mask}", "--save-mask", "{tmp}/m.csv"], "only applies when no --mask"),
     (["measure", "{dir}", "--mask", "{tmp}/missing.csv"], "cannot be read"),
-    (["measure", "{tmp}/empty_dir", "--mask", "{mask}"], "no input spectra"),
+    (["measure", "{tmp}/empty_dir", "--mask", "{mask}"], "no spectrum files in"),
     (["measure", "{dir}", "--mask", "{mask}", "--velocity-range", "5,1"], "LO must be below HI"),
     (["measure", "{dir}", "--mask", "{mask}", "--config", "{tmp}/bad.toml"], "unknown key"),
     (["measure", "{dir}", "--mask", "{mask}", "--config", "{tmp}/broken.toml"], "not valid TOML"),

@@ -4,6 +4,7 @@ of every table each command writes, and the JSON summary's fields and units."""
 from __future__ import annotations
 
 import argparse
+import pathlib
 import importlib.util
 import json
 import os
@@ -170,3 +171,12 @@ def test_parquet_without_pyarrow_is_a_clear_usage_error(monkeypatch, tmp_path, c
                  os.path.join(ROOT, "line_lists", "vessa9_mask.csv"), "-o", str(out)]) == 2
     err = capfd.readouterr().err
     assert "pyarrow" in err and "t.parquet" in err and not out.exists()
+
+
+def test_options_may_stand_between_the_inputs(sample_set, tmp_path):
+    directory, mask, _ = sample_set
+    files = sorted(str(p) for p in pathlib.Path(directory).glob("*.fits*"))[:2]
+    out = tmp_path / "t.csv"
+    assert main(["measure", files[0], "--mask", mask, files[1], "-o", str(out), "-q"]) == 0
+    lines = [line for line in out.read_text().splitlines() if not line.startswith("#")]
+    assert len(lines) == 3   # header and both inputs

@@ -24,9 +24,23 @@ class Formatter(argparse.HelpFormatter):
 
 
 class Parser(argparse.ArgumentParser):
+    """Options may stand before, between or after the inputs of a command (intermixed parsing)."""
+
+    _intermixing = False
+
     def __init__(self, *args, **kwargs):
         kwargs.setdefault("formatter_class", Formatter)
         super().__init__(*args, **kwargs)
+
+    def parse_known_args(self, args=None, namespace=None):
+        has_sub = any(isinstance(a, argparse._SubParsersAction) for a in self._actions)
+        if has_sub or self._intermixing:
+            return super().parse_known_args(args, namespace)
+        self._intermixing = True
+        try:
+            return self.parse_known_intermixed_args(args, namespace)
+        finally:
+            self._intermixing = False
 
     def error(self, message):  # one line and exit code 2, as argparse does, but without the usage dump
         command = " ".join(self.prog.split()[1:])  # "" for the top level, "measure" for a command
