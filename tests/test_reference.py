@@ -4,10 +4,10 @@ of every table each command writes, and the JSON summary's fields and units."""
 from __future__ import annotations
 
 import argparse
-import pathlib
 import importlib.util
 import json
 import os
+import pathlib
 import re
 
 import pytest

@@ -33,8 +33,9 @@ def add_parser(sub) -> None:
     p.add_argument("--binary", action="store_true", help="observe the invented double-lined binary Vessa-12 instead")
     p.add_argument("--asymmetry", type=float, default=0.0, metavar="A",
                    help="asymmetric intrinsic lines: sigma (1-A) blueward, (1+A) redward (|A| < 0.5)")
-    p.add_argument("--lab-lines", metavar="LIST", nargs="?", const="shipped",
-                   help="plant these laboratory lines in the star (default: line_lists/lab_lines_optical.csv)")
+    p.add_argument("--lab-lines", metavar="LIST",
+                   help="plant the laboratory lines of LIST (e.g. line_lists/lab_lines_optical.csv) in the star, for "
+                        "testing 'lineshift mask --anchor' (default: none)")
     p.add_argument("--no-compress", action="store_true", help="write plain files instead of .gz")
     add_shared(p, "-q", "--debug")
 
@@ -69,9 +70,9 @@ def run(args) -> int:
 
         star = dc_replace(star, asymmetry=args.asymmetry)
     if args.lab_lines:
-        from lineshift.io.linelists import DEFAULT_LAB_LINES, read_lab_lines
+        from lineshift.io.linelists import read_lab_lines
 
-        lab, _ = read_lab_lines(DEFAULT_LAB_LINES if args.lab_lines == "shipped" else args.lab_lines)
+        lab, _ = read_lab_lines(args.lab_lines)
         star = sim.with_lab_lines(star, lab.wavelength)
     total = sum(n for _, n in plan)
     bar = None
