@@ -190,3 +190,17 @@ def test_simulate_lamp_command(tmp_path, capfd):
     row = orders[(orders.file == files[0]) & (orders.order == 2)].iloc[0]
     assert abs(row.offset - 50.0) < 5.0 and bool(row.flagged)
     assert main(["simulate", str(out), "--lamp", "invented", "--distort", "x"]) == 2
+
+
+def test_drift_table_gives_bjd_tdb_with_barycentric(tmp_path):
+    lamps = tmp_path / "lamps"
+    assert main(["simulate", str(lamps), "--lamp", "invented", "--instrument", "demo-echelle:2", "-q"]) == 0
+    drift = tmp_path / "d.csv"
+    assert main(["wavecheck", str(lamps), "--barycentric", "--ra", "131.4", "--dec", "-18.7", "--lines",
+                 str(lamps / "truth" / "lamp_lines_demo-echelle.csv"), "-o", str(tmp_path / "l.csv"),
+                 "--summary", str(tmp_path / "o.csv"), "--drift", str(drift), "-q"]) == 0
+    table = pd.read_csv(drift, comment="#")
+    # BJD_TDB - JD_UTC = TT-UTC (69.184 s in 2025, IERS Bulletin C) + Roemer delay (|.| <= ~500 s: 1 au / c)
+    delta_s = (table.bjd_tdb - (table.mjd_mid + 2400000.5)) * 86400
+    assert (table.time_scale == "utc").all()
+    assert np.all(np.abs(delta_s - 69.184) < 510)

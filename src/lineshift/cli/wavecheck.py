@@ -14,7 +14,7 @@ LINE_COLUMNS = ["file", "order", "wavelength_lab", "wavelength_measured", "resid
                 "species", "pixel", "fwhm", "snr"]
 ORDER_COLUMNS = ["file", "order", "n_lines", "offset", "offset_err", "slope", "rms", "slope_err", "chi2_red",
                  "offset_from_global", "flagged"]
-DRIFT_COLUMNS = ["file", "mjd_mid", "time_scale", "offset", "offset_err", "rms", "n_orders", "flagged"]
+DRIFT_COLUMNS = ["file", "bjd_tdb", "mjd_mid", "time_scale", "offset", "offset_err", "rms", "n_orders", "flagged"]
 
 
 def add_parser(sub) -> None:
@@ -75,6 +75,7 @@ def run(args) -> int:
                                  clip=args.clip, saturation=args.saturation, threshold_ms=args.threshold_ms,
                                  threshold_sigma=args.threshold_sigma)
     bervs: dict[str, float] = {}
+    bjds: dict[str, float] = {}
     if args.barycentric:
         from lineshift.calib.barycentric import BarycentricResult, barycentric_batch
         from lineshift.run.pipeline import Observation, survey
@@ -90,6 +91,7 @@ def run(args) -> int:
         for (p, _), b in zip(good, barycentric_batch([o for _, o in good], ephemeris=ms.ephemeris), strict=True):
             if isinstance(b, BarycentricResult):
                 bervs[p] = b.berv
+                bjds[p] = b.bjd_tdb
     all_lines, all_orders, drift_rows, failures = [], [], [], 0
     for path in paths:
         try:
@@ -109,7 +111,8 @@ def run(args) -> int:
         all_lines += lines
         all_orders += orders
         summ = file_summary(orders, settings)
-        drift_rows.append({"file": path, "mjd_mid": sp.obs.mjd_mid if sp.obs.mjd_mid is not None else np.nan,
+        drift_rows.append({"file": path, "bjd_tdb": bjds.get(path, np.nan),
+                           "mjd_mid": sp.obs.mjd_mid if sp.obs.mjd_mid is not None else np.nan,
                            "time_scale": sp.obs.time_scale, "offset": summ["offset"],
                            "offset_err": summ["offset_err"], "rms": summ["rms"], "n_orders": summ["n_orders"],
                            "flagged": summ["global_flagged"]})
@@ -135,7 +138,8 @@ def run(args) -> int:
             "COLUMNS": "snr = fitted line amplitude / its error; offset = weighted mean residual of an order (ORDERS) "
                        "or of the exposure (DRIFT), m/s; offset_from_global = order offset - exposure offset; "
                        "flagged = off zero and off the global offset (ORDERS), global offset off zero (DRIFT); "
-                       "mjd_mid = mid-exposure MJD in time_scale"}
+                       "mjd_mid = mid-exposure MJD in time_scale; bjd_tdb (DRIFT, with --barycentric) = "
+                       "mid-exposure BJD_TDB, d"}
     line_cols = LINE_COLUMNS
     order_cols = ORDER_COLUMNS
     write_frame(pd.DataFrame(all_lines, columns=line_cols), args.output, meta, name="LINES")
