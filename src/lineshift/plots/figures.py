@@ -46,9 +46,10 @@ def plot_ccf(row: dict, outdir: str) -> str:
     if row.get("rv2_topo") is not None and np.isfinite(row.get("rv2_topo", np.nan)):
         ax.axvline(row["rv2_topo"] / 1e3, color="tab:blue", lw=0.6, ls=":")
     ax.set_ylabel("normalised CCF")
-    ax.set_title(f"{os.path.basename(row['file'])}\nrv_topo = {row['rv_topo'] / 1e3:.4f} km/s "
-                 f"± {row['rv_err']:.2f} m/s, FWHM {row['fwhm'] / 1e3:.2f} km/s, "
-                 f"contrast {100 * row['contrast']:.1f}%", fontsize=8)
+    rv = row.get("rv")
+    bary = f"rv = {rv:.2f} ± {row['rv_err']:.2f} m/s (barycentric), " if rv is not None and np.isfinite(rv) else ""
+    ax.set_title(f"{os.path.basename(row['file'])}\n{bary}rv_topo = {row['rv_topo']:.2f} m/s, "
+                 f"FWHM {row['fwhm']:.0f} m/s, contrast {100 * row['contrast']:.1f}%", fontsize=8)
     ax.legend(fontsize=8, loc="lower left")
     axr.plot(v / 1e3, ccf - model, ".", ms=3, color="0.2")
     axr.axhline(0, color="tab:red", lw=0.6)
@@ -220,6 +221,7 @@ def plot_orbit(series, fit, offsets_model, path: str) -> str:
     phase = np.mod((series.t - o.time_periastron) / o.period, 1.0)
     from lineshift.series.orbit import radial_velocity
 
+    t_ref = float(np.floor(series.t.min()))   # a readable axis instead of a bare "+2.461e6" offset
     ph = np.linspace(0, 1, 500)
     curve = radial_velocity(o.time_periastron + ph * o.period, o)
     fig, (ax, ar) = plt.subplots(2, 1, figsize=(8, 6), gridspec_kw={"height_ratios": [3, 2]})
@@ -227,7 +229,7 @@ def plot_orbit(series, fit, offsets_model, path: str) -> str:
     for k, d in enumerate(series.datasets):
         m = (series.dataset == d) & use
         ax.errorbar(phase[m], aligned[m], series.err[m], fmt="o", ms=4, capsize=2, color=colours[k % 5], label=d)
-        ar.errorbar(series.t[m], series.rv[m] - fit.model[m], series.err[m], fmt="o", ms=4, capsize=2,
+        ar.errorbar(series.t[m] - t_ref, series.rv[m] - fit.model[m], series.err[m], fmt="o", ms=4, capsize=2,
                     color=colours[k % 5])
     if (~use).any():
         ax.plot(phase[~use], aligned[~use], "x", color="tab:red", label="flagged")
@@ -237,7 +239,7 @@ def plot_orbit(series, fit, offsets_model, path: str) -> str:
     ax.set_title(f"P = {o.period:.4f} d, K = {o.semi_amplitude:.2f} m/s, e = {o.eccentricity:.3f}", fontsize=9)
     ax.legend(fontsize=7)
     ar.axhline(0, color="k", lw=0.5)
-    ar.set_xlabel("BJD_TDB (d)")
+    ar.set_xlabel(f"BJD_TDB - {t_ref:.0f} (d)")
     ar.set_ylabel(f"residual (m/s), rms {fit.rms:.2f}")
     fig.tight_layout()
     return _save(fig, path)
