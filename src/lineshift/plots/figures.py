@@ -87,13 +87,20 @@ def plot_rv_time(rows: list[dict], outdir: str, name: str = "rv_time.png") -> st
         sel = layouts == layout
         ax.errorbar(t[sel] - ref, rv[sel] - mean, err[sel], fmt="o", ms=4, color=colours[k % len(colours)],
                     ecolor="0.6", capsize=2, label=layout or "unknown layout")
-    if len(set(layouts)) > 1:
-        ax.legend(fontsize=8, title="layout (zero points may differ)", title_fontsize=8)
+    # scatter about each layout's own weighted mean: the layouts' zero points may differ
+    resid = np.empty_like(rv)
+    for layout in set(layouts):
+        sel = layouts == layout
+        resid[sel] = rv[sel] - np.average(rv[sel], weights=1 / err[sel] ** 2)
+    if len(set(layouts)) > 1:   # beside the axes, where it hides no point
+        ax.legend(fontsize=8, title="layout (zero points\nmay differ)", title_fontsize=8, loc="upper left",
+                  bbox_to_anchor=(1.01, 1.0), borderaxespad=0)
     ax.set_xlabel(f"BJD_TDB - {ref:.0f} (d)")
     ax.set_ylabel(f"rv - {mean / 1e3:.4f} km/s (m/s)")
     objects = sorted({r.get("object") or "" for r in ok} - {""})
     ax.set_title(f"{', '.join(objects) or 'velocities'}: {len(ok)} spectra, "
-                 f"rms {np.std(rv):.2f} m/s, median error {np.median(err):.2f} m/s", fontsize=9)
+                 f"rms {np.std(resid):.2f} m/s about each layout's mean, median error {np.median(err):.2f} m/s",
+                 fontsize=9)
     ax.grid(alpha=0.3)
     fig.tight_layout()
     return _save(fig, os.path.join(outdir, name))
@@ -109,7 +116,10 @@ def plot_template(template, found, path: str, *, panels: int = 4, width: float =
     axes[0].set_title(f"co-added template ({template.n_spectra} spectra): {int(kept.sum())} lines kept, "
                       f"{int((~kept).sum())} rejected", fontsize=9)
     axes[0].set_ylim(0, 1.15)
-    centres = np.linspace(w[0] + width, w[-1] - width, panels)
+    axes[0].set_ylabel("normalised flux")
+    # zoom on kept lines spread over the range (a window between orders would show nothing)
+    lines = np.sort(found.wavelength[kept]) if kept.any() else np.linspace(w[0] + width, w[-1] - width, panels)
+    centres = lines[np.linspace(0, lines.size - 1, panels).round().astype(int)]
     for ax, c in zip(axes[1:], centres, strict=True):
         sel = (w > c - width / 2) & (w < c + width / 2)
         ax.plot(w[sel], f[sel], lw=0.7, color="0.2")
@@ -118,6 +128,7 @@ def plot_template(template, found, path: str, *, panels: int = 4, width: float =
                 ax.axvline(lam, color="tab:red" if k else "0.7", lw=0.8, ymax=0.12 if k else 0.06)
         ax.set_xlim(c - width / 2, c + width / 2)
         ax.set_ylim(0, 1.15)
+        ax.set_ylabel("normalised flux")
     axes[-1].set_xlabel("vacuum wavelength, template frame (A)")
     fig.tight_layout()
     return _save(fig, path)
@@ -198,7 +209,7 @@ def plot_periodogram(pg, path: str) -> str:
     for k, peak in enumerate(pg.peaks[:5]):
         ax.plot(peak["period"], peak["power"], "v", color="tab:red" if k == 0 else "tab:orange", ms=6)
         ax.annotate(f"{peak['period']:.3f} d\nFAP {peak['fap']:.1e}", (peak["period"], peak["power"]),
-                    textcoords="offset points", xytext=(4, 4), fontsize=7)
+                    textcoords="offset points", xytext=(4, 4 + 14 * (k % 3)), fontsize=7)  # staggered
     if pg.peaks:
         for alias in pg.peaks[0]["aliases"]["1 d"] + pg.peaks[0]["aliases"]["1 yr"]:
             if period.min() <= alias <= period.max():
