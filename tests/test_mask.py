@@ -76,7 +76,7 @@ def test_measure_without_mask_reaches_the_photon_limit(many_spectra, tmp_path, c
     out = tmp_path / "rv.csv"
     assert main(["measure", directory, "-o", str(out), "--save-mask", str(tmp_path / "built.csv")]) == 0
     assert "built a relative mask" in capfd.readouterr().err
-    table = pd.read_csv(out)
+    table = pd.read_csv(out, comment="#")
     table["name"] = table.file.map(os.path.basename)
     m = table.merge(truth, left_on="name", right_on="file", suffixes=("", "_true"))
     d = m.rv - m.rv_true
@@ -170,7 +170,7 @@ def test_anchor_gives_the_absolute_zero_point(tmp_path, capfd):
     assert "Zero point: ANCHORED" in text
     out = tmp_path / "rv.csv"
     assert main(["measure", str(tmp_path / "s"), "--mask", str(mask), "-o", str(out), "-q"]) == 0
-    table = pd.read_csv(out)
+    table = pd.read_csv(out, comment="#")
     truth = pd.DataFrame(rows)
     d = table.rv.to_numpy() - truth.rv_true.to_numpy()
     anchored = next(line for line in text.splitlines() if "Zero point: ANCHORED" in line)
@@ -195,7 +195,8 @@ def test_mask_command_usage(tmp_path, sample_set, capfd, drawn):
     assert 0 < kept_marks <= len(built)                      # kept lines marked in the zooms, no more than kept
     assert main(["mask", *files, "-o", str(tmp_path / "x.csv"), "--min-depth", "2"]) == 2
     assert main(["mask", *files, "-o", files[0]]) == 2
-    assert main(["mask", *files, "-o", str(tmp_path / "y.csv"), "--anchor", str(tmp_path / "none.csv")]) == 2
+    assert main(["mask", *files, "-o", str(tmp_path / "y.csv"), "--anchor",
+                 "--lab-lines", str(tmp_path / "none.csv")]) == 2
 
 
 def test_build_settings_are_used(sample_set):

@@ -135,7 +135,7 @@ def binary_run(tmp_path_factory):
     sim.write_mask(sim.DEMO_BINARY.primary, str(mask))
     code = main(["measure", str(out / "spectra"), "--mask", str(mask), "--components", "2", "-o", str(table),
                  "--velocity-range=-150000,150000", "-q"])
-    return code, pd.read_csv(table, keep_default_na=False), pd.DataFrame(rows), out
+    return code, pd.read_csv(table, keep_default_na=False, comment="#"), pd.DataFrame(rows), out
 
 
 @pytest.mark.slow

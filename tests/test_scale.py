@@ -44,7 +44,7 @@ def test_store_skips_what_is_there(sample_set, tmp_path, capfd):
         assert len(s) == len(rows)
     assert main(["measure", directory, "--mask", mask, "-o", str(b), "--store", str(store)]) == 0
     assert f"({len(rows)} already in the store, skipped)" in capfd.readouterr().err
-    pd.testing.assert_frame_equal(pd.read_csv(a), pd.read_csv(b))
+    pd.testing.assert_frame_equal(pd.read_csv(a, comment="#"), pd.read_csv(b, comment="#"))
     # other settings are another key: measured again, both kept
     c = tmp_path / "c.csv"
     assert main(["measure", directory, "--mask", mask, "-o", str(c), "--store", str(store),
@@ -66,7 +66,7 @@ def test_store_finds_moved_files_by_content(echelle_file, tmp_path, capfd):
     out = tmp_path / "t2.csv"
     assert main(["measure", str(moved), "--mask", mask, "--store", store, "-o", str(out)]) == 0
     assert "(3 already in the store, skipped)" in capfd.readouterr().err
-    assert all(f.startswith(str(moved)) for f in pd.read_csv(out).file)
+    assert all(f.startswith(str(moved)) for f in pd.read_csv(out, comment="#").file)
 
 
 def test_killed_run_loses_nothing_and_resumes(echelle_file, tmp_path):
@@ -100,7 +100,7 @@ def test_killed_run_loses_nothing_and_resumes(echelle_file, tmp_path):
     res = subprocess.run(cmd, capture_output=True, text=True, check=False)
     assert res.returncode == 0, res.stderr
     assert f"({committed} already in the store, skipped)" in res.stderr
-    table = pd.read_csv(out)
+    table = pd.read_csv(out, comment="#")
     assert sorted(table.file) == sorted(files)            # every row exactly once
     assert (table.status == "ok").all()
     with ResultStore(str(store)) as s:
@@ -166,7 +166,7 @@ def test_dask_cluster_gives_identical_velocities(sample_set, tmp_path, dask_clus
     local, remote = tmp_path / "local.csv", tmp_path / "dask.csv"
     assert main(["measure", directory, "--mask", mask, "-o", str(local), "-q"]) == 0
     assert main(["measure", directory, "--mask", mask, "-o", str(remote), "-q", "--scheduler", dask_cluster]) == 0
-    pd.testing.assert_frame_equal(pd.read_csv(local), pd.read_csv(remote), check_exact=True)
+    pd.testing.assert_frame_equal(pd.read_csv(local, comment="#"), pd.read_csv(remote, comment="#"), check_exact=True)
 
 
 def test_unreachable_scheduler_is_a_usage_error(echelle_file, tmp_path, capfd, monkeypatch):

@@ -166,7 +166,7 @@ def test_binning_carries_every_indicator_with_propagated_errors(tmp_path):
     bis, bis_err = rng.normal(size=t.size) * 5, np.array([3.0, 6.0, 2.0] * 4)
     slope = rng.normal(size=t.size)
     extra = {"fwhm": fwhm, "fwhm_err": fwhm_err, "contrast": 0.4 + 0.01 * rng.normal(size=t.size),
-             "contrast_err": np.full(t.size, 0.002), "bis_span": bis, "bis_span_err": bis_err,
+             "contrast_err": np.full(t.size, 0.002), "bisector_span": bis, "bisector_span_err": bis_err,
              "rv_chromatic_slope": slope, "rv_chromatic_slope_err": np.full(t.size, 0.5),
              "rv2": np.full(t.size, np.nan), "rv2_err": np.full(t.size, np.nan)}
     path = _table(tmp_path / "t.csv", t, rv, err, extra=extra)
@@ -177,7 +177,7 @@ def test_binning_carries_every_indicator_with_propagated_errors(tmp_path):
         assert c in b.columns, c
     row = b[b.n_binned == 3].iloc[0]
     sel = slice(3, 6)
-    for name in ("fwhm", "bis_span"):
+    for name in ("fwhm", "bisector_span"):
         w = 1 / extra[f"{name}_err"][sel] ** 2
         assert row[name] == pytest.approx(np.sum(w * extra[name][sel]) / np.sum(w), rel=1e-12)
         assert row[f"{name}_err"] == pytest.approx(1 / np.sqrt(np.sum(w)), rel=1e-12)
@@ -185,7 +185,7 @@ def test_binning_carries_every_indicator_with_propagated_errors(tmp_path):
     assert np.isnan(row.rv2) and np.isnan(row.rv2_err)          # absent stays absent, never a number
     single = b[b.n_binned == 1].iloc[0]
     k = int(np.flatnonzero(np.isclose(t, single.bjd_tdb))[0])
-    assert single.bis_span == pytest.approx(bis[k]) and single.bis_span_err == pytest.approx(bis_err[k])
+    assert single.bisector_span == pytest.approx(bis[k]) and single.bisector_span_err == pytest.approx(bis_err[k])
 
 
 def test_series_usage_errors(tmp_path, capfd):

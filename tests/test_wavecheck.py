@@ -49,6 +49,20 @@ def test_injected_offsets_and_tilts_are_recovered(invented_lamp):
     assert 0.85 < np.std(z) < 1.15
 
 
+def test_a_drifting_exposure_flags_only_the_distorted_order(invented_lamp):
+    # the whole exposure 50 m/s off (drift 50 m/s at t=0): judged against zero alone every order would be
+    # flagged; judged against the exposure's global offset as well, only the distorted orders are
+    lam, counts = invented_lamp
+    exp = sim.lamp_exposure(ECHELLE, lam, counts, np.random.default_rng(4), distortion=DISTORTION, drift=50.0)
+    _, rows = check_spectrum(sim.to_spectrum(exp), lam, WavecheckSettings())
+    assert sum(r["offset"] > 20 for r in rows) >= 30              # every order is off zero ...
+    assert {r["order"] for r in rows if r["flagged"]} == {5, 17}  # ... but only the distorted ones are flagged
+    summ = file_summary(rows, WavecheckSettings())
+    assert abs(summ["offset"] - 50.0) < 2.0 and summ["global_flagged"]   # injected 50 m/s (within 2)
+    by = {r["order"]: r for r in rows}
+    assert abs(by[5]["offset_from_global"] - 60.0) < 5.0 and abs(by[17]["offset_from_global"] + 25.0) < 5.0
+
+
 def test_drift_series_is_recovered(tmp_path, invented_lamp, drawn):
     lam, counts = invented_lamp
     lines_csv = tmp_path / "lamp.csv"
@@ -65,15 +79,15 @@ def test_drift_series_is_recovered(tmp_path, invented_lamp, drawn):
     code = main(["wavecheck", *files[::-1], "--lines", str(lines_csv), "-o", str(tmp_path / "l.csv"),
                  "--summary", str(tmp_path / "o.csv"), "--drift", str(drift), "--plots", str(tmp_path / "p"), "-q"])
     assert code == 0
-    table = pd.read_csv(drift)
+    table = pd.read_csv(drift, comment="#")
     assert list(table.file) == files                                    # time order
     t = (table.mjd_mid - table.mjd_mid.min()) * 24
     slope, _ = np.polyfit(t, table.offset, 1)
     assert slope == pytest.approx(rate, abs=0.15)
     check_plot(drawn, tmp_path / "p" / "drift.png", points=6)                 # one point per exposure
-    orders = pd.read_csv(tmp_path / "o.csv")
+    orders = pd.read_csv(tmp_path / "o.csv", comment="#")
     check_plot(drawn, tmp_path / "p" / "lamp0_orders.png", points=int((orders.file == files[0]).sum()))
-    lines = pd.read_csv(tmp_path / "l.csv")
+    lines = pd.read_csv(tmp_path / "l.csv", comment="#")
     check_plot(drawn, tmp_path / "p" / "lamp0_residuals.png", points=int((lines.file == files[0]).sum()))
 
 
@@ -96,14 +110,15 @@ def test_lamp_spectrum_in_air_reads_zero_against_the_vacuum_list(tmp_path):
     path = sim.write_observation(exp, str(tmp_path / "lamp_air.fits"))
     out, summ = tmp_path / "l.csv", tmp_path / "o.csv"
     assert main(["wavecheck", path, "--lines", LAMP_LIST, "-o", str(out), "--summary", str(summ), "-q"]) == 0
-    lines = pd.read_csv(out)
+    lines = pd.read_csv(out, comment="#")
     ok = lines[lines.status == "ok"]
     assert len(ok) >= 15
     assert set(ok.species) >= {"Ne I", "Ar I", "Hg I"}
     # an air/vacuum mix-up would be ~80 km/s; everything reads zero within its errors
     assert np.all(np.abs(ok.residual) < 4 * ok.residual_err + 1.0)
-    row = pd.read_csv(summ).iloc[0]
-    assert list(pd.read_csv(summ).columns[:7]) == ["file", "order", "n_lines", "offset", "offset_err", "slope", "rms"]
+    row = pd.read_csv(summ, comment="#").iloc[0]
+    assert list(pd.read_csv(summ, comment="#").columns[:7]) == \
+        ["file", "order", "n_lines", "offset", "offset_err", "slope", "rms"]
     assert abs(row.offset) < 3 * row.offset_err
 
 
@@ -162,7 +177,7 @@ def test_usage_errors(tmp_path, invented_lamp, capfd):
     assert main(["wavecheck", path, str(bad), "--lines", str(lines_csv), *common, "-q"]) == 1
     err = capfd.readouterr().err
     assert "bad.fits" in err and "Traceback" not in err
-    assert len(pd.read_csv(tmp_path / "o.csv")) == 2
+    assert len(pd.read_csv(tmp_path / "o.csv", comment="#")) == 2
 
 
 def test_simulate_lamp_command(tmp_path, capfd):
@@ -175,7 +190,21 @@ def test_simulate_lamp_command(tmp_path, capfd):
     summ = tmp_path / "o.csv"
     assert main(["wavecheck", *files, "--lines", str(lines), "-o", str(tmp_path / "l.csv"), "--summary", str(summ),
                  "-q"]) == 0
-    orders = pd.read_csv(summ)
+    orders = pd.read_csv(summ, comment="#")
     row = orders[(orders.file == files[0]) & (orders.order == 2)].iloc[0]
     assert abs(row.offset - 50.0) < 5.0 and bool(row.flagged)
     assert main(["simulate", str(out), "--lamp", "invented", "--distort", "x"]) == 2
+
+
+def test_drift_table_gives_bjd_tdb_with_barycentric(tmp_path):
+    lamps = tmp_path / "lamps"
+    assert main(["simulate", str(lamps), "--lamp", "invented", "--instrument", "demo-echelle:2", "-q"]) == 0
+    drift = tmp_path / "d.csv"
+    assert main(["wavecheck", str(lamps), "--barycentric", "--ra", "131.4", "--dec", "-18.7", "--lines",
+                 str(lamps / "truth" / "lamp_lines_demo-echelle.csv"), "-o", str(tmp_path / "l.csv"),
+                 "--summary", str(tmp_path / "o.csv"), "--drift", str(drift), "-q"]) == 0
+    table = pd.read_csv(drift, comment="#")
+    # BJD_TDB - JD_UTC = TT-UTC (69.184 s in 2025, IERS Bulletin C) + Roemer delay (|.| <= ~500 s: 1 au / c)
+    delta_s = (table.bjd_tdb - (table.mjd_mid + 2400000.5)) * 86400
+    assert (table.time_scale == "utc").all()
+    assert np.all(np.abs(delta_s - 69.184) < 510)

@@ -64,7 +64,7 @@ def measure(spectra: Sequence[str] | str, mask: str | LineMask, *, velocity_rang
     Returns
     -------
     QTable
-        One row per input; the contract columns (``shared/interface.md``) with units (``rv`` in
+        One row per input; the contract columns (docs/reference.md) with units (``rv`` in
         m/s, ``bjd_tdb`` in days), then the extra columns.  Rows whose ``status`` is not ``ok``
         have NaN velocities.
     """

@@ -11,7 +11,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-__all__ = ["C_MS", "CCFResult", "LineMask", "Observation", "Order", "Spectrum"]
+__all__ = ["C_MS", "OLD_COLUMN_NAMES", "CCFResult", "LineMask", "Observation", "Order", "Spectrum"]
 
 #: Speed of light in vacuum, m/s (exact, SI definition).
 C_MS = 299_792_458.0
@@ -177,3 +177,8 @@ class CCFResult:
     chromatic_slope_err: float = float("nan")
     bisector: tuple[np.ndarray, np.ndarray] | None = field(default=None, repr=False)
     orders: tuple[dict, ...] = field(default=(), repr=False)
+
+
+#: Table column names renamed since the last release (old -> current); readers of ``measure`` tables
+#: accept the old names for one release.
+OLD_COLUMN_NAMES = {"bis_span": "bisector_span", "bis_span_err": "bisector_span_err"}

@@ -15,7 +15,9 @@ Per order: ``offset`` = weighted mean residual of the good lines with its error 
 sqrt(reduced chi-square) when that exceeds 1), ``slope`` = the change of the residual from the
 first to the last pixel of a weighted straight-line fit against pixel, ``rms`` = the scatter about
 that line.  Orders are flagged when the offset exceeds both ``threshold_ms`` and
-``threshold_sigma`` times its error.
+``threshold_sigma`` times its error, both from zero and from the exposure's global offset (the
+weighted mean over the orders, after leaving out orders far from their median): a drift of the
+whole exposure is reported as the global offset, not as every order flagged.
 """
 
 from __future__ import annotations
@@ -153,6 +155,7 @@ def check_spectrum(spectrum: Spectrum, lab_wave: np.ndarray, settings: Wavecheck
             "pixel": float(pix[t]), "fwhm": float(C_MS * fwhm_a[t] / lab[t]), "snr": float(abs(A[t]) / a_err[t])
             if a_err[t] > 0 else np.nan,
         })
+    flag_orders(order_rows, settings)
     return line_rows, order_rows
 
 
@@ -173,7 +176,8 @@ def _clip_order(residual, err, pix, status, sel, clip):
 def _order_summary(path, idx, residual, err, pix, status, sel, npix, settings) -> dict:
     use = sel[status[sel] == "ok"]
     row = {"file": path, "order": idx, "n_lines": int(use.size), "offset": np.nan, "offset_err": np.nan,
-           "slope": np.nan, "rms": np.nan, "slope_err": np.nan, "chi2_red": np.nan, "flagged": False}
+           "slope": np.nan, "rms": np.nan, "slope_err": np.nan, "chi2_red": np.nan, "offset_from_global": np.nan,
+           "flagged": False}
     if use.size == 0:
         return row
     w = 1 / err[use] ** 2
@@ -189,22 +193,58 @@ def _order_summary(path, idx, residual, err, pix, status, sel, npix, settings) -
         row.update(slope=float(coef[1] * span),
                    slope_err=float(np.sqrt(cov[1, 1]) * span * np.sqrt(max(1.0, chi2l))),
                    rms=float(np.sqrt(np.mean((residual[use] - fit) ** 2))))
-    row["flagged"] = bool(abs(row["offset"]) > settings.threshold_ms
-                          and abs(row["offset"]) > settings.threshold_sigma * row["offset_err"])
     return row
 
 
-def file_summary(order_rows: list[dict]) -> dict:
-    """Global offset (weighted over orders), rms over orders, flagged orders."""
+def _off(value: float, err: float, settings) -> bool:
+    return bool(abs(value) > settings.threshold_ms and abs(value) > settings.threshold_sigma * err)
+
+
+def global_offset(order_rows: list[dict], settings: WavecheckSettings | None = None) -> tuple[float, float, int]:
+    """The exposure's global offset: weighted mean of the order offsets (m/s), its error and the orders used.
+
+    With ``settings``, orders off the median of the order offsets by more than the flag thresholds
+    are left out first (one pass), so that a few distorted orders do not drag the reference.
+    """
     off = np.array([r["offset"] for r in order_rows], dtype=float)
     err = np.array([r["offset_err"] for r in order_rows], dtype=float)
     ok = np.isfinite(off) & np.isfinite(err) & (err > 0)
     if not ok.any():
-        return {"offset": np.nan, "offset_err": np.nan, "rms": np.nan, "flagged": [], "n_orders": 0}
+        return np.nan, np.nan, 0
+    if settings is not None and ok.sum() >= 3:
+        med = float(np.median(off[ok]))
+        far = np.abs(off - med)
+        keep = ok & ~((far > settings.threshold_ms) & (far > settings.threshold_sigma * err))
+        ok = keep if keep.any() else ok
     w = 1 / err[ok] ** 2
-    mean = float(np.sum(w * off[ok]) / np.sum(w))
-    return {"offset": mean, "offset_err": float(np.sqrt(1 / np.sum(w))), "rms": float(np.std(off[ok])),
-            "flagged": [r["order"] for r in order_rows if r["flagged"]], "n_orders": int(ok.sum())}
+    return float(np.sum(w * off[ok]) / np.sum(w)), float(np.sqrt(1 / np.sum(w))), int(ok.sum())
+
+
+def flag_orders(order_rows: list[dict], settings: WavecheckSettings) -> None:
+    """Set ``offset_from_global`` and ``flagged``: an order is flagged when its offset is off both zero and the
+    exposure's global offset (by more than ``threshold_ms`` and ``threshold_sigma`` times its error), so a drift
+    of the whole exposure does not flag every order and hide the one that is really distorted."""
+    ref, ref_err, _ = global_offset(order_rows, settings)
+    for row in order_rows:
+        d = row["offset"] - ref
+        row["offset_from_global"] = float(d)
+        row["flagged"] = bool(np.isfinite(row["offset"]) and _off(row["offset"], row["offset_err"], settings)
+                              and np.isfinite(d) and _off(d, float(np.hypot(row["offset_err"], ref_err)), settings))
+
+
+def file_summary(order_rows: list[dict], settings: WavecheckSettings | None = None) -> dict:
+    """Global offset (weighted over orders; with ``settings`` robust to distorted orders, see
+    :func:`global_offset`), rms over orders, flagged orders, and whether the global offset itself is off zero."""
+    off = np.array([r["offset"] for r in order_rows], dtype=float)
+    err = np.array([r["offset_err"] for r in order_rows], dtype=float)
+    ok = np.isfinite(off) & np.isfinite(err) & (err > 0)
+    mean, mean_err, n = global_offset(order_rows, settings)
+    if n == 0:
+        return {"offset": np.nan, "offset_err": np.nan, "rms": np.nan, "flagged": [], "n_orders": 0,
+                "global_flagged": False}
+    return {"offset": mean, "offset_err": mean_err, "rms": float(np.std(off[ok])),
+            "flagged": [r["order"] for r in order_rows if r.get("flagged")], "n_orders": int(ok.sum()),
+            "global_flagged": _off(mean, mean_err, settings) if settings is not None else False}
 
 
 def fit_drift(t_days: np.ndarray, offset: np.ndarray, err: np.ndarray) -> tuple[float, float, float]:

@@ -10,13 +10,81 @@ import time
 
 from lineshift.errors import ConfigError, LineshiftError
 
-__all__ = ["Parser", "Progress", "floats", "settings_from"]
+__all__ = ["Formatter", "Parser", "Progress", "add_shared", "check_inputs", "floats", "settings_from"]
+
+
+class Formatter(argparse.HelpFormatter):
+    """Help that shows every option's default (unless the help text already names it)."""
+
+    def _get_help_string(self, action):
+        text = action.help or ""
+        if "default" in text or action.default in (None, False, argparse.SUPPRESS) or not action.option_strings:
+            return text
+        return f"{text} (default: %(default)s)"
 
 
 class Parser(argparse.ArgumentParser):
+    """Options may stand before, between or after the inputs of a command (intermixed parsing)."""
+
+    _intermixing = False
+
+    def __init__(self, *args, **kwargs):
+        kwargs.setdefault("formatter_class", Formatter)
+        super().__init__(*args, **kwargs)
+
+    def parse_known_args(self, args=None, namespace=None):
+        has_sub = any(isinstance(a, argparse._SubParsersAction) for a in self._actions)
+        if has_sub or self._intermixing:
+            return super().parse_known_args(args, namespace)
+        self._intermixing = True
+        try:
+            return self.parse_known_intermixed_args(args, namespace)
+        finally:
+            self._intermixing = False
+
     def error(self, message):  # one line and exit code 2, as argparse does, but without the usage dump
         command = " ".join(self.prog.split()[1:])  # "" for the top level, "measure" for a command
         self.exit(2, f"lineshift: {message} (see '{' '.join(['lineshift', command]).strip()} --help')\n")
+
+
+#: Options several commands share, with one help text each (name -> add_argument keywords).
+SHARED = {
+    "--config": dict(metavar="TOML", help="configuration file: target astrometry, site, measurement settings; "
+                                          "command-line values win"),
+    "--ra": dict(metavar="RA", help="target right ascension, degrees or hh:mm:ss (ICRS), overrides the headers"),
+    "--dec": dict(metavar="DEC", help="target declination, degrees or dd:mm:ss (ICRS), overrides the headers"),
+    "--object": dict(metavar="NAME", help="target name, overrides the headers"),
+    "--site": dict(metavar="LON,LAT,HEIGHT", help="observatory: longitude (deg east), latitude (deg), height (m); "
+                                                  "overrides the headers"),
+    "--medium": dict(choices=("air", "vacuum"), help="medium of the files' wavelengths, overrides the headers "
+                                                     "(default: from CTYPE1 or the config, else vacuum)"),
+    "--telluric": dict(metavar="CSV", help="telluric band list (default: the shipped line_lists/telluric_bands.csv)"),
+    "--no-telluric": dict(action="store_true", help="keep mask lines that telluric bands can reach"),
+    "--ephemeris": dict(metavar="PATH", help="local JPL .bsp ephemeris for the barycentric correction "
+                                             "(default: astropy's builtin)"),
+    "-q": dict(action="store_true", help="no progress or summary on stderr"),
+    "--debug": dict(action="store_true", help="show tracebacks of unexpected errors"),
+}
+
+
+def add_shared(p, *names: str) -> None:
+    """Add the shared options ``names`` (keys of :data:`SHARED`) to parser ``p``."""
+    for name in names:
+        flags = ("-q", "--quiet") if name == "-q" else (name,)
+        p.add_argument(*flags, **SHARED[name])
+
+
+def check_inputs(items, what: str = "input") -> None:
+    """A usage error (exit 2) naming the first input that is neither a file, a directory nor a matching glob."""
+    import glob
+
+    for item in items:
+        if os.path.exists(item):
+            continue
+        if any(ch in item for ch in "*?[") and glob.glob(item):
+            continue
+        kind = "glob matches nothing" if any(ch in item for ch in "*?[") else "no such file or directory"
+        raise ConfigError(f"{what} {item!r}: {kind}")
 
 
 def floats(text: str, n: int, name: str) -> tuple[float, ...]:

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from lineshift.cli.common import add_shared, check_inputs
 from lineshift.errors import ConfigError, LineshiftError
 
 
@@ -9,9 +10,8 @@ def add_parser(sub) -> None:
     """Declare the command and its options on the subcommand set ``sub``."""
     p = sub.add_parser("inspect", help="what the loader understood from a file",
                        description="Print what lineshift understood from each file and what is missing.")
-    p.add_argument("spectra", nargs="+", metavar="FILE")
-    p.add_argument("--medium", choices=("air", "vacuum"), help="medium of the file's wavelengths")
-    p.add_argument("--debug", action="store_true")
+    p.add_argument("spectra", nargs="+", metavar="FILE", help="spectrum files, directories or globs")
+    add_shared(p, "--medium", "--debug")
 
 
 def _describe(path: str, medium) -> tuple[list[str], bool]:
@@ -76,9 +76,10 @@ def _describe(path: str, medium) -> tuple[list[str], bool]:
 def run(args) -> int:
     from lineshift.run.pipeline import expand_inputs
 
+    check_inputs(args.spectra)
     paths = expand_inputs(args.spectra)
     if not paths:
-        raise ConfigError("no input files found")
+        raise ConfigError(f"no spectrum files in {', '.join(args.spectra)}")
     all_ok = True
     for k, path in enumerate(paths):
         lines, ok = _describe(path, args.medium)

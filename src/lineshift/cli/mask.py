@@ -5,7 +5,7 @@ from __future__ import annotations
 import os
 import sys
 
-from lineshift.cli.common import settings_from
+from lineshift.cli.common import add_shared, check_inputs, settings_from
 from lineshift.errors import ConfigError, LineshiftError
 
 
@@ -13,26 +13,29 @@ def add_parser(sub) -> None:
     """Declare the command and its options on the subcommand set ``sub``."""
     p = sub.add_parser("mask", help="build a line mask from spectra of one star",
                        description="Co-add spectra in the star's frame, find and fit its lines, write a mask.")
-    p.add_argument("spectra", nargs="+", metavar="SPECTRUM", help="files, directories or globs")
+    p.add_argument("spectra", nargs="+", metavar="SPECTRUM", help="spectrum files, directories or globs")
     p.add_argument("-o", "--output", metavar="MASK", required=True, help="mask CSV to write")
-    p.add_argument("--start-mask", metavar="CSV", help="measure first-pass velocities with this mask")
-    p.add_argument("--anchor", metavar="LABLIST", nargs="?", const="shipped",
-                   help="shift to laboratory wavelengths (default list: line_lists/lab_lines_optical.csv)")
-    p.add_argument("--min-depth", type=float, default=0.05, help="minimum line depth (default 0.05)")
-    p.add_argument("--blend-fraction", type=float, default=1.0,
+    p.add_argument("--start-mask", metavar="CSV",
+                   help="measure first-pass velocities with this mask (default: a mask found in the plain co-add)")
+    p.add_argument("--anchor", action="store_true",
+                   help="shift the mask to laboratory wavelengths (absolute zero point) with the --lab-lines list; "
+                        "without it the zero point is relative")
+    p.add_argument("--lab-lines", metavar="LABLIST",
+                   help="laboratory line list CSV for --anchor (default: line_lists/lab_lines_optical.csv)")
+    p.add_argument("--min-depth", type=float, default=0.05,
+                   help="minimum line depth below the continuum, fraction 0..1 (default 0.05)")
+    p.add_argument("--blend-fraction", type=float, default=1.0, metavar="X",
                    help="reject lines with a neighbour closer than this x FWHM (default 1.0)")
-    p.add_argument("--max-width-ratio", type=float, default=1.25,
+    p.add_argument("--max-width-ratio", type=float, default=1.25, metavar="X",
                    help="reject lines wider than this x the median FWHM as unresolved blends (default 1.25)")
     p.add_argument("--max-centre-error", type=float, default=100.0, metavar="M_S",
                    help="reject lines whose fitted centre error exceeds this (default 100 m/s)")
-    p.add_argument("--iterations", type=int, default=4, help="co-add / measure iterations at most (default 4)")
+    p.add_argument("--iterations", type=int, default=4, metavar="N",
+                   help="co-add / measure iterations at most; stops earlier when the velocities move by less "
+                        "than a tenth of their errors (default 4)")
     p.add_argument("--plot", metavar="PNG", help="plot of the template with the kept lines")
-    for opt in ("--config", "--ra", "--dec", "--site", "--telluric", "--ephemeris"):
-        p.add_argument(opt)
-    p.add_argument("--medium", choices=("air", "vacuum"))
-    p.add_argument("--no-telluric", action="store_true")
-    p.add_argument("-q", "--quiet", action="store_true")
-    p.add_argument("--debug", action="store_true")
+    add_shared(p, "--config", "--ra", "--dec", "--site", "--medium", "--telluric", "--no-telluric", "--ephemeris",
+               "-q", "--debug")
 
 
 def run(args) -> int:
@@ -51,15 +54,18 @@ def run(args) -> int:
         raise ConfigError("--min-depth must lie between 0 and 1")
     if args.blend_fraction < 0 or args.max_centre_error <= 0 or args.iterations < 0:
         raise ConfigError("--blend-fraction must be >= 0, --max-centre-error > 0, --iterations >= 0")
+    check_inputs(args.spectra)
     paths = expand_inputs(args.spectra)
     if not paths:
-        raise ConfigError("no input spectra found")
+        raise ConfigError(f"no spectrum files in {', '.join(args.spectra)}")
     if os.path.abspath(args.output) in {os.path.abspath(p) for p in paths}:
         raise ConfigError(f"output {args.output!r} is one of the inputs: refusing to overwrite it")
     start = read_mask(args.start_mask) if args.start_mask else None
     anchor = None
+    if args.lab_lines and not args.anchor:
+        raise ConfigError("--lab-lines only applies with --anchor")
     if args.anchor:
-        anchor = DEFAULT_LAB_LINES if args.anchor == "shipped" else args.anchor
+        anchor = args.lab_lines or DEFAULT_LAB_LINES
         from lineshift.io.linelists import read_lab_lines
 
         read_lab_lines(anchor)  # a bad list is a usage error, before any work

@@ -6,39 +6,39 @@ import os
 import sys
 import warnings
 
-from lineshift.cli.common import Progress, settings_from
+from lineshift.cli.common import Progress, add_shared, check_inputs, settings_from
 from lineshift.errors import ConfigError, LineshiftError
+
+#: Columns of the ``--orders-table`` (docs/reference.md).
+ORDERS_COLUMNS = ["file", "order", "wavelength", "rv_topo", "rv_topo_err", "n_lines", "chi2_red", "flag",
+                  "flag_reason"]
 
 
 def add_parser(sub) -> None:
     """Declare the command and its options on the subcommand set ``sub``."""
     p = sub.add_parser("measure", help="spectra to barycentric velocities",
                        description="Measure barycentric radial velocities (m/s, IAU cz_B) and BJD_TDB.")
-    p.add_argument("spectra", nargs="+", metavar="SPECTRUM", help="files, directories or globs")
-    p.add_argument("--mask", help="line mask CSV (rest vacuum wavelengths, weights); without one, a relative "
+    p.add_argument("spectra", nargs="+", metavar="SPECTRUM", help="spectrum files, directories or globs")
+    p.add_argument("--mask", metavar="CSV",
+                   help="line mask CSV (rest vacuum wavelengths, weights); without one, a relative "
                                   "mask is built from the inputs")
     p.add_argument("--save-mask", metavar="CSV", help="write the mask built from the inputs here")
     p.add_argument("-o", "--output", metavar="TABLE",
                    help="output table (.csv, .ecsv, .fits, .parquet); stdout if absent")
-    p.add_argument("--config", metavar="TOML", help="configuration file")
-    p.add_argument("--ra", help="target RA (degrees or hh:mm:ss), overrides headers")
-    p.add_argument("--dec", help="target Dec (degrees or dd:mm:ss), overrides headers")
-    p.add_argument("--object", help="target name, overrides headers")
-    p.add_argument("--site", metavar="LON,LAT,HEIGHT", help="observatory (deg east, deg, m), overrides headers")
-    p.add_argument("--medium", choices=("air", "vacuum"), help="medium of the files' wavelengths")
+    add_shared(p, "--config", "--ra", "--dec", "--object", "--site", "--medium")
     p.add_argument("--velocity-range", metavar="LO,HI", help="barycentric search range, m/s (default -300000,300000)")
     p.add_argument("--velocity-step", type=float, metavar="M_S", help="fine CCF step, m/s (default one pixel)")
     p.add_argument("--box-width", type=float, metavar="M_S", help="mask box full width, m/s (default one pixel)")
     p.add_argument("--method", choices=("mask", "template"),
-                   help="velocity engine: mask CCF (default) or least-squares template matching")
+                   help="velocity engine: mask CCF or least-squares template matching (default: mask, or the "
+                        "config's)")
     p.add_argument("--components", type=int, choices=(1, 2), default=1,
                    help="2: fit two correlation profiles (double-lined binary); rv2... columns for the secondary")
-    p.add_argument("--orders-table", metavar="TABLE", help="per-order velocities (one row per file and order)")
+    p.add_argument("--orders-table", metavar="TABLE",
+                   help="per-order topocentric velocities, one row per file and order (.csv, .ecsv, .fits, .parquet)")
     p.add_argument("--systemic-velocity", type=float, metavar="M_S",
                    help="approximate barycentric velocity for telluric rejection (default: measured)")
-    p.add_argument("--telluric", metavar="CSV", help="telluric band list (default: the shipped one)")
-    p.add_argument("--no-telluric", action="store_true", help="keep mask lines in telluric bands")
-    p.add_argument("--ephemeris", metavar="PATH", help="local JPL .bsp ephemeris (default: astropy builtin)")
+    add_shared(p, "--telluric", "--no-telluric", "--ephemeris")
     p.add_argument("--workers", type=int, default=1, metavar="N", help="local worker processes (default 1)")
     p.add_argument("--store", metavar="FILE.sqlite",
                    help="results store: keep every result, skip inputs already measured with these settings")
@@ -48,8 +48,7 @@ def add_parser(sub) -> None:
     p.add_argument("--scheduler", metavar="ADDRESS",
                    help="run the measurements on an existing Dask cluster (e.g. tcp://127.0.0.1:8786)")
     p.add_argument("--plots", metavar="DIR", help="write a CCF plot per spectrum and rv_time.png here")
-    p.add_argument("-q", "--quiet", action="store_true", help="no progress or summary on stderr")
-    p.add_argument("--debug", action="store_true", help="show tracebacks of unexpected errors")
+    add_shared(p, "-q", "--debug")
 
 
 def run(args) -> int:
@@ -66,9 +65,10 @@ def run(args) -> int:
     settings = settings_from(args, cfg)
     mask_path = args.mask or cfg["measure"].get("mask")
     mask = read_mask(mask_path) if mask_path else None
+    check_inputs(args.spectra)
     paths = expand_inputs(args.spectra)
     if not paths:
-        raise ConfigError("no input spectra found")
+        raise ConfigError(f"no spectrum files in {', '.join(args.spectra)}")
     inputs = {os.path.abspath(p) for p in paths} | ({os.path.abspath(mask_path)} if mask_path else set())
     if args.orders_table:
         table_format(args.orders_table)
@@ -145,10 +145,17 @@ def run(args) -> int:
 
         from lineshift.io.table import write_frame
 
-        per_order = [{"file": r["file"], **o} for r in rows for o in r.get("_orders", [])]
-        write_frame(pd.DataFrame(per_order, columns=["file", "order", "wavelength", "rv", "rv_err", "n_lines",
-                                                    "chi2_red", "flag"]),
-                    args.orders_table, {"RV": "per-order topocentric velocity (profile width fixed), m/s"},
+        per_order = [{"file": r["file"], "order": o.get("order"), "wavelength": o.get("wavelength"),
+                      "rv_topo": o.get("rv"), "rv_topo_err": o.get("rv_err"), "n_lines": o.get("n_lines"),
+                      "chi2_red": o.get("chi2_red"), "flag": bool(o.get("flag")),
+                      "flag_reason": o.get("flag") or ""}
+                     for r in rows for o in r.get("_orders", [])]
+        write_frame(pd.DataFrame(per_order, columns=ORDERS_COLUMNS), args.orders_table,
+                    {"RV_TOPO": "rv_topo, rv_topo_err: per-order velocity in the observatory frame (no barycentric "
+                                "correction; profile width fixed), m/s",
+                     "WAVELENGTH": "wavelength: the order's median (mask engine: weighted mean line) wavelength, "
+                                   "Angstrom (vacuum)",
+                     "FLAGS": "flag = order flagged (poor fit, rejected, no fit); flag_reason says why"},
                     name="ORDERS")
     if args.plots:
         from lineshift.plots.figures import plot_rv_time

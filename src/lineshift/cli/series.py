@@ -6,7 +6,19 @@ import os
 import sys
 
 from lineshift._version import __version__
+from lineshift.cli.common import add_shared, check_inputs
 from lineshift.errors import ConfigError
+
+#: Units of the JSON summary's physical fields (``<name>_err`` has the unit of ``<name>``; written as "units").
+JSON_UNITS = {"period": "d", "semi_amplitude": "m / s", "eccentricity": "", "omega": "rad",
+              "time_periastron": "d (BJD_TDB)",
+              "errors": "each the unit of the parameter it names", "jitter": "m / s", "rms": "m / s", "chi2_red": "",
+              "fap": "", "gammas": "m / s", "gamma_errors": "m / s", "offsets": "m / s", "min_mass": "M_jup",
+              "min_mass_err": "M_jup", "semi_major_axis": "AU", "semi_major_axis_err": "AU", "mass_function": "M_sun",
+              "stellar_mass": "M_sun", "semi_amplitude_2": "m / s", "semi_amplitude_2_err": "m / s",
+              "gamma_2": "m / s", "gamma_2_err": "m / s", "mass_ratio": "", "mass_ratio_err": "", "rms_2": "m / s",
+              "peaks": {"period": "d", "frequency": "1 / d", "power": "", "fap": "", "aliases": "d"},
+              "rv_bisector_correlation": {"r": "", "p_value": "", "n": "", "slope": "", "significant": ""}}
 
 
 def add_parser(sub) -> None:
@@ -18,18 +30,20 @@ def add_parser(sub) -> None:
     p.add_argument("-o", "--output", required=True, metavar="SERIES",
                    help="clean series (.csv, .ecsv, .fits, .parquet)")
     p.add_argument("--fit-orbit", action="store_true", help="fit a Keplerian orbit from the strongest peaks")
-    p.add_argument("--stellar-mass", type=float, metavar="MSUN", help="stellar mass for m sin i and a")
-    p.add_argument("--stellar-mass-err", type=float, default=0.0, metavar="MSUN")
+    p.add_argument("--stellar-mass", type=float, metavar="MSUN",
+                   help="stellar mass, solar masses, for m sin i and the semi-major axis")
+    p.add_argument("--stellar-mass-err", type=float, default=0.0, metavar="MSUN",
+                   help="1-sigma error of --stellar-mass, solar masses, propagated into min_mass_err")
     p.add_argument("--json", metavar="SUMMARY", help="JSON summary (period, semi_amplitude, eccentricity, fap, ...)")
     p.add_argument("--dataset-column", metavar="COLUMN",
                    help="split data sets by this column (e.g. layout) instead of one per input table")
     p.add_argument("--bin", type=float, metavar="HOURS", help="bin exposures taken within this many hours")
-    p.add_argument("--outlier-threshold", type=float, default=5.0, help="flag residuals beyond this many robust sigma")
+    p.add_argument("--outlier-threshold", type=float, default=5.0, metavar="SIGMA",
+                   help="flag residuals beyond this many robust sigma")
     p.add_argument("--min-period", type=float, metavar="DAYS", help="shortest period searched (default 1.2 d)")
     p.add_argument("--max-period", type=float, metavar="DAYS", help="longest period searched (default 2 x span)")
     p.add_argument("--plots", metavar="DIR", help="periodogram, orbit and series plots")
-    p.add_argument("-q", "--quiet", action="store_true")
-    p.add_argument("--debug", action="store_true")
+    add_shared(p, "-q", "--debug")
 
 
 def run(args) -> int:
@@ -50,6 +64,7 @@ def run(args) -> int:
     for out in (args.output, args.json):
         if out and os.path.abspath(out) in ins:
             raise ConfigError(f"output {out!r} is one of the inputs: refusing to overwrite it")
+    check_inputs(args.tables, "table")
     s = ser.read_series(args.tables, dataset_column=args.dataset_column)
     say = (lambda text: None) if args.quiet else (lambda text: print(f"lineshift: {text}", file=sys.stderr))
     say(f"{s.t.size} velocities in {len(s.datasets)} data set(s); {s.n_dropped} row(s) without a velocity dropped")
@@ -113,13 +128,8 @@ def run(args) -> int:
             "INDICATORS": "line-shape and secondary columns as in the measure table (same units); with --bin "
                           "inverse-variance means with propagated errors",
             "SOFTWARE": f"lineshift {__version__}"}
-    if table_format(args.output) == "csv":
-        with atomic_path(args.output) as tmp, open(tmp, "w", newline="") as fh:
-            for k, v in meta.items():
-                fh.write(f"# {k}: {v}\n")
-            frame.to_csv(fh, index=False)
-    else:
-        write_frame(frame, args.output, meta, name="SERIES")
+    write_frame(frame, args.output, meta, name="SERIES")
+    summary["units"] = {k: v for k, v in JSON_UNITS.items() if k in summary}
     if args.json:
         with atomic_path(args.json) as tmp, open(tmp, "w") as fh:
             json.dump(summary, fh, indent=2, default=float)

@@ -5,6 +5,7 @@ from __future__ import annotations
 import os
 import sys
 
+from lineshift.cli.common import add_shared
 from lineshift.errors import ConfigError
 
 
@@ -12,26 +13,31 @@ def add_parser(sub) -> None:
     """Declare the command and its options on the subcommand set ``sub``."""
     p = sub.add_parser("simulate", help="synthetic observations of an invented star",
                        description="Write simulated spectra of the invented star Vessa-9 with a truth table.")
-    p.add_argument("outdir", metavar="OUTDIR")
+    from lineshift.sim import INSTRUMENTS
+
+    p.add_argument("outdir", metavar="OUTDIR", help="directory to write the spectra and truth/ into")
     p.add_argument("--instrument", action="append", metavar="NAME[:N]",
-                   help="instrument and count (repeatable; names: %(choices)s); default: the demo set")
-    p.add_argument("--seed", type=int, default=1)
-    p.add_argument("--snr", type=float, help="override SNR per pixel at the blaze peak")
+                   help=f"instrument and count (repeatable; names: {', '.join(INSTRUMENTS)}); default: the demo "
+                        "set demo-echelle:20, demo-1d:4, demo-table:4, demo-text:4")
+    p.add_argument("--seed", type=int, default=1, help="random seed of the noise and the observing times")
+    p.add_argument("--snr", type=float, metavar="X",
+                   help="override the SNR per pixel at the blaze peak (default: the instrument's)")
     p.add_argument("--mask", metavar="CSV", help="also write the star's line mask here")
-    p.add_argument("--lamp", metavar="LIST", help="write lamp exposures instead: emission lines from LIST (vacuum "
-                                                "CSV), or 'invented' for a dense invented lamp")
+    p.add_argument("--lamp", metavar="LIST",
+                   help="write lamp exposures (lamp_*.fits.gz) instead: emission lines from LIST (vacuum CSV), or "
+                        "'invented' for a dense invented lamp whose lines go to truth/lamp_lines_NAME.csv")
     p.add_argument("--distort", action="append", metavar="ORDER:OFFSET:TILT",
                    help="lamp wavelength-solution error of an order, m/s (offset, edge-to-edge tilt); repeatable")
     p.add_argument("--lamp-drift", type=float, default=0.0, metavar="M_S_PER_HOUR",
-                   help="linear drift of the lamp exposures, which are taken one hour apart")
+                   help="linear drift of the lamp exposures, which are taken one hour apart, m/s per hour")
     p.add_argument("--binary", action="store_true", help="observe the invented double-lined binary Vessa-12 instead")
     p.add_argument("--asymmetry", type=float, default=0.0, metavar="A",
                    help="asymmetric intrinsic lines: sigma (1-A) blueward, (1+A) redward (|A| < 0.5)")
-    p.add_argument("--lab-lines", metavar="LIST", nargs="?", const="shipped",
-                   help="plant these laboratory lines in the star (default: line_lists/lab_lines_optical.csv)")
+    p.add_argument("--lab-lines", metavar="LIST",
+                   help="plant the laboratory lines of LIST (e.g. line_lists/lab_lines_optical.csv) in the star, for "
+                        "testing 'lineshift mask --anchor' (default: none)")
     p.add_argument("--no-compress", action="store_true", help="write plain files instead of .gz")
-    p.add_argument("-q", "--quiet", action="store_true")
-    p.add_argument("--debug", action="store_true")
+    add_shared(p, "-q", "--debug")
 
 
 def run(args) -> int:
@@ -64,9 +70,9 @@ def run(args) -> int:
 
         star = dc_replace(star, asymmetry=args.asymmetry)
     if args.lab_lines:
-        from lineshift.io.linelists import DEFAULT_LAB_LINES, read_lab_lines
+        from lineshift.io.linelists import read_lab_lines
 
-        lab, _ = read_lab_lines(DEFAULT_LAB_LINES if args.lab_lines == "shipped" else args.lab_lines)
+        lab, _ = read_lab_lines(args.lab_lines)
         star = sim.with_lab_lines(star, lab.wavelength)
     total = sum(n for _, n in plan)
     bar = None

@@ -6,33 +6,44 @@ import os
 import sys
 
 from lineshift._version import __version__
-from lineshift.cli.common import settings_from
+from lineshift.cli.common import add_shared, check_inputs, settings_from
 from lineshift.errors import ConfigError, LineshiftError
+
+#: Columns of the three tables (docs/reference.md; the first ones are fixed by the interface contract).
+LINE_COLUMNS = ["file", "order", "wavelength_lab", "wavelength_measured", "residual", "residual_err", "status",
+                "species", "pixel", "fwhm", "snr"]
+ORDER_COLUMNS = ["file", "order", "n_lines", "offset", "offset_err", "slope", "rms", "slope_err", "chi2_red",
+                 "offset_from_global", "flagged"]
+DRIFT_COLUMNS = ["file", "bjd_tdb", "mjd_mid", "time_scale", "offset", "offset_err", "rms", "n_orders", "flagged"]
 
 
 def add_parser(sub) -> None:
     """Declare the command and its options on the subcommand set ``sub``."""
     p = sub.add_parser("wavecheck", help="wavelength calibration against laboratory lines",
                        description="Residuals of laboratory lines in lamp or science spectra, per line and per order.")
-    p.add_argument("spectra", nargs="+", metavar="SPECTRUM")
+    p.add_argument("spectra", nargs="+", metavar="SPECTRUM",
+                   help="lamp or science spectra: files, directories or globs")
     p.add_argument("--lines", required=True, metavar="LIST", help="laboratory line list CSV (vacuum unless marked air)")
-    p.add_argument("--kind", choices=("emission", "absorption"), default="emission")
+    p.add_argument("--kind", choices=("emission", "absorption"), default="emission",
+                   help="emission: lamp lines; absorption: lines fixed in the observatory frame (telluric) in "
+                        "science spectra")
     p.add_argument("-o", "--output", required=True, metavar="LINES", help="per-line table")
     p.add_argument("--summary", required=True, metavar="ORDERS", help="per-order table")
     p.add_argument("--drift", metavar="TABLE", help="per-exposure offsets in time order, with a linear drift fit")
     p.add_argument("--plots", metavar="DIR", help="residuals, order offsets and drift plots")
-    p.add_argument("--window-pixels", type=int, default=7, help="fit half-window in pixels (default 7)")
-    p.add_argument("--min-snr", type=float, default=10.0, help="minimum line amplitude / its error (default 10)")
-    p.add_argument("--clip", type=float, default=4.0, help="outlier clipping threshold, sigma (default 4)")
-    p.add_argument("--saturation", type=float, help="flux level at which a pixel counts as saturated")
-    p.add_argument("--threshold-ms", type=float, default=20.0, help="flag orders off by more than this (m/s)")
-    p.add_argument("--threshold-sigma", type=float, default=3.0, help="... and by more than this many sigma")
+    p.add_argument("--window-pixels", type=int, default=7, metavar="N", help="fit half-window, pixels (default 7)")
+    p.add_argument("--min-snr", type=float, default=10.0, metavar="X",
+                   help="minimum line amplitude / its error (default 10)")
+    p.add_argument("--clip", type=float, default=4.0, metavar="SIGMA",
+                   help="outlier clipping threshold, sigma (default 4)")
+    p.add_argument("--saturation", type=float, metavar="FLUX",
+                   help="flux level at which a pixel counts as saturated, in the file's flux units (default: none)")
+    p.add_argument("--threshold-ms", type=float, default=20.0, metavar="M_S",
+                   help="flag orders off by more than this, m/s, from zero and from the exposure's global offset")
+    p.add_argument("--threshold-sigma", type=float, default=3.0, metavar="SIGMA",
+                   help="... and by more than this many times the offset's error")
     p.add_argument("--barycentric", action="store_true", help="move measured wavelengths to the barycentric frame")
-    for opt in ("--config", "--ra", "--dec", "--site", "--ephemeris"):
-        p.add_argument(opt)
-    p.add_argument("--medium", choices=("air", "vacuum"))
-    p.add_argument("-q", "--quiet", action="store_true")
-    p.add_argument("--debug", action="store_true")
+    add_shared(p, "--config", "--ra", "--dec", "--site", "--ephemeris", "--medium", "-q", "--debug")
 
 
 def run(args) -> int:
@@ -52,9 +63,10 @@ def run(args) -> int:
         if out:
             table_format(out)
     lab, _ = read_lab_lines(args.lines)
+    check_inputs(args.spectra)
     paths = expand_inputs(args.spectra)
     if not paths:
-        raise ConfigError("no input spectra found")
+        raise ConfigError(f"no spectrum files in {', '.join(args.spectra)}")
     inputs = {os.path.abspath(p) for p in paths} | {os.path.abspath(args.lines)}
     for out in (args.output, args.summary, args.drift):
         if out and os.path.abspath(out) in inputs:
@@ -63,6 +75,7 @@ def run(args) -> int:
                                  clip=args.clip, saturation=args.saturation, threshold_ms=args.threshold_ms,
                                  threshold_sigma=args.threshold_sigma)
     bervs: dict[str, float] = {}
+    bjds: dict[str, float] = {}
     if args.barycentric:
         from lineshift.calib.barycentric import BarycentricResult, barycentric_batch
         from lineshift.run.pipeline import Observation, survey
@@ -78,6 +91,7 @@ def run(args) -> int:
         for (p, _), b in zip(good, barycentric_batch([o for _, o in good], ephemeris=ms.ephemeris), strict=True):
             if isinstance(b, BarycentricResult):
                 bervs[p] = b.berv
+                bjds[p] = b.bjd_tdb
     all_lines, all_orders, drift_rows, failures = [], [], [], 0
     for path in paths:
         try:
@@ -96,17 +110,21 @@ def run(args) -> int:
             continue
         all_lines += lines
         all_orders += orders
-        summ = file_summary(orders)
-        drift_rows.append({"file": path, "mjd_mid": sp.obs.mjd_mid if sp.obs.mjd_mid is not None else np.nan,
+        summ = file_summary(orders, settings)
+        drift_rows.append({"file": path, "bjd_tdb": bjds.get(path, np.nan),
+                           "mjd_mid": sp.obs.mjd_mid if sp.obs.mjd_mid is not None else np.nan,
                            "time_scale": sp.obs.time_scale, "offset": summ["offset"],
-                           "offset_err": summ["offset_err"], "rms": summ["rms"], "n_orders": summ["n_orders"]})
+                           "offset_err": summ["offset_err"], "rms": summ["rms"], "n_orders": summ["n_orders"],
+                           "flagged": summ["global_flagged"]})
         if not args.quiet:
             flagged = [r for r in orders if r["flagged"]]
             text = ", ".join(f"{r['order']} ({r['offset']:+.1f} +- {r['offset_err']:.1f})" for r in flagged) or "none"
             n_ok = sum(r["status"] == "ok" for r in lines)
             print(f"lineshift: {os.path.basename(path)}: {n_ok} of {len(lines)} lines used; global offset "
-                  f"{summ['offset']:+.2f} +- {summ['offset_err']:.2f} m/s, order-to-order rms {summ['rms']:.2f} m/s; "
-                  f"flagged orders: {text}", file=sys.stderr)
+                  f"{summ['offset']:+.2f} +- {summ['offset_err']:.2f} m/s"
+                  f"{' (off zero: flagged)' if summ['global_flagged'] else ''}, order-to-order rms "
+                  f"{summ['rms']:.2f} m/s; "
+                  f"orders off zero and off the global offset: {text}", file=sys.stderr)
         if args.plots:
             from lineshift.plots.figures import _stem, plot_order_offsets, plot_residuals
 
@@ -116,16 +134,18 @@ def run(args) -> int:
     meta = {"SOFTWARE": f"lineshift {__version__}", "RESIDUAL": "c (lambda_measured - lambda_lab) / lambda_lab, m/s",
             "FRAME": ("barycentric" if args.barycentric
                       else "the file's wavelength solution (no barycentric correction)"),
-            "LINES": args.lines, "KIND": args.kind}
-    line_cols = ["file", "order", "wavelength_lab", "wavelength_measured", "residual", "residual_err", "status",
-                 "species", "pixel", "fwhm", "snr"]
-    order_cols = ["file", "order", "n_lines", "offset", "offset_err", "slope", "rms", "slope_err", "chi2_red",
-                  "flagged"]
+            "LINES": args.lines, "KIND": args.kind,
+            "COLUMNS": "snr = fitted line amplitude / its error; offset = weighted mean residual of an order (ORDERS) "
+                       "or of the exposure (DRIFT), m/s; offset_from_global = order offset - exposure offset; "
+                       "flagged = off zero and off the global offset (ORDERS), global offset off zero (DRIFT); "
+                       "mjd_mid = mid-exposure MJD in time_scale; bjd_tdb (DRIFT, with --barycentric) = "
+                       "mid-exposure BJD_TDB, d"}
+    line_cols = LINE_COLUMNS
+    order_cols = ORDER_COLUMNS
     write_frame(pd.DataFrame(all_lines, columns=line_cols), args.output, meta, name="LINES")
     write_frame(pd.DataFrame(all_orders, columns=order_cols), args.summary, meta, name="ORDERS")
     if args.drift:
-        drift = pd.DataFrame(drift_rows, columns=["file", "mjd_mid", "time_scale", "offset", "offset_err", "rms",
-                                                  "n_orders"]).sort_values("mjd_mid", kind="stable")
+        drift = pd.DataFrame(drift_rows, columns=DRIFT_COLUMNS).sort_values("mjd_mid", kind="stable")
         rate = None
         use = drift[np.isfinite(drift.mjd_mid) & np.isfinite(drift.offset_err)]
         if len(use) >= 3 and np.ptp(use.mjd_mid) > 0:

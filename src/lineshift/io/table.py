@@ -15,8 +15,10 @@ import numpy as np
 import pandas as pd
 
 from lineshift.errors import ConfigError
+from lineshift.model import OLD_COLUMN_NAMES
 
-__all__ = ["COLUMNS", "EXTRA_COLUMNS", "FORMATS", "SB2_COLUMNS", "UNITS", "atomic_path", "rows_to_frame",
+__all__ = ["COLUMNS", "EXTRA_COLUMNS", "FORMATS", "OLD_NAMES", "SB2_COLUMNS", "UNITS", "atomic_path", "csv_header",
+           "require_parquet", "rows_to_frame",
            "table_format", "write_frame", "write_table"]
 
 #: Columns of the secondary with ``--components 2`` (shared/interface.md), right after the contract columns.
@@ -25,15 +27,34 @@ SB2_COLUMNS = ["rv2", "rv2_err", "fwhm2", "contrast2", "rv2_topo", "fwhm2_err", 
 #: The contract columns (shared/interface.md), in order; extra columns follow.
 COLUMNS = ["file", "object", "bjd_tdb", "rv", "rv_err", "berv", "rv_topo", "fwhm", "contrast", "snr",
            "n_lines", "status"]
-EXTRA_COLUMNS = ["method", "fwhm_err", "contrast_err", "bis_span", "bis_span_err", "rv_chromatic_slope",
+EXTRA_COLUMNS = ["method", "fwhm_err", "contrast_err", "bisector_span", "bisector_span_err", "rv_chromatic_slope",
                  "rv_chromatic_slope_err", "n_orders", "mjd_mid", "time_scale", "time_source", "layout", "medium",
                  "notes"]
 
 FORMATS = {".csv": "csv", ".ecsv": "ecsv", ".fits": "fits", ".fit": "fits", ".parquet": "parquet"}
+#: Old column names still accepted on reading (old name -> current name); dropped one release later.
+OLD_NAMES = OLD_COLUMN_NAMES
+
+#: Unit of every physical column of every table lineshift writes (one meaning per name, so one unit per name;
+#: docs/reference.md lists them).  Columns not named here are dimensionless, counts or text.
 UNITS = {"bjd_tdb": "d", "rv": "m / s", "rv_err": "m / s", "berv": "m / s", "rv_topo": "m / s",
-         "fwhm": "m / s", "fwhm_err": "m / s", "mjd_mid": "d", "bis_span": "m / s", "bis_span_err": "m / s",
-         "rv2": "m / s", "rv2_err": "m / s", "rv2_topo": "m / s", "fwhm2": "m / s", "fwhm2_err": "m / s"}
+         "fwhm": "m / s", "fwhm_err": "m / s", "mjd_mid": "d", "bisector_span": "m / s",
+         "bisector_span_err": "m / s", "rv_chromatic_slope": "m / s", "rv_chromatic_slope_err": "m / s",
+         "rv2": "m / s", "rv2_err": "m / s", "rv2_topo": "m / s", "fwhm2": "m / s", "fwhm2_err": "m / s",
+         "rv_topo_err": "m / s", "wavelength": "Angstrom",
+         "wavelength_lab": "Angstrom", "wavelength_measured": "Angstrom", "residual": "m / s",
+         "residual_err": "m / s", "pixel": "pix", "offset": "m / s", "offset_err": "m / s", "slope": "m / s",
+         "slope_err": "m / s", "rms": "m / s", "offset_from_global": "m / s", "rv_aligned": "m / s"}
 _INT = ("n_lines", "n_orders")
+
+
+def csv_header(frame: pd.DataFrame, meta: dict) -> str:
+    """``# KEY: value`` provenance lines and a ``# UNITS:`` line for a CSV table (read back with comment='#')."""
+    lines = [f"# {k}: {' '.join(str(v).split())}\n" for k, v in meta.items()]
+    units = [f"{c} [{UNITS[c]}]" for c in frame.columns if c in UNITS]
+    if units:
+        lines.append(f"# UNITS: {', '.join(units)}\n")
+    return "".join(lines)
 
 
 def table_format(path: str) -> str:
@@ -43,7 +64,18 @@ def table_format(path: str) -> str:
         return "csv"
     if ext not in FORMATS:
         raise ConfigError(f"output {path!r}: unknown table extension {ext!r} (use .csv, .ecsv, .fits, .parquet)")
+    if FORMATS[ext] == "parquet":
+        require_parquet(path)
     return FORMATS[ext]
+
+
+def require_parquet(path: str) -> None:
+    """Parquet needs the optional pyarrow: a usage error naming the file when it is not installed."""
+    import importlib.util
+
+    if importlib.util.find_spec("pyarrow") is None:
+        raise ConfigError(f"{path!r}: Parquet tables need pyarrow, which is not installed "
+                          "(pip install pyarrow, or pip install -e \".[parquet]\"); use .csv, .ecsv or .fits")
 
 
 def rows_to_frame(rows: list[dict]) -> pd.DataFrame:
@@ -52,6 +84,7 @@ def rows_to_frame(rows: list[dict]) -> pd.DataFrame:
     cols = COLUMNS + sb2 + EXTRA_COLUMNS
     extra = [k for r in rows for k in r if k not in cols and not k.startswith("_")]
     cols += list(dict.fromkeys(extra))
+    rows = [{OLD_NAMES.get(k, k): v for k, v in r.items()} for r in rows]  # rows kept in an older store
     frame = pd.DataFrame([{c: r.get(c) for c in cols} for r in rows], columns=cols)
     for c in cols:
         if c in ("file", "object", "status", "method", "time_scale", "time_source", "layout", "medium", "notes"):
@@ -113,7 +146,9 @@ def write_frame(frame: pd.DataFrame, path: str | None, meta: dict[str, str] | No
     fmt = table_format(path)
     with atomic_path(path) as tmp:
         if fmt == "csv":
-            frame.to_csv(tmp, index=False)
+            with open(tmp, "w", newline="") as fh:
+                fh.write(csv_header(frame, meta))
+                frame.to_csv(fh, index=False)
         elif fmt == "parquet":
             import pyarrow as pa
             import pyarrow.parquet as pq

@@ -3,8 +3,8 @@
 Continuum
     Each order's continuum is fitted as a Legendre polynomial in pixel with iterative asymmetric
     sigma clipping (points more than ``clip_low`` sigma below the fit are absorption lines, more
-    than ``clip_high`` above are cosmic rays), so the fit settles on the upper envelope; this is the
-    classic iterative-rejection continuum fit described by Tody (1986, Proc. SPIE 627, 733).  Sigma
+    than ``clip_high`` above are cosmic rays), so the fit settles on the upper envelope (an iterative, asymmetrically
+    clipped upper-envelope fit: common practice in continuum normalisation).  Sigma
     is the photon noise of each pixel combined with the robust scatter of the residuals.  When the
     file gives a blaze function the polynomial is fitted to flux/blaze and multiplied back.
 

@@ -46,9 +46,10 @@ def plot_ccf(row: dict, outdir: str) -> str:
     if row.get("rv2_topo") is not None and np.isfinite(row.get("rv2_topo", np.nan)):
         ax.axvline(row["rv2_topo"] / 1e3, color="tab:blue", lw=0.6, ls=":")
     ax.set_ylabel("normalised CCF")
-    ax.set_title(f"{os.path.basename(row['file'])}\nrv_topo = {row['rv_topo'] / 1e3:.4f} km/s "
-                 f"± {row['rv_err']:.2f} m/s, FWHM {row['fwhm'] / 1e3:.2f} km/s, "
-                 f"contrast {100 * row['contrast']:.1f}%", fontsize=8)
+    rv = row.get("rv")
+    bary = f"rv = {rv:.2f} ± {row['rv_err']:.2f} m/s (barycentric), " if rv is not None and np.isfinite(rv) else ""
+    ax.set_title(f"{os.path.basename(row['file'])}\n{bary}rv_topo = {row['rv_topo']:.2f} m/s, "
+                 f"FWHM {row['fwhm']:.0f} m/s, contrast {100 * row['contrast']:.1f}%", fontsize=8)
     ax.legend(fontsize=8, loc="lower left")
     axr.plot(v / 1e3, ccf - model, ".", ms=3, color="0.2")
     axr.axhline(0, color="tab:red", lw=0.6)
@@ -63,8 +64,8 @@ def plot_ccf(row: dict, outdir: str) -> str:
         axb.set_ylim(1, 0)
         axb.set_xlabel("bisector - rv_topo (m/s)")
         axb.set_ylabel("fractional depth")
-        span = row.get("bis_span", np.nan)
-        axb.set_title(f"BIS {span:+.1f} ± {row.get('bis_span_err', np.nan):.1f} m/s", fontsize=8)
+        span = row.get("bisector_span", np.nan)
+        axb.set_title(f"bisector span {span:+.1f} ± {row.get('bisector_span_err', np.nan):.1f} m/s", fontsize=8)
     fig.tight_layout()
     return _save(fig, os.path.join(outdir, f"{_stem(row['file'])}_ccf.png"))
 
@@ -86,13 +87,20 @@ def plot_rv_time(rows: list[dict], outdir: str, name: str = "rv_time.png") -> st
         sel = layouts == layout
         ax.errorbar(t[sel] - ref, rv[sel] - mean, err[sel], fmt="o", ms=4, color=colours[k % len(colours)],
                     ecolor="0.6", capsize=2, label=layout or "unknown layout")
-    if len(set(layouts)) > 1:
-        ax.legend(fontsize=8, title="layout (zero points may differ)", title_fontsize=8)
+    # scatter about each layout's own weighted mean: the layouts' zero points may differ
+    resid = np.empty_like(rv)
+    for layout in set(layouts):
+        sel = layouts == layout
+        resid[sel] = rv[sel] - np.average(rv[sel], weights=1 / err[sel] ** 2)
+    if len(set(layouts)) > 1:   # beside the axes, where it hides no point
+        ax.legend(fontsize=8, title="layout (zero points\nmay differ)", title_fontsize=8, loc="upper left",
+                  bbox_to_anchor=(1.01, 1.0), borderaxespad=0)
     ax.set_xlabel(f"BJD_TDB - {ref:.0f} (d)")
     ax.set_ylabel(f"rv - {mean / 1e3:.4f} km/s (m/s)")
     objects = sorted({r.get("object") or "" for r in ok} - {""})
     ax.set_title(f"{', '.join(objects) or 'velocities'}: {len(ok)} spectra, "
-                 f"rms {np.std(rv):.2f} m/s, median error {np.median(err):.2f} m/s", fontsize=9)
+                 f"rms {np.std(resid):.2f} m/s about each layout's mean, median error {np.median(err):.2f} m/s",
+                 fontsize=9)
     ax.grid(alpha=0.3)
     fig.tight_layout()
     return _save(fig, os.path.join(outdir, name))
@@ -108,7 +116,10 @@ def plot_template(template, found, path: str, *, panels: int = 4, width: float =
     axes[0].set_title(f"co-added template ({template.n_spectra} spectra): {int(kept.sum())} lines kept, "
                       f"{int((~kept).sum())} rejected", fontsize=9)
     axes[0].set_ylim(0, 1.15)
-    centres = np.linspace(w[0] + width, w[-1] - width, panels)
+    axes[0].set_ylabel("normalised flux")
+    # zoom on kept lines spread over the range (a window between orders would show nothing)
+    lines = np.sort(found.wavelength[kept]) if kept.any() else np.linspace(w[0] + width, w[-1] - width, panels)
+    centres = lines[np.linspace(0, lines.size - 1, panels).round().astype(int)]
     for ax, c in zip(axes[1:], centres, strict=True):
         sel = (w > c - width / 2) & (w < c + width / 2)
         ax.plot(w[sel], f[sel], lw=0.7, color="0.2")
@@ -117,7 +128,6 @@ def plot_template(template, found, path: str, *, panels: int = 4, width: float =
                 ax.axvline(lam, color="tab:red" if k else "0.7", lw=0.8, ymax=0.12 if k else 0.06)
         ax.set_xlim(c - width / 2, c + width / 2)
         ax.set_ylim(0, 1.15)
-    for ax in axes:
         ax.set_ylabel("normalised flux")
     axes[-1].set_xlabel("vacuum wavelength, template frame (A)")
     fig.tight_layout()
@@ -199,7 +209,7 @@ def plot_periodogram(pg, path: str) -> str:
     for k, peak in enumerate(pg.peaks[:5]):
         ax.plot(peak["period"], peak["power"], "v", color="tab:red" if k == 0 else "tab:orange", ms=6)
         ax.annotate(f"{peak['period']:.3f} d\nFAP {peak['fap']:.1e}", (peak["period"], peak["power"]),
-                    textcoords="offset points", xytext=(4, 4), fontsize=7)
+                    textcoords="offset points", xytext=(4, 4 + 14 * (k % 3)), fontsize=7)  # staggered
     if pg.peaks:
         for alias in pg.peaks[0]["aliases"]["1 d"] + pg.peaks[0]["aliases"]["1 yr"]:
             if period.min() <= alias <= period.max():
@@ -222,6 +232,7 @@ def plot_orbit(series, fit, offsets_model, path: str) -> str:
     phase = np.mod((series.t - o.time_periastron) / o.period, 1.0)
     from lineshift.series.orbit import radial_velocity
 
+    t_ref = float(np.floor(series.t.min()))   # a readable axis instead of a bare "+2.461e6" offset
     ph = np.linspace(0, 1, 500)
     curve = radial_velocity(o.time_periastron + ph * o.period, o)
     fig, (ax, ar) = plt.subplots(2, 1, figsize=(8, 6), gridspec_kw={"height_ratios": [3, 2]})
@@ -229,7 +240,7 @@ def plot_orbit(series, fit, offsets_model, path: str) -> str:
     for k, d in enumerate(series.datasets):
         m = (series.dataset == d) & use
         ax.errorbar(phase[m], aligned[m], series.err[m], fmt="o", ms=4, capsize=2, color=colours[k % 5], label=d)
-        ar.errorbar(series.t[m], series.rv[m] - fit.model[m], series.err[m], fmt="o", ms=4, capsize=2,
+        ar.errorbar(series.t[m] - t_ref, series.rv[m] - fit.model[m], series.err[m], fmt="o", ms=4, capsize=2,
                     color=colours[k % 5])
     if (~use).any():
         ax.plot(phase[~use], aligned[~use], "x", color="tab:red", label="flagged")
@@ -239,7 +250,7 @@ def plot_orbit(series, fit, offsets_model, path: str) -> str:
     ax.set_title(f"P = {o.period:.4f} d, K = {o.semi_amplitude:.2f} m/s, e = {o.eccentricity:.3f}", fontsize=9)
     ax.legend(fontsize=7)
     ar.axhline(0, color="k", lw=0.5)
-    ar.set_xlabel("BJD_TDB (d)")
+    ar.set_xlabel(f"BJD_TDB - {t_ref:.0f} (d)")
     ar.set_ylabel(f"residual (m/s), rms {fit.rms:.2f}")
     fig.tight_layout()
     return _save(fig, path)

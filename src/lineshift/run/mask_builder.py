@@ -192,7 +192,8 @@ def build_mask(paths: list[str], settings: MeasureSettings, build: MaskBuildSett
         fwhm_guess = None
         notes.append("first pass: co-added in the barycentric frame")
     lo, hi, dv_pix = _ranges(upaths)
-    n_iter = 0
+    n_iter = 0       # co-adds made (progress count)
+    n_measured = 0   # velocity re-measurements against the template's mask: what --iterations bounds
 
     def template_for(rv):
         good = np.isfinite(rv)
@@ -229,6 +230,7 @@ def build_mask(paths: list[str], settings: MeasureSettings, build: MaskBuildSett
             break
         mask = found.mask("provisional")
         new_rv, new_err, fwhm = velocities_with(mask)
+        n_measured += 1
         fwhm_guess = float(np.nanmedian(fwhm)) / np.sqrt(2) if np.isfinite(fwhm).any() else fwhm_guess
         change = np.nanmax(np.abs(new_rv - rv)) if np.isfinite(new_rv).any() else np.inf
         tol = 0.1 * np.nanmedian(new_err) if np.isfinite(new_err).any() else 0.0
@@ -244,7 +246,7 @@ def build_mask(paths: list[str], settings: MeasureSettings, build: MaskBuildSett
             failures.append((p, f"{p}: no velocity against the provisional mask; left out of the template"))
     error_per_snr = expected_error_per_snr(template)
     result = MaskBuild(found.mask("built"), found, template, upaths, rv, failures, error_per_snr,
-                       iterations=n_iter, notes=notes)
+                       iterations=n_measured, notes=notes)
     if anchor is not None:
         lab, lab_err = read_lab_lines(anchor)
         tol = build.anchor_tolerance * float(np.median(found.fwhm[found.kept]))
@@ -266,7 +268,8 @@ def _provenance(res: MaskBuild, build: MaskBuildSettings, paths, anchor) -> list
         f"Settings: min_depth={ls.min_depth}, blend_fraction={ls.blend_fraction}, "
         f"max_width_ratio={ls.max_width_ratio}, "
         f"max_centre_error={ls.max_centre_error} m/s, core fit +-{ls.core_fwhm} FWHM, "
-        f"template step {res.template.step:.1f} m/s, {res.iterations} co-add iteration(s).",
+        f"template step {res.template.step:.1f} m/s, {res.iterations} co-add / measure iteration(s) "
+        f"(at most {build.iterations}).",
         f"Lines: {c['kept']} kept; rejected: " + ", ".join(f"{c[r]} {r}" for r in ("blend", "edge", "telluric",
                                                                                      "centre", "shallow", "fit"))
         + ".",

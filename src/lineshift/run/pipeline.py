@@ -219,7 +219,7 @@ def measure_task(task: Task, ctx: Context) -> dict:
         bjd_tdb=task.bjd_tdb, rv=rv, rv_err=res.rv_err * (1 + task.berv / C_MS), berv=task.berv,
         rv_topo=res.rv, fwhm=res.fwhm, contrast=res.contrast, snr=res.snr, n_lines=res.n_lines,
         fwhm_err=res.fwhm_err, contrast_err=res.contrast_err, n_orders=res.n_orders,
-        bis_span=res.bis_span, bis_span_err=res.bis_span_err, rv_chromatic_slope=res.chromatic_slope,
+        bisector_span=res.bis_span, bisector_span_err=res.bis_span_err, rv_chromatic_slope=res.chromatic_slope,
         rv_chromatic_slope_err=res.chromatic_slope_err)
     row["_orders"] = [dict(o) for o in res.orders]
     if s.keep_ccf:
@@ -257,7 +257,7 @@ def _fit_against(tasks: list[Task], first: dict[int, dict], rv: dict[int, float]
     new = {}
     for task, row in run_tasks(measure_task, ttasks, tctx, workers=workers, scheduler=scheduler):
         first_row = first[task.index]
-        for k in ("fwhm", "contrast", "fwhm_err", "contrast_err", "bis_span", "bis_span_err", "n_lines"):
+        for k in ("fwhm", "contrast", "fwhm_err", "contrast_err", "bisector_span", "bisector_span_err", "n_lines"):
             row[k] = first_row.get(k)
         new[task.index] = row
     return new

@@ -29,6 +29,7 @@ from scipy.optimize import brentq, least_squares
 
 from lineshift.errors import ConfigError
 from lineshift.linefit import weighted_line
+from lineshift.model import OLD_COLUMN_NAMES
 from lineshift.series.orbit import Orbit, jupiter_masses, mass_function, minimum_mass, radial_velocity, semi_major_axis
 
 __all__ = ["INDICATORS", "Series", "bin_series", "bisector_correlation", "fit_orbit", "flag_outliers", "jitter",
@@ -40,7 +41,7 @@ CAVEATS = ("m sin i is a minimum mass: the orbital inclination is unknown.",
 
 
 #: measure-table columns carried into the series (and through binning) where present; each may have ``_err``
-INDICATORS = ("fwhm", "contrast", "bis_span", "rv_chromatic_slope", "rv2", "fwhm2", "contrast2", "flux_ratio")
+INDICATORS = ("fwhm", "contrast", "bisector_span", "rv_chromatic_slope", "rv2", "fwhm2", "contrast2", "flux_ratio")
 
 
 @dataclass
@@ -84,6 +85,11 @@ def _read_table(path: str) -> pd.DataFrame:
     ext = os.path.splitext(path)[1].lower()
     try:
         if ext == ".parquet":
+            import importlib.util
+
+            if importlib.util.find_spec("pyarrow") is None:
+                raise ConfigError("Parquet tables need pyarrow, which is not installed (pip install pyarrow)",
+                                  path=path)
             return pd.read_parquet(path)
         if ext in (".ecsv", ".fits", ".fit"):
             from astropy.table import Table
@@ -120,13 +126,15 @@ def read_series(paths: list[str], *, dataset_column: str | None = None) -> Serie
         raise ConfigError("no row with status ok in the input tables")
     df = df.sort_values("bjd_tdb", kind="stable")
 
+    df = df.rename(columns={old: new for old, new in OLD_COLUMN_NAMES.items() if old in df and new not in df})
+
     def col(name):
         return pd.to_numeric(df[name], errors="coerce").to_numpy(float) if name in df else np.full(len(df), np.nan)
 
     indicators = {c: col(c) for name in INDICATORS for c in (name, f"{name}_err") if c in df}
     return Series(df["bjd_tdb"].to_numpy(float), df["rv"].to_numpy(float), df["rv_err"].to_numpy(float),
                   df["_ds"].to_numpy(object), df.get("file", pd.Series([""] * len(df))).to_numpy(object), dropped,
-                  bis=col("bis_span"), bis_err=col("bis_span_err"), rv2=col("rv2"), rv2_err=col("rv2_err"),
+                  bis=col("bisector_span"), bis_err=col("bisector_span_err"), rv2=col("rv2"), rv2_err=col("rv2_err"),
                   indicators=indicators)
 
 
@@ -223,7 +231,7 @@ def bin_series(s: Series, window_days: float) -> Series:
     return Series(np.asarray(t)[order], np.asarray(rv)[order], np.asarray(err)[order],
                   np.asarray(ds, dtype=object)[order], np.asarray(files, dtype=object)[order], s.n_dropped,
                   n_binned=np.asarray(n, int)[order], indicators=indicators,
-                  bis=indicators.get("bis_span", nan), bis_err=indicators.get("bis_span_err", nan),
+                  bis=indicators.get("bisector_span", nan), bis_err=indicators.get("bisector_span_err", nan),
                   rv2=indicators.get("rv2", nan), rv2_err=indicators.get("rv2_err", nan))
 
 
