@@ -228,10 +228,16 @@ def _wavecheck_figure(wc: pd.DataFrame) -> str:
 
 # --------------------------------------------------------------------------- the page
 
-def _esc(x) -> str:
+#: Number formats of the row table (time to 0.1 s, velocities to 1 cm/s).
+_FORMATS = {"bjd_tdb": ".6f", "rv": ".2f", "rv_err": ".2f", "fwhm": ".1f", "contrast": ".4f", "snr": ".1f"}
+
+
+def _esc(x, fmt: str = ".6g") -> str:
+    if x is None or x is pd.NA or x is np.ma.masked or (np.isscalar(x) and pd.isna(x)):
+        return ""
     if isinstance(x, float):
-        return "" if not np.isfinite(x) else f"{x:.6g}"
-    return html.escape("" if x is None or (isinstance(x, float) and np.isnan(x)) else str(x))
+        return "" if not np.isfinite(x) else format(x, fmt)
+    return html.escape(str(x))
 
 
 def _fit_orbit(ok: pd.DataFrame):
@@ -303,9 +309,12 @@ def build_report(frame: pd.DataFrame, meta: dict[str, str], *, ccfs=None, orders
     # gallery
     rows_by_file = {str(r["file"]): r for r in frame.to_dict("records")}
     parts.append("<section id='gallery'><h2>CCF gallery</h2>")
-    if ccfs is None or len(ccfs) == 0:
+    if ccfs is None:
         parts.append("<p class='note'>No CCFs: tables do not store them. Run <code>lineshift measure ... "
                      "--report REPORT.html</code> to include the gallery.</p>")
+    elif len(ccfs) == 0:
+        parts.append("<p class='note'>No CCFs were kept in this run (the template engine and rows taken from "
+                     "the results store have none).</p>")
     else:
         chosen, note = ccfs.selection(gallery_limit)
         n_out = len(ccfs.outliers())
@@ -352,7 +361,8 @@ def build_report(frame: pd.DataFrame, meta: dict[str, str], *, ccfs=None, orders
     for i in order:
         r = frame.iloc[i]
         cls = "ok" if status.iloc[i] == "ok" else "rejected"
-        cells = "".join(f"<td>{_esc(os.path.basename(str(r[c])) if c == 'file' else r[c])}</td>" for c in cols)
+        cells = "".join(f"<td>{_esc(os.path.basename(str(r[c])) if c == 'file' else r[c], _FORMATS.get(c, '.6g'))}"
+                        "</td>" for c in cols)
         body.append(f"<tr class='{cls}'>{cells}</tr>")
     units = {"bjd_tdb": " (d)", "rv": " (m/s)", "rv_err": " (m/s)", "fwhm": " (m/s)"}
     parts.append(f"<section id='rows'><h2>Rows ({n_rej} rejected first)</h2><table><thead><tr>"
@@ -367,8 +377,8 @@ def write_report(path: str, rows_or_frame, meta: dict[str, str] | None = None, *
     if not isinstance(rows_or_frame, pd.DataFrame):
         errors = [r.get("_error") or "" for r in rows_or_frame]
         if "notes" in frame:
-            frame["notes"] = [n if not e else (f"{n}; {e}" if n else e) for n, e in zip(frame["notes"], errors,
-                                                                                   strict=True)]
+            frame["notes"] = [n if not e or e in n else (f"{n}; {e}" if n else e)
+                              for n, e in zip(frame["notes"], errors, strict=True)]
     text = build_report(frame, meta or {}, **kwargs)
     with atomic_path(path) as tmp, open(tmp, "w", encoding="utf-8") as fh:
         fh.write(text)
