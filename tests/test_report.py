@@ -127,6 +127,12 @@ def test_report_command_from_tables(measured):
     rms, period, k = map(float, m.groups())
     assert abs(period - 11.73) < 0.05 and abs(k - 38) < 6
     assert rms < 15  # median error ~6 m/s plus zero points between layouts
+    # with the mask, the CCFs of the table's files are recomputed for the gallery
+    out2 = d / "recomputed.html"
+    assert main(["report", str(table), "--mask", MASK, "-o", str(out2), "-q"]) == 0
+    text2 = out2.read_text()
+    n_ok = len(glob.glob(os.path.join(SAMPLE, "*.gz")))
+    assert text2.count('<div class="card') == n_ok and "CCFs recomputed from 32 files" in text2
     assert main(["report", str(table), "-o", str(table)]) == 2  # never overwrite an input
     assert main(["report", str(d / "missing.ecsv"), "-o", str(d / "x.html")]) == 2
 

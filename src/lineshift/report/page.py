@@ -253,7 +253,8 @@ def _fit_orbit(ok: pd.DataFrame):
 
 def build_report(frame: pd.DataFrame, meta: dict[str, str], *, ccfs=None, orders: pd.DataFrame | None = None,
                  orders_spectrum: str | None = None, wavecheck: pd.DataFrame | None = None,
-                 fit_orbit: bool = False, gallery_limit: int = 60, title: str = "lineshift run report") -> str:
+                 fit_orbit: bool = False, gallery_limit: int = 60, title: str = "lineshift run report",
+                 gallery_note: str = "") -> str:
     """The report's HTML text. ``ccfs``: a :class:`~lineshift.report.gallery.CCFKeeper` (or None)."""
     status = _text(frame["status"])
     ok = _ok(frame)
@@ -309,9 +310,12 @@ def build_report(frame: pd.DataFrame, meta: dict[str, str], *, ccfs=None, orders
     # gallery
     rows_by_file = {str(r["file"]): r for r in frame.to_dict("records")}
     parts.append("<section id='gallery'><h2>CCF gallery</h2>")
+    if gallery_note:
+        parts.append(f"<p class='note'>{_esc(gallery_note)}.</p>")
     if ccfs is None:
         parts.append("<p class='note'>No CCFs: tables do not store them. Run <code>lineshift measure ... "
-                     "--report REPORT.html</code> to include the gallery.</p>")
+                     "--report REPORT.html</code>, or give <code>lineshift report</code> the line mask "
+                     "(<code>--mask</code>) to recompute them.</p>")
     elif len(ccfs) == 0:
         parts.append("<p class='note'>No CCFs were kept in this run (the template engine and rows taken from "
                      "the results store have none).</p>")
