@@ -52,7 +52,7 @@ def run(args) -> int:
                           path=args.wavecheck)
     keeper, note = (_recompute(frame, args) if args.mask else (None, "no CCF gallery from tables without --mask"))
     write_report(args.output, frame, meta, ccfs=keeper, orders=orders, orders_spectrum=args.orders_spectrum,
-                 wavecheck=wave, fit_orbit=args.fit_orbit, gallery_note=note)
+                 wavecheck=wave, fit_orbit=args.fit_orbit, gallery_note=note if args.mask else "")
     if not args.quiet:
         print(f"lineshift: report of {len(frame)} rows written to {args.output} "
               f"({os.path.getsize(args.output) / 1e6:.2f} MB; {note})", file=sys.stderr)
