@@ -21,7 +21,7 @@ FLOORS = {
     "_version": 0, "_offline": 0, "model": 0, "errors": 0, "linefit": 0,
     "__init__": 1, "io": 1, "measure": 1, "series": 1,
     "calib": 2, "sim": 2, "plots": 2,
-    "run": 3,
+    "run": 3, "report": 3,
     "api": 4,
     "cli": 5,
     "__main__": 6,

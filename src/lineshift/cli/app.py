@@ -12,7 +12,7 @@ import os
 import sys
 
 from lineshift._version import __version__
-from lineshift.cli import inspect, mask, measure, series, simulate, wavecheck
+from lineshift.cli import inspect, mask, measure, report, series, simulate, wavecheck
 from lineshift.cli.common import Parser
 from lineshift.errors import ConfigError, LineshiftError, MaskError
 
@@ -20,7 +20,7 @@ __all__ = ["build_parser", "main"]
 
 #: command name -> its module (each has ``add_parser(sub)`` and ``run(args) -> exit code``), in help order
 COMMANDS = {"measure": measure, "mask": mask, "wavecheck": wavecheck, "series": series, "inspect": inspect,
-            "simulate": simulate}
+            "simulate": simulate, "report": report}
 
 
 def build_parser() -> argparse.ArgumentParser:

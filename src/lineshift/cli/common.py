@@ -144,7 +144,7 @@ def settings_from(args, cfg):
         ephemeris=ephemeris,
         telluric_bands=telluric,
         systemic_velocity=args.systemic_velocity if args.systemic_velocity is not None else mc.get("systemic_velocity"),
-        keep_ccf=bool(args.plots),
+        keep_ccf=bool(args.plots or getattr(args, "report", None)),
         components=getattr(args, "components", 1) or 1,
     )
 

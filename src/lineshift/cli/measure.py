@@ -48,6 +48,8 @@ def add_parser(sub) -> None:
     p.add_argument("--scheduler", metavar="ADDRESS",
                    help="run the measurements on an existing Dask cluster (e.g. tcp://127.0.0.1:8786)")
     p.add_argument("--plots", metavar="DIR", help="write a CCF plot per spectrum and rv_time.png here")
+    p.add_argument("--report", metavar="REPORT.html",
+                   help="write a self-contained HTML report of the run, with a gallery of CCFs")
     add_shared(p, "-q", "--debug")
 
 
@@ -103,6 +105,13 @@ def run(args) -> int:
             write_mask_file(mask, args.save_mask)
     elif args.save_mask:
         raise ConfigError("--save-mask only applies when no --mask is given")
+    keeper = None
+    if args.report:
+        from lineshift.cli.report import _html_path
+        from lineshift.report import CCFKeeper
+
+        _html_path(args.report, inputs)
+        keeper = CCFKeeper()
     store = None
     if args.store:
         from lineshift.run.store import ResultStore
@@ -116,11 +125,14 @@ def run(args) -> int:
         if row["status"] != "ok":
             failures.append(row["file"])
             progress.write(f"lineshift: {row.get('_error') or row['status']}")
-        elif args.plots and "_ccf" in row:
-            from lineshift.plots.figures import plot_ccf
+        else:
+            if keeper is not None:
+                keeper.add(row)
+            if args.plots and "_ccf" in row:
+                from lineshift.plots.figures import plot_ccf
 
-            os.makedirs(args.plots, exist_ok=True)
-            plot_ccf(row, args.plots)
+                os.makedirs(args.plots, exist_ok=True)
+                plot_ccf(row, args.plots)
             row.pop("_ccf", None)
 
     report = BatchReport()
@@ -162,6 +174,13 @@ def run(args) -> int:
 
         os.makedirs(args.plots, exist_ok=True)
         plot_rv_time(rows, args.plots)
+    if args.report:
+        import pandas as pd
+
+        from lineshift.report import write_report
+
+        per_order = pd.DataFrame([{"file": r["file"], **o} for r in rows for o in r.get("_orders", [])])
+        write_report(args.report, rows, meta, ccfs=keeper, orders=per_order if len(per_order) else None)
     if not args.quiet:
         n_ok = len(rows) - len(failures)
         skipped = f" ({report.skipped} already in the store, skipped)" if store is not None else ""
