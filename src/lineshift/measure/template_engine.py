@@ -12,10 +12,13 @@ Template
     and subtracted), so no spectrum pulls the template towards itself.
 
 Fit
-    Per order, the normalised flux is modelled as ``(c0 + c1 x) T(ln lambda - delta)`` (x the pixel
-    position in -1..1), with ``delta = ln(1 + rv_topo/c)`` relative to the template's frame, by
+    Per order, the normalised flux is modelled as ``P(x) T(ln lambda - delta)`` with P a polynomial
+    of degree ``poly_degree`` (default 3) in the pixel position x in -1..1, fitted together with the
+    shift so a continuum mismatch between spectrum and template can neither bias nor inflate it (the
+    standard least-squares template matching with a multiplicative low-order polynomial, e.g.
+    Anglada-Escude & Butler 2012, ApJS 200, 15; Zechmeister et al. 2018, A&A 609, A12), with ``delta = ln(1 + rv_topo/c)`` relative to the template's frame, by
     Gauss-Newton (with the exact curvature term for the velocity) and variances
-    ``var_spectrum + (c0 + c1 x)^2 var_template``: the template's noise
+    ``var_spectrum + P(x)^2 var_template``: the template's noise
     enters the weights and hence the error from the curvature of chi-square.  The template is an
     exact cubic B-spline through its points (prefiltered with ``scipy.ndimage.spline_filter1d``),
     evaluated with its analytic derivative; a noise-free spectrum shifted by sub-pixel amounts is
@@ -45,6 +48,7 @@ class TemplateSettings:
     poor_chi2: float = 2.0
     edge_pixels: int = 10
     iterations: int = 6
+    poly_degree: int = 3
 
 
 @dataclass
@@ -159,7 +163,7 @@ def measure_template(orders: list[PreparedOrder], state: TemplateState, settings
 
 def _fit_block(block: list[PreparedOrder], coef, var_t, ok_t, state: TemplateState, settings: TemplateSettings,
                delta0: float):
-    """Gauss-Newton for (delta, c0, c1) of several orders of equal length at once.
+    """Gauss-Newton for (delta, c0..c_deg) of several orders of equal length at once.
 
     Returns per order (rv_topo, rv_err, reduced chi-square); NaN where the fit is impossible.
     """
@@ -173,7 +177,12 @@ def _fit_block(block: list[PreparedOrder], coef, var_t, ok_t, state: TemplateSta
     use[:, n - settings.edge_pixels:] = False
     u = np.log(wave)
     x = np.linspace(-1.0, 1.0, n)[None, :]
-    p = np.tile([delta0, 1.0, 0.0], (k, 1))
+    deg = settings.poly_degree
+    npar = deg + 2
+    powers = np.stack([x[0] ** j for j in range(deg + 1)])          # (deg+1, n): 1, x, x^2, ...
+    p = np.zeros((k, npar))
+    p[:, 0] = delta0
+    p[:, 1] = 1.0
     alive = np.ones(k, dtype=bool)
     for _ in range(settings.iterations):
         xi = (u - p[:, 0:1] - state.lng0) / state.dlng
@@ -185,11 +194,11 @@ def _fit_block(block: list[PreparedOrder], coef, var_t, ok_t, state: TemplateSta
         i0 = np.floor(xi).astype(np.intp)
         fr = xi - i0
         m = use & inside & ok_t[i0] & ok_t[i0 + 1]
-        poly = p[:, 1:2] + p[:, 2:3] * x
+        poly = p[:, 1:] @ powers
         vt = (1 - fr) * var_t[i0] + fr * var_t[i0 + 1]
         w = np.where(m, 1.0 / (var + poly * poly * vt), 0.0)
         r = np.where(m, flux - poly * T, 0.0)
-        J = np.stack((-poly * dT, T, x * T), axis=2)
+        J = np.concatenate(((-poly * dT)[:, :, None], T[:, :, None] * powers.T[None, :, :]), axis=2)
         JW = J * w[:, :, None]
         JWt = JW.transpose(0, 2, 1)
         A = JWt @ J                                  # batched BLAS (einsum is far slower here)
@@ -200,16 +209,16 @@ def _fit_block(block: list[PreparedOrder], coef, var_t, ok_t, state: TemplateSta
         A[:, 0, 0] -= np.sum(w * r * poly * d2T, axis=1)
         A[:, 0, 0] = np.where(A[:, 0, 0] > 0.1 * info[:, 0, 0], A[:, 0, 0], info[:, 0, 0])
         alive &= m.sum(axis=1) >= 20
-        A[~alive] = np.eye(3)
+        A[~alive] = np.eye(npar)
         b[~alive] = 0.0
         dp = np.linalg.solve(A, b[..., None])[..., 0]
         p += dp
-        chi2 = np.sum(w * r * r, axis=1) / np.maximum(m.sum(axis=1) - 3, 1)
+        chi2 = np.sum(w * r * r, axis=1) / np.maximum(m.sum(axis=1) - npar, 1)
         # Newton converges quadratically: after a step below 1e-9 (0.3 m/s) what remains is ~1e-11
         # (3 mm/s), so stop there
         if np.all(np.abs(dp[:, 0]) < 1e-9):
             break
-    info[~alive] = np.eye(3)
+    info[~alive] = np.eye(npar)
     cov = np.linalg.inv(info)
     v = C_MS * np.expm1(p[:, 0])
     e = C_MS * np.exp(p[:, 0]) * np.sqrt(np.abs(cov[:, 0, 0]))
