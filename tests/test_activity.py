@@ -112,3 +112,67 @@ def test_errors_against_monte_carlo():
     assert np.std(s, ddof=1) == pytest.approx(clean.s_index_err, rel=0.06)
     assert np.std(h, ddof=1) == pytest.approx(clean.halpha_index_err, rel=0.06)
     assert np.mean(s) == pytest.approx(clean.s_index, abs=0.1 * clean.s_index_err)
+
+
+HEADER = """# OBJECT = Vessa-12
+# TIMESYS = UTC
+# DATE-BEG = 2026-04-07T20:29:34.959
+# DATE-END = 2026-04-07T20:44:34.959
+# RA = 131.40625
+# DEC = -18.72361
+# RADESYS = ICRS
+# OBSGEO-X = 5090896.641824773
+# OBSGEO-Y = 3593002.6262072357
+# OBSGEO-Z = -1365567.157983653
+# medium: vacuum
+"""
+
+
+def _write_hk_text(path, v_topo, rng):
+    """A Ca II H and K region with mask lines, everything shifted by v_topo (the spectrum's frame)."""
+    wave = np.arange(3880.0, 4020.0, 0.02)
+    rest = wave / (1 + v_topo / C_MS)
+    cont = 4.0e4
+    lines = np.arange(3914.0, 3991.0, 1.7)  # between the continuum bands, clear of the H and K cores
+    lines = lines[np.min([np.abs(lines - b.centre) for b in BANDS["s_index"][:2]], axis=0) > 3.0]
+    flux = np.full(wave.size, cont)
+    for lam in lines:
+        flux -= 0.5 * cont * np.exp(-0.5 * ((rest - lam) / 0.06) ** 2)
+    for b in BANDS["s_index"][:2]:
+        flux -= 0.6 * cont * np.exp(-0.5 * ((rest - b.centre) / 0.3) ** 2)
+    err = np.sqrt(flux)
+    noisy = flux + rng.normal(0, err)
+    with open(path, "w") as fh:
+        fh.write(HEADER + "wavelength,flux,error\n")
+        for row in zip(wave, noisy, err, strict=True):
+            fh.write("{:.6f},{:.4f},{:.4f}\n".format(*row))
+    return lines
+
+
+def test_measure_activity_switch(tmp_path):
+    """`measure --activity`: the columns appear (only then), S matches the analytic band ratio."""
+    import pandas as pd
+
+    from lineshift.cli import main
+    from lineshift.io.table import ACTIVITY_COLUMNS
+
+    rng = np.random.default_rng(3)
+    lines = _write_hk_text(tmp_path / "hk.csv", 20e3, rng)
+    with open(tmp_path / "mask.csv", "w") as fh:
+        fh.write("# medium: vacuum\nwavelength,weight\n" + "".join(f"{x:.4f},1.0\n" for x in lines))
+    args = ["measure", str(tmp_path / "hk.csv"), "--mask", str(tmp_path / "mask.csv"), "--no-telluric", "-q"]
+    assert main([*args, "-o", str(tmp_path / "plain.csv")]) == 0
+    assert not set(ACTIVITY_COLUMNS) & set(pd.read_csv(tmp_path / "plain.csv").columns)
+    cfg = tmp_path / "c.toml"
+    cfg.write_text("[measure]\nmount_wilson_calibration = [0.02, 0.25]\n[target]\nb_minus_v = 0.65\n")
+    assert main([*args, "--activity", "--config", str(cfg), "-o", str(tmp_path / "act.csv")]) == 0
+    t = pd.read_csv(tmp_path / "act.csv")
+    assert list(t.columns[-len(ACTIVITY_COLUMNS):]) == ACTIVITY_COLUMNS
+    # the mask CCF's zero point on this toy spectrum (lines on the H and K wings) is off by some 10 m/s;
+    # 200 m/s moves the bands by 0.003 A, which changes S by < 1e-5
+    assert t.status[0] == "ok" and abs(t.rv_topo[0] - 20e3) < 200.0
+    h = BANDS["s_index"][0].width
+    raw = 1.0 - _gauss_triangle(0.6, 0.3, h) / h  # analytic, as in test_s_index_analytic_line
+    assert t.s_index[0] == pytest.approx(0.02 + 0.25 * raw, abs=4 * t.s_index_err[0])
+    assert t.log_rhk[0] == pytest.approx(activity.log_rhk(t.s_index[0], 0.65)[0], abs=1e-9)
+    assert np.isnan(t.halpha_index[0]) and "halpha_index: Halpha not covered" in t.notes[0]
