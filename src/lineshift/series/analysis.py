@@ -31,8 +31,8 @@ from lineshift.errors import ConfigError
 from lineshift.linefit import weighted_line
 from lineshift.series.orbit import Orbit, jupiter_masses, mass_function, minimum_mass, radial_velocity, semi_major_axis
 
-__all__ = ["Series", "bin_series", "bisector_correlation", "fit_orbit", "flag_outliers", "jitter", "periodogram",
-           "read_series", "secondary_orbit"]
+__all__ = ["INDICATORS", "Series", "bin_series", "bisector_correlation", "correlation", "fit_orbit",
+           "flag_outliers", "indicator_correlations", "jitter", "periodogram", "read_series", "secondary_orbit"]
 
 CAVEATS = ("m sin i is a minimum mass: the orbital inclination is unknown.",
            "A periodogram peak can be an alias of the sampling (1 d, 1 yr, or a peak of the window function) "
@@ -56,6 +56,7 @@ class Series:
     bis_err: np.ndarray = field(default_factory=lambda: np.zeros(0))
     rv2: np.ndarray = field(default_factory=lambda: np.zeros(0))       # secondary's velocity (NaN if absent)
     rv2_err: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    indicators: dict[str, np.ndarray] = field(default_factory=dict)   # column name -> values (NaN if absent)
 
     def __post_init__(self):
         n = self.t.size
@@ -117,9 +118,11 @@ def read_series(paths: list[str], *, dataset_column: str | None = None) -> Serie
     def col(name):
         return pd.to_numeric(df[name], errors="coerce").to_numpy(float) if name in df else np.full(len(df), np.nan)
 
+    indicators = {name: col(name) for name in INDICATORS if name in df and np.isfinite(col(name)).any()}
     return Series(df["bjd_tdb"].to_numpy(float), df["rv"].to_numpy(float), df["rv_err"].to_numpy(float),
                   df["_ds"].to_numpy(object), df.get("file", pd.Series([""] * len(df))).to_numpy(object), dropped,
-                  bis=col("bis_span"), bis_err=col("bis_span_err"), rv2=col("rv2"), rv2_err=col("rv2_err"))
+                  bis=col("bis_span"), bis_err=col("bis_span_err"), rv2=col("rv2"), rv2_err=col("rv2_err"),
+                  indicators=indicators)
 
 
 # --------------------------------------------------------------------------- jitter, offsets, outliers
@@ -174,13 +177,16 @@ def bin_series(s: Series, window_days: float) -> Series:
                 j += 1
             sel = idx[i:j + 1]
             w = 1 / s.err[sel] ** 2
+            with np.errstate(invalid="ignore"):   # an indicator missing in the whole bin stays NaN
+                ind = {k: float(np.mean(v[sel])) for k, v in s.indicators.items()}
             rows.append((np.sum(w * s.t[sel]) / np.sum(w), np.sum(w * s.rv[sel]) / np.sum(w),
-                         1 / np.sqrt(np.sum(w)), d, ";".join(map(str, s.file[sel])), sel.size))
+                         1 / np.sqrt(np.sum(w)), d, ";".join(map(str, s.file[sel])), sel.size, ind))
             i = j + 1
     rows.sort(key=lambda r: r[0])
-    t, rv, err, ds, files, n = (np.array(c, dtype=object) for c in zip(*rows, strict=True))
+    t, rv, err, ds, files, n = (np.array(c, dtype=object) for c in list(zip(*rows, strict=True))[:6])
+    indicators = {k: np.array([r[6][k] for r in rows]) for k in s.indicators}
     return Series(t.astype(float), rv.astype(float), err.astype(float), ds, files, s.n_dropped,
-                  n_binned=n.astype(int))
+                  n_binned=n.astype(int), indicators=indicators)
 
 
 # --------------------------------------------------------------------------- periodogram
@@ -383,6 +389,54 @@ def bisector_correlation(s: Series, offsets: dict[str, float]) -> dict | None:
     r, p = pearsonr(aligned, s.bis[use])
     slope = float(np.polyfit(aligned, s.bis[use], 1)[0])
     return {"r": float(r), "p_value": float(p), "n": int(use.sum()), "slope": slope, "significant": bool(p < 0.01)}
+
+
+#: Indicator columns of a measure table that ``series`` correlates with the velocity (when present).
+#: ``bisector_span`` is accepted as another name of the bisector-span column.
+INDICATORS = ("fwhm", "contrast", "bis_span", "bisector_span", "rv_chromatic_slope", "s_index", "log_rhk",
+              "halpha_index", "nad_index")
+
+
+def _pearson(x: np.ndarray, y: np.ndarray) -> tuple[float, float]:
+    """Pearson r and its two-sided p-value from Student's t with n - 2 degrees of freedom.
+
+    t = r sqrt((n - 2) / (1 - r^2)) is exactly t-distributed for independent Gaussian x, y (Fisher 1915;
+    any statistics text).
+    """
+    from scipy.stats import t as student_t
+
+    n = x.size
+    dx, dy = x - x.mean(), y - y.mean()
+    den = np.sqrt(np.dot(dx, dx) * np.dot(dy, dy))
+    if den == 0:
+        return float("nan"), float("nan")
+    r = float(np.clip(np.dot(dx, dy) / den, -1.0, 1.0))
+    if abs(r) == 1.0:
+        return r, 0.0
+    tval = r * np.sqrt((n - 2) / (1 - r * r))
+    return r, float(2 * student_t.sf(abs(tval), n - 2))
+
+
+def correlation(x: np.ndarray, y: np.ndarray) -> dict:
+    """Pearson and Spearman coefficients with p-values (Spearman: Pearson of the ranks, ties averaged,
+    p from the same t approximation)."""
+    from scipy.stats import rankdata
+
+    r, p = _pearson(x, y)
+    rs, ps = _pearson(rankdata(x), rankdata(y))
+    return {"pearson_r": r, "pearson_p": p, "spearman_r": rs, "spearman_p": ps, "n": int(x.size),
+            "significant": bool(p < 0.01 or ps < 0.01)}
+
+
+def indicator_correlations(s: Series, offsets: dict[str, float]) -> dict[str, dict]:
+    """Correlation of the (offset-aligned) velocity with every indicator present (>= 5 usable points)."""
+    aligned = s.rv - np.array([offsets.get(d, 0.0) for d in s.dataset])
+    out = {}
+    for name, v in s.indicators.items():
+        use = ~s.flag & np.isfinite(v) & np.isfinite(aligned)
+        if use.sum() >= 5:
+            out[name] = correlation(aligned[use], v[use])
+    return out
 
 
 def secondary_orbit(s: Series, fit: OrbitFit) -> dict | None:
