@@ -146,6 +146,10 @@ def settings_from(args, cfg):
         systemic_velocity=args.systemic_velocity if args.systemic_velocity is not None else mc.get("systemic_velocity"),
         keep_ccf=bool(args.plots or getattr(args, "report", None)),
         components=getattr(args, "components", 1) or 1,
+        activity=bool(getattr(args, "activity", False) or mc.get("activity", False)),
+        mount_wilson_calibration=mc.get("mount_wilson_calibration"),
+        b_minus_v=getattr(args, "b_minus_v", None) if getattr(args, "b_minus_v", None) is not None
+        else t.get("b_minus_v"),
     )
 
 

@@ -34,6 +34,9 @@ def add_parser(sub) -> None:
                         "config's)")
     p.add_argument("--components", type=int, choices=(1, 2), default=1,
                    help="2: fit two correlation profiles (double-lined binary); rv2... columns for the secondary")
+    p.add_argument("--activity", action="store_true",
+                   help="add the Ca II H&K S-index, log R'HK, H-alpha and Na I D indices to the table")
+    p.add_argument("--b-minus-v", type=float, metavar="MAG", help="the star's B-V colour, for log R'HK")
     p.add_argument("--orders-table", metavar="TABLE",
                    help="per-order topocentric velocities, one row per file and order (.csv, .ecsv, .fits, .parquet)")
     p.add_argument("--systemic-velocity", type=float, metavar="M_S",

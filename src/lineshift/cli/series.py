@@ -109,6 +109,9 @@ def run(args) -> int:
                        eccentricity=0.0, jitter=resid_jit, offsets=offsets)
     summary["n_flagged"] = int(s.flag.sum())
     corr = ser.bisector_correlation(s, offsets)
+    indicator_corr = ser.indicator_correlations(s, offsets)
+    if indicator_corr:
+        summary["rv_indicator_correlations"] = indicator_corr
     if corr is not None:
         summary["rv_bisector_correlation"] = corr
     if fit is not None:
@@ -144,6 +147,10 @@ def run(args) -> int:
             from lineshift.plots.figures import plot_rv_bisector
 
             plot_rv_bisector(s, offsets, corr, os.path.join(args.plots, "rv_bisector.png"))
+        if indicator_corr:
+            from lineshift.plots.figures import plot_indicator_grid
+
+            plot_indicator_grid(s, offsets, indicator_corr, os.path.join(args.plots, "rv_indicators.png"))
     best = pg.peaks[0]
     say(f"strongest peak {best['period']:.4f} d, FAP {best['fap']:.2g} (Baluev 2008); "
         f"next: " + ", ".join(f"{p['period']:.3f} d" for p in pg.peaks[1:4]))

@@ -17,12 +17,16 @@ import pandas as pd
 from lineshift.errors import ConfigError
 from lineshift.model import OLD_COLUMN_NAMES
 
-__all__ = ["COLUMNS", "EXTRA_COLUMNS", "FORMATS", "OLD_NAMES", "SB2_COLUMNS", "UNITS", "atomic_path", "csv_header",
-           "require_parquet", "rows_to_frame",
-           "table_format", "write_frame", "write_table"]
+__all__ = ["ACTIVITY_COLUMNS", "COLUMNS", "EXTRA_COLUMNS", "FORMATS", "OLD_NAMES", "SB2_COLUMNS", "UNITS",
+           "atomic_path", "csv_header", "require_parquet", "rows_to_frame", "table_format", "write_frame",
+           "write_table"]
 
 #: Columns of the secondary with ``--components 2`` (shared/interface.md), right after the contract columns.
 SB2_COLUMNS = ["rv2", "rv2_err", "fwhm2", "contrast2", "rv2_topo", "fwhm2_err", "contrast2_err", "flux_ratio"]
+
+#: Activity-index columns with ``--activity`` (lineshift.measure.activity), after the extra columns.
+ACTIVITY_COLUMNS = ["s_index", "s_index_err", "log_rhk", "log_rhk_err", "halpha_index", "halpha_index_err",
+                    "nad_index", "nad_index_err"]
 
 #: The contract columns (shared/interface.md), in order; extra columns follow.
 COLUMNS = ["file", "object", "bjd_tdb", "rv", "rv_err", "berv", "rv_topo", "fwhm", "contrast", "snr",
@@ -81,7 +85,8 @@ def require_parquet(path: str) -> None:
 def rows_to_frame(rows: list[dict]) -> pd.DataFrame:
     """Rows to a DataFrame with the contract columns first and the extras after."""
     sb2 = SB2_COLUMNS if any("rv2" in r for r in rows) else []
-    cols = COLUMNS + sb2 + EXTRA_COLUMNS
+    act = ACTIVITY_COLUMNS if any("s_index" in r for r in rows) else []
+    cols = COLUMNS + sb2 + EXTRA_COLUMNS + act
     extra = [k for r in rows for k in r if k not in cols and not k.startswith("_")]
     cols += list(dict.fromkeys(extra))
     rows = [{OLD_NAMES.get(k, k): v for k, v in r.items()} for r in rows]  # rows kept in an older store

@@ -16,8 +16,9 @@ Fit
     of degree ``poly_degree`` (default 3) in the pixel position x in -1..1, fitted together with the
     shift so a continuum mismatch between spectrum and template can neither bias nor inflate it (the
     standard least-squares template matching with a multiplicative low-order polynomial, e.g.
-    Anglada-Escude & Butler 2012, ApJS 200, 15; Zechmeister et al. 2018, A&A 609, A12), with ``delta = ln(1 + rv_topo/c)`` relative to the template's frame, by
-    Gauss-Newton (with the exact curvature term for the velocity) and variances
+    Anglada-Escude & Butler 2012, ApJS 200, 15; Zechmeister et al. 2018, A&A 609, A12), with
+    ``delta = ln(1 + rv_topo/c)`` relative to the template's frame, by Gauss-Newton (with the exact
+    curvature term for the velocity) and variances
     ``var_spectrum + P(x)^2 var_template``: the template's noise
     enters the weights and hence the error from the curvature of chi-square.  The template is an
     exact cubic B-spline through its points (prefiltered with ``scipy.ndimage.spline_filter1d``),

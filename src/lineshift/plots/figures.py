@@ -270,3 +270,25 @@ def plot_rv_bisector(series, offsets, corr: dict, path: str) -> str:
                  + ("  SIGNIFICANT" if corr["significant"] else ""), fontsize=9)
     fig.tight_layout()
     return _save(fig, path)
+
+
+def plot_indicator_grid(series, offsets, corr: dict[str, dict], path: str) -> str:
+    """One panel per indicator: the indicator against (offset-aligned) velocity, with Pearson/Spearman r."""
+    names = list(corr)
+    ncol = min(3, len(names))
+    nrow = -(-len(names) // ncol)
+    fig, axes = plt.subplots(nrow, ncol, figsize=(4.2 * ncol, 3.4 * nrow), squeeze=False)
+    aligned = series.rv - np.array([offsets.get(d, 0.0) for d in series.dataset])
+    for ax, name in zip(axes.flat, names, strict=False):
+        v = series.indicators[name]
+        use = ~series.flag & np.isfinite(v)
+        ax.plot(aligned[use], v[use], "o", ms=3.5)
+        c = corr[name]
+        ax.set_xlabel("rv - data-set offset (m/s)", fontsize=8)
+        ax.set_ylabel(name, fontsize=8)
+        ax.set_title(f"r = {c['pearson_r']:+.2f} (p {c['pearson_p']:.2g}), rho = {c['spearman_r']:+.2f}"
+                     + ("  SIGNIFICANT" if c["significant"] else ""), fontsize=8)
+    for ax in list(axes.flat)[len(names):]:
+        ax.set_visible(False)
+    fig.tight_layout()
+    return _save(fig, path)

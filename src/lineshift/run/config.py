@@ -12,6 +12,7 @@ Example (every key optional)::
     parallax = 21.4           # mas      }
     epoch = 2016.0            # Julian year of the catalogue position }
     radial_velocity = 14230.0 # m/s, used with the space motion
+    b_minus_v = 0.65          # B-V colour, for log R'HK
 
     [site]                    # lon/lat/height (deg, deg, m, WGS84) or x/y/z (geocentric m)
     lon = 35.2133
@@ -29,6 +30,8 @@ Example (every key optional)::
     telluric_bands = "line_lists/telluric_bands.csv"   # or false to disable
     continuum_degree = 4
     ephemeris = "/path/to/de421.bsp"         # or "builtin"
+    activity = true           # activity indices (S-index, H-alpha, Na I D) in the table
+    mount_wilson_calibration = [0.0, 1.0]    # S_MW = a + b S_instrument, this instrument's coefficients
 
 Unknown sections or keys, and values of the wrong type, are a :class:`ConfigError` (exit 2).
 Nothing read from a config is evaluated or unpickled.
@@ -47,11 +50,12 @@ _NUM = (int, float)
 SCHEMA: dict[str, dict[str, tuple]] = {
     "target": {"object": (str,), "ra": (str, *_NUM), "dec": (str, *_NUM), "frame": (str,),
                "equinox": (str, *_NUM), "pm_ra_cosdec": _NUM, "pm_dec": _NUM, "parallax": _NUM,
-               "epoch": _NUM, "radial_velocity": _NUM},
+               "epoch": _NUM, "radial_velocity": _NUM, "b_minus_v": _NUM},
     "site": {"lon": _NUM, "lat": _NUM, "height": _NUM, "x": _NUM, "y": _NUM, "z": _NUM},
     "measure": {"mask": (str,), "method": (str,), "medium": (str,), "velocity_range": (list,),
                 "velocity_step": _NUM, "box_width": _NUM, "systemic_velocity": _NUM,
-                "telluric_bands": (str, bool), "continuum_degree": (int,), "ephemeris": (str,)},
+                "telluric_bands": (str, bool), "continuum_degree": (int,), "ephemeris": (str,),
+                "activity": (bool,), "mount_wilson_calibration": (list,)},
 }
 
 
@@ -118,6 +122,12 @@ def _validate(cfg: dict, path: str) -> None:
         if len(vr) != 2 or not all(isinstance(v, _NUM) and not isinstance(v, bool) for v in vr) or vr[0] >= vr[1]:
             raise ConfigError("[measure] velocity_range must be [low, high] in m/s with low < high", path=path)
         m["velocity_range"] = (float(vr[0]), float(vr[1]))
+    if "mount_wilson_calibration" in m:
+        ab = m["mount_wilson_calibration"]
+        if len(ab) != 2 or not all(isinstance(v, _NUM) and not isinstance(v, bool) for v in ab) or ab[1] == 0:
+            raise ConfigError("[measure] mount_wilson_calibration must be [a, b] with S_MW = a + b S and b != 0",
+                              path=path)
+        m["mount_wilson_calibration"] = (float(ab[0]), float(ab[1]))
     for key in ("velocity_step", "box_width"):
         if key in m and m[key] <= 0:
             raise ConfigError(f"[measure] {key} must be positive (m/s)", path=path)

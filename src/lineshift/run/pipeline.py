@@ -82,6 +82,9 @@ class MeasureSettings:
     systemic_velocity: float | None = None
     keep_ccf: bool = False
     components: int = 1
+    activity: bool = False                        # activity indices (lineshift.measure.activity)
+    mount_wilson_calibration: tuple[float, float] | None = None   # S_MW = a + b S_instrument
+    b_minus_v: float | None = None                # for log R'HK
 
     def __post_init__(self):
         if self.method not in ENGINES:
@@ -196,9 +199,9 @@ def measure_task(task: Task, ctx: Context) -> dict:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", RuntimeWarning)
             if s.components == 2:
-                return _two_component_row(task, obs, orders, ctx)
+                return _with_activity(_two_component_row(task, obs, orders, ctx), spectrum, s)
             if ctx.template is not None:
-                return _template_row(task, obs, orders, ctx)
+                return _with_activity(_template_row(task, obs, orders, ctx), spectrum, s)
             res = ENGINES[s.method](orders, ctx.mask, s.search, berv=task.berv, path=task.path)
     except LineshiftError as exc:
         exc.path = exc.path or task.path
@@ -224,6 +227,23 @@ def measure_task(task: Task, ctx: Context) -> dict:
     row["_orders"] = [dict(o) for o in res.orders]
     if s.keep_ccf:
         row["_ccf"] = (res.velocity, res.ccf, res.model, res.bisector)
+    return _with_activity(row, spectrum, s)
+
+
+def _with_activity(row: dict, spectrum, s: MeasureSettings) -> dict:
+    """Add the activity indices (``--activity``) to a measured row; bands placed at its ``rv_topo``."""
+    if not s.activity:
+        return row
+    from lineshift.measure.activity import measure_activity, vacuum_bands
+
+    tell = None if s.telluric_bands is False else read_telluric_bands(s.telluric_bands or None)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        res = measure_activity(spectrum.orders, float(row["rv_topo"]), vacuum_bands(airvac.air_to_vacuum),
+                               telluric_bands=tell, calibration=s.mount_wilson_calibration, bv=s.b_minus_v)
+    row.update(res.as_row())
+    if res.notes:
+        row["notes"] = "; ".join([n for n in (row.get("notes") or "",) if n] + res.notes)
     return row
 
 

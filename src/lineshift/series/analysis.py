@@ -32,8 +32,8 @@ from lineshift.linefit import weighted_line
 from lineshift.model import OLD_COLUMN_NAMES
 from lineshift.series.orbit import Orbit, jupiter_masses, mass_function, minimum_mass, radial_velocity, semi_major_axis
 
-__all__ = ["INDICATORS", "Series", "bin_series", "bisector_correlation", "fit_orbit", "flag_outliers", "jitter",
-           "periodogram", "read_series", "secondary_orbit"]
+__all__ = ["CORRELATED", "INDICATORS", "Series", "bin_series", "bisector_correlation", "correlation", "fit_orbit",
+           "flag_outliers", "indicator_correlations", "jitter", "periodogram", "read_series", "secondary_orbit"]
 
 CAVEATS = ("m sin i is a minimum mass: the orbital inclination is unknown.",
            "A periodogram peak can be an alias of the sampling (1 d, 1 yr, or a peak of the window function) "
@@ -41,7 +41,8 @@ CAVEATS = ("m sin i is a minimum mass: the orbital inclination is unknown.",
 
 
 #: measure-table columns carried into the series (and through binning) where present; each may have ``_err``
-INDICATORS = ("fwhm", "contrast", "bisector_span", "rv_chromatic_slope", "rv2", "fwhm2", "contrast2", "flux_ratio")
+INDICATORS = ("fwhm", "contrast", "bisector_span", "rv_chromatic_slope", "s_index", "log_rhk", "halpha_index",
+              "nad_index", "rv2", "fwhm2", "contrast2", "flux_ratio")
 
 
 @dataclass
@@ -435,6 +436,58 @@ def bisector_correlation(s: Series, offsets: dict[str, float]) -> dict | None:
     r, p = pearsonr(aligned, s.bis[use])
     slope = float(np.polyfit(aligned, s.bis[use], 1)[0])
     return {"r": float(r), "p_value": float(p), "n": int(use.sum()), "slope": slope, "significant": bool(p < 0.01)}
+
+
+#: Indicator columns of a measure table that ``series`` correlates with the velocity (when present).
+#: ``bisector_span`` is accepted as another name of the bisector-span column.
+#: the indicators the velocity is correlated with (line shape and activity; not the secondary)
+CORRELATED = ("fwhm", "contrast", "bisector_span", "rv_chromatic_slope", "s_index", "log_rhk", "halpha_index",
+              "nad_index")
+
+
+def _pearson(x: np.ndarray, y: np.ndarray) -> tuple[float, float]:
+    """Pearson r and its two-sided p-value from Student's t with n - 2 degrees of freedom.
+
+    t = r sqrt((n - 2) / (1 - r^2)) is exactly t-distributed for independent Gaussian x, y (Fisher 1915;
+    any statistics text).
+    """
+    from scipy.stats import t as student_t
+
+    n = x.size
+    dx, dy = x - x.mean(), y - y.mean()
+    den = np.sqrt(np.dot(dx, dx) * np.dot(dy, dy))
+    if den == 0:
+        return float("nan"), float("nan")
+    r = float(np.clip(np.dot(dx, dy) / den, -1.0, 1.0))
+    if abs(r) == 1.0:
+        return r, 0.0
+    tval = r * np.sqrt((n - 2) / (1 - r * r))
+    return r, float(2 * student_t.sf(abs(tval), n - 2))
+
+
+def correlation(x: np.ndarray, y: np.ndarray) -> dict:
+    """Pearson and Spearman coefficients with p-values (Spearman: Pearson of the ranks, ties averaged,
+    p from the same t approximation)."""
+    from scipy.stats import rankdata
+
+    r, p = _pearson(x, y)
+    rs, ps = _pearson(rankdata(x), rankdata(y))
+    return {"pearson_r": r, "pearson_p": p, "spearman_r": rs, "spearman_p": ps, "n": int(x.size),
+            "significant": bool(p < 0.01 or ps < 0.01)}
+
+
+def indicator_correlations(s: Series, offsets: dict[str, float]) -> dict[str, dict]:
+    """Correlation of the (offset-aligned) velocity with every indicator present (>= 5 usable points)."""
+    aligned = s.rv - np.array([offsets.get(d, 0.0) for d in s.dataset])
+    out = {}
+    for name in CORRELATED:
+        if name not in s.indicators:
+            continue
+        v = s.indicators[name]
+        use = ~s.flag & np.isfinite(v) & np.isfinite(aligned)
+        if use.sum() >= 5:
+            out[name] = correlation(aligned[use], v[use])
+    return out
 
 
 def secondary_orbit(s: Series, fit: OrbitFit) -> dict | None:
