@@ -32,7 +32,7 @@ import numpy as np
 
 from lineshift.errors import LineshiftError, MetadataError, SpectrumFormatError
 from lineshift.io import airvac
-from lineshift.io.metadata import read_site, read_target, read_time
+from lineshift.io.metadata import read_site, read_spec_frame, read_target, read_time
 from lineshift.model import Observation, Order, Spectrum
 
 __all__ = ["load_spectrum", "read_observation"]
@@ -451,11 +451,15 @@ def _observation(get, path: str, layout: str, medium: str, notes: list) -> Obser
     mjd, scale, source, exptime = read_time(get, path)
     ra, dec, frame, equinox = read_target(get, path)
     site = read_site(get, path)
+    spec_frame, frame_note = read_spec_frame(get, path)
+    if frame_note is not None:
+        notes.append(frame_note)
     obj = get("OBJECT")
     return Observation(
         path=path, layout=layout, object=str(obj).strip() if obj is not None else "",
         mjd_mid=mjd, time_scale=scale, time_source=source, exptime=exptime, ra_deg=ra, dec_deg=dec,
-        frame=frame, equinox=equinox, site_xyz=site, medium=medium, notes=tuple(notes))
+        frame=frame, equinox=equinox, site_xyz=site, medium=medium, spec_frame=spec_frame,
+        notes=tuple(notes))
 
 
 def _build_orders(parts, medium: str, path: str, notes: list) -> list[Order]:

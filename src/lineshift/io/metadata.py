@@ -13,6 +13,9 @@ Rules (``shared/interface.md``), first found wins:
   mid-exposure time: for a 30-minute exposure that would be a ~30 m/s error in the correction.
 * target: ``RA`` / ``DEC`` in degrees or sexagesimal (RA in hours), ``RADESYS`` (default ICRS),
   ``EQUINOX``.
+* spectral frame: ``SPECSYS`` (Greisen et al. 2006, FITS WCS Paper III, sect. 7): ``TOPOCENT`` or
+  absent = topocentric (the barycentric correction is applied); ``BARYCENT`` = the wavelengths are
+  already barycentric (no second correction); every other standard of rest is refused.
 * site: ``OBSGEO-X/Y/Z`` (geocentric metres) or ``OBSGEO-L/B/H`` (degrees, degrees, metres, WGS84).
 """
 
@@ -24,7 +27,8 @@ from collections.abc import Callable
 
 from lineshift.errors import MetadataError
 
-__all__ = ["parse_dec", "parse_ra", "read_site", "read_target", "read_time", "time_scale"]
+__all__ = ["parse_dec", "parse_ra", "read_site", "read_spec_frame", "read_target", "read_time",
+           "time_scale"]
 
 #: FITS TIMESYS value -> (astropy scale, offset added to the value in seconds, note for time_source).
 _SCALES: dict[str, tuple[str, float, str]] = {
@@ -233,3 +237,36 @@ def geodetic_to_xyz(lon: float, lat: float, height: float, *, path: str | None =
             f"site lon={lon}, lat={lat}, height={height} is not a place on the Earth", path=path)
     loc = EarthLocation.from_geodetic(lon * u.deg, lat * u.deg, height * u.m, ellipsoid="WGS84")
     return (float(loc.x.to_value(u.m)), float(loc.y.to_value(u.m)), float(loc.z.to_value(u.m)))
+
+
+#: FITS Paper III (Greisen et al. 2006, table 12) SPECSYS values we refuse, with the reason.
+_OTHER_FRAMES = {
+    "GEOCENTR": "geocentric", "HELIOCEN": "heliocentric", "LSRK": "kinematic local standard of rest",
+    "LSRD": "dynamical local standard of rest", "GALACTOC": "galactocentric", "LOCALGRP": "Local Group",
+    "CMBDIPOL": "CMB dipole", "SOURCE": "source rest frame",
+}
+
+
+def read_spec_frame(get: Getter, path: str | None = None) -> tuple[str, str | None]:
+    """The frame the file's wavelengths are in: ``topocentric`` or ``barycentric``, and a note.
+
+    ``SPECSYS`` absent or ``TOPOCENT``: topocentric.  ``BARYCENT``: barycentric (``VELOSYS``, the
+    velocity the writer removed, is quoted in the note).  Any other standard of rest of FITS Paper
+    III is refused: turning it back into a barycentric one needs the writer's exact definition.
+    """
+    value = get("SPECSYS")
+    text = str(value).strip().upper() if value is not None else "TOPOCENT"
+    if text in ("TOPOCENT", ""):
+        return "topocentric", None
+    if text == "BARYCENT":
+        velosys = get("VELOSYS")
+        extra = ""
+        if velosys is not None:
+            extra = f", VELOSYS = {_num(velosys, 'VELOSYS', path):.3f} m/s removed by the writer"
+        return "barycentric", f"SPECSYS = BARYCENT: wavelengths already barycentric{extra}"
+    if text in _OTHER_FRAMES:
+        raise MetadataError(
+            f"SPECSYS = {text!r} ({_OTHER_FRAMES[text]}) is not supported: only TOPOCENT and BARYCENT "
+            "spectra can be measured", path=path, status="unsupported frame")
+    raise MetadataError(f"SPECSYS = {text!r} is not a FITS spectral reference frame", path=path,
+                        status="unsupported frame")
