@@ -270,3 +270,17 @@ def test_log10_dispersion_with_dc_flag():
     wave, medium = wcs_wavelengths(header, 100)
     assert_allclose(wave, 5000.0 * 10 ** (1e-5 * np.arange(100)), rtol=1e-14)
     assert medium == "vacuum"
+
+
+def test_harmless_fits_warning_is_a_note_not_an_error(tmp_path):
+    # outside reference: FITS standard 4.0 sect. 4.4.2.5: BLANK applies only to integer arrays, so on a
+    # float image it is meaningless (astropy warns and ignores it); the data are intact
+    card = {"CTYPE1": "WAVE", "CRVAL1": 5000.0, "CDELT1": 0.02, "CRPIX1": 1.0}
+    good = write_1d(tmp_path / "good.fits", np.full(64, 50.0), card, err=np.full(64, 5.0))
+    with fits.open(good) as hdul:
+        hdul[0].header["BLANK"] = -32768
+        hdul.writeto(tmp_path / "blank.fits", output_verify="ignore")
+    sp = load_spectrum(str(tmp_path / "blank.fits"))
+    assert_allclose(sp.orders[0].flux, 50.0)
+    assert any("BLANK" in n for n in sp.obs.notes)
+    assert any("BLANK" in n for n in read_observation(str(tmp_path / "blank.fits")).notes)

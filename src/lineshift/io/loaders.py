@@ -83,15 +83,27 @@ def _open_fits(raw: bytes, path: str, *, read_data: bool = True):
             f"is truncated ({len(raw)} bytes is not a whole number of 2880-byte FITS blocks)",
             path=path, status="truncated")
     try:
-        with warnings.catch_warnings():
-            warnings.simplefilter("error")
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
             hdul = fits.open(io.BytesIO(raw), memmap=False, lazy_load_hdus=False)
             if read_data:
                 for hdu in hdul:
                     _ = hdu.data  # force reading: a damaged data unit fails here, not later
     except Exception as exc:  # astropy raises many types for damaged files
         raise SpectrumFormatError(f"is not a readable FITS file ({_short(exc)})", path=path) from None
-    return hdul
+    notes = []
+    for w in caught:
+        text = _short(w.message)
+        if any(word in text.lower() for word in _FATAL_WARNINGS):
+            raise SpectrumFormatError(f"is not a readable FITS file ({text})", path=path, status="truncated")
+        note = f"FITS: {text}"
+        if note not in notes:
+            notes.append(note)
+    return hdul, notes
+
+
+#: Warnings while opening that do mean the data are damaged (everything else becomes a note).
+_FATAL_WARNINGS = ("truncated", "unexpected end of file")
 
 
 def _short(exc: BaseException) -> str:
@@ -163,9 +175,12 @@ def _load(path: str, *, medium: str | None, arrays: bool):
     path = os.fspath(path)
     raw = _read_bytes(path)
     if _is_fits(raw):
-        hdul = _open_fits(raw, path, read_data=arrays)
+        hdul, fits_notes = _open_fits(raw, path, read_data=arrays)
         try:
-            return _load_fits(hdul, path, medium=medium, arrays=arrays)
+            obs, orders = _load_fits(hdul, path, medium=medium, arrays=arrays)
+            if fits_notes:
+                obs = replace(obs, notes=(*fits_notes, *obs.notes))
+            return obs, orders
         except LineshiftError:
             raise
         except Exception as exc:  # any surprise inside a damaged header is still a format error
