@@ -177,3 +177,21 @@ def test_sample_spectra_recover_the_invented_companion(tmp_path):
     assert abs(s["semi_amplitude"] - o.semi_amplitude) < 3 * s["errors"]["semi_amplitude"]
     assert abs(s["eccentricity"] - o.eccentricity) < 3 * s["errors"]["eccentricity"] + 0.02
     assert s["fap"] < 1e-6
+
+
+def test_jitter_small_sample_correction_moves_the_root():
+    # outside reference (common practice): with equal errors sigma, the maximum-likelihood excess
+    # variance is mean(r^2) - sigma^2 and its unbiased version with p fitted parameters is
+    # sum(r^2)/(n - p) - sigma^2
+    from lineshift.series.analysis import jitter
+
+    rng = np.random.default_rng(4)
+    n, sigma = 12, 2.0
+    resid = rng.normal(0.0, 5.0, n)
+    err = np.full(n, sigma)
+    ml = np.sqrt(np.mean(resid**2) - sigma**2)
+    for p in (0, 1, 3):
+        unbiased = np.sqrt(np.sum(resid**2) / (n - p) - sigma**2)
+        assert jitter(resid, err, n_params=p) == pytest.approx(unbiased, rel=1e-9)
+    assert jitter(resid, err, 0) == pytest.approx(ml, rel=1e-9)
+    assert jitter(resid, err, 3) > jitter(resid, err, 0) * 1.1
