@@ -26,6 +26,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from lineshift._offline import offline_call
 from lineshift.errors import ConfigError, DegradedAccuracyWarning, IERSPredictionWarning, MetadataError
 from lineshift.model import C_MS, Observation
 
@@ -104,6 +105,7 @@ def _check(obs: Observation) -> None:
                             path=obs.path, status="missing site")
 
 
+@offline_call
 def barycentric_batch(observations: list[Observation], *, target: Target | None = None,
                       ephemeris: str | None = None) -> list[BarycentricResult | MetadataError]:
     """BERV and BJD_TDB for many observations, one astropy call per group.
