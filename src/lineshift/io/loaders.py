@@ -308,7 +308,8 @@ def wcs_wavelengths(header, n: int, path: str = "") -> tuple[np.ndarray, str]:
 
     Linear: ``lambda = CRVAL1 + CDELT1 (p - CRPIX1)``; ``-LOG``: ``lambda = CRVAL1 exp(CDELT1 (p -
     CRPIX1) / CRVAL1)`` (Greisen et al. 2006, FITS WCS Paper III, sect. 3.2), p = 1..n.  The older
-    convention ``DC-FLAG = 1`` (CRVAL1, CDELT1 in log10 Angstrom) is also read.
+    convention ``DC-FLAG = 1`` (CRVAL1, CDELT1 in log10 Angstrom) is also read.  ``CD1_1`` wins over
+    ``CDELT1``; ``PC1_1`` multiplies ``CDELT1`` (FITS WCS Paper I, sect. 2.1.2).
     Returns the wavelengths and the medium (``air`` for ``AWAV*``).
     """
     ctype = str(header.get("CTYPE1", "")).strip().upper()
@@ -321,10 +322,14 @@ def wcs_wavelengths(header, n: int, path: str = "") -> tuple[np.ndarray, str]:
     try:
         crval = float(header["CRVAL1"])
         crpix = float(header.get("CRPIX1", 1.0))
-        delt = header.get("CDELT1", header.get("CD1_1"))
-        if delt is None:
+        # FITS WCS Paper I (Greisen & Calabretta 2002, sect. 2.1.2): CDi_j, when present, replaces
+        # CDELTi and PCi_j; otherwise the scale is CDELTi * PCi_j (PC1_1 defaults to 1)
+        if header.get("CD1_1") is not None:
+            delt = float(header["CD1_1"])
+        elif header.get("CDELT1") is not None:
+            delt = float(header["CDELT1"]) * float(header.get("PC1_1", 1.0))
+        else:
             raise KeyError("CDELT1")
-        delt = float(delt)
     except KeyError as exc:
         raise SpectrumFormatError(f"spectral WCS lacks {exc.args[0]}", path=path, status="bad wavelengths") from None
     except (TypeError, ValueError):
