@@ -15,6 +15,15 @@ from lineshift import sim
 _LOCAL = ("127.0.0.1", "localhost", "::1")
 
 
+@pytest.fixture(scope="session", autouse=True)
+def _astropy_offline():
+    """The tests' own astropy calls run offline too (lineshift no longer changes this on import)."""
+    from lineshift._offline import offline
+
+    with offline():
+        yield
+
+
 @pytest.fixture(autouse=True)
 def _no_network(monkeypatch):
     """Any connection to a non-loopback address fails the test (astropy must run offline)."""

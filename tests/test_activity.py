@@ -174,5 +174,5 @@ def test_measure_activity_switch(tmp_path):
     h = BANDS["s_index"][0].width
     raw = 1.0 - _gauss_triangle(0.6, 0.3, h) / h  # analytic, as in test_s_index_analytic_line
     assert t.s_index[0] == pytest.approx(0.02 + 0.25 * raw, abs=4 * t.s_index_err[0])
-    assert t.log_rhk[0] == pytest.approx(activity.log_rhk(t.s_index[0], 0.65)[0], abs=1e-9)
+    assert t.log_rhk[0] == pytest.approx(activity.log_rhk(t.s_index[0], 0.65)[0], abs=2e-6)  # CSV keeps 1e-6
     assert np.isnan(t.halpha_index[0]) and "halpha_index: Halpha not covered" in t.notes[0]

@@ -41,9 +41,9 @@ def test_measure_writes_the_contract_table(sample_set, tmp_path, capsys):
         assert np.all(np.abs(d - d.mean()) < 5 * g.rv_err + 1.0)
     assert np.all(np.abs(m.rv - m.rv_true) < 100.0)  # mask zero point within 0.1 km/s
     assert (m.n_lines > 10).all() and (m.contrast > 0.05).all() and (m.fwhm > 3000).all()
-    # rv = rv_topo (+) berv, multiplicatively
+    # rv = rv_topo (+) berv, multiplicatively (to the CSV rounding of 0.001 m/s per column)
     c = 299792458.0
-    assert np.allclose(m.rv, m.rv_topo + m.berv + m.rv_topo * m.berv / c, rtol=0, atol=1e-6)
+    assert np.allclose(m.rv, m.rv_topo + m.berv + m.rv_topo * m.berv / c, rtol=0, atol=1.5e-3)
 
 
 @pytest.mark.parametrize("ext", [".ecsv", ".fits", ".parquet"])

@@ -41,6 +41,8 @@ WCS_CASES = [
     {"CTYPE1": "WAVE-LOG", "CRVAL1": 5000.0, "CDELT1": 5000.0 * 2.5e-6, "CRPIX1": 1.0, "CUNIT1": "Angstrom"},
     {"CTYPE1": "AWAV", "CRVAL1": 0.5, "CDELT1": 2e-6, "CRPIX1": 1.0, "CUNIT1": "um"},
     {"CTYPE1": "AWAV-LOG", "CRVAL1": 6000.0, "CDELT1": 6000.0 * 3e-6, "CRPIX1": 100.0, "CUNIT1": "Angstrom"},
+    # FITS WCS Paper I sect. 2.1.2: PC1_1 scales CDELT1
+    {"CTYPE1": "WAVE", "CRVAL1": 5000.0, "CDELT1": 0.01, "PC1_1": 2.5, "CRPIX1": 3.0, "CUNIT1": "Angstrom"},
 ]
 
 
@@ -58,6 +60,15 @@ def test_wcs_wavelengths_match_astropy_wcs(card):
     ref_aa = (np.asarray(ref) * u.Unit(w.wcs.cunit[0])).to_value(u.AA)
     assert np.max(np.abs(ours - ref_aa) / ref_aa) * C_MS < 1e-3  # m/s
     assert medium == ("air" if card["CTYPE1"].startswith("AWAV") else "vacuum")
+
+
+def test_cd_wins_over_cdelt():
+    # FITS WCS Paper I (Greisen & Calabretta 2002) sect. 2.1.2: with CDi_j present, CDELTi is ignored
+    header = fits.Header()
+    for k, v in {"CTYPE1": "WAVE", "CRVAL1": 5000.0, "CDELT1": 0.5, "CD1_1": 0.02, "CRPIX1": 1.0}.items():
+        header[k] = v
+    wave, _ = wcs_wavelengths(header, 100)
+    assert_allclose(wave, 5000.0 + 0.02 * np.arange(100), rtol=1e-14)
 
 
 def test_air_wcs_is_converted_to_vacuum(tmp_path):
@@ -270,3 +281,17 @@ def test_log10_dispersion_with_dc_flag():
     wave, medium = wcs_wavelengths(header, 100)
     assert_allclose(wave, 5000.0 * 10 ** (1e-5 * np.arange(100)), rtol=1e-14)
     assert medium == "vacuum"
+
+
+def test_harmless_fits_warning_is_a_note_not_an_error(tmp_path):
+    # outside reference: FITS standard 4.0 sect. 4.4.2.5: BLANK applies only to integer arrays, so on a
+    # float image it is meaningless (astropy warns and ignores it); the data are intact
+    card = {"CTYPE1": "WAVE", "CRVAL1": 5000.0, "CDELT1": 0.02, "CRPIX1": 1.0}
+    good = write_1d(tmp_path / "good.fits", np.full(64, 50.0), card, err=np.full(64, 5.0))
+    with fits.open(good) as hdul:
+        hdul[0].header["BLANK"] = -32768
+        hdul.writeto(tmp_path / "blank.fits", output_verify="ignore")
+    sp = load_spectrum(str(tmp_path / "blank.fits"))
+    assert_allclose(sp.orders[0].flux, 50.0)
+    assert any("BLANK" in n for n in sp.obs.notes)
+    assert any("BLANK" in n for n in read_observation(str(tmp_path / "blank.fits")).notes)

@@ -149,8 +149,9 @@ def test_cleaning_binning_jitter_and_export(tmp_path, capfd):
     assert main(["series", path, "-o", str(binned), "--bin", "1", "-q"]) == 0
     b = pd.read_csv(binned, comment="#")
     row = b[b.n_binned == 3].iloc[0]
-    assert row.rv_err == pytest.approx(2.0 / np.sqrt(3), rel=1e-9)
-    assert row.rv == pytest.approx(np.mean(rv[10:13]), rel=1e-12)
+    # the CSV keeps velocities to 0.001 m/s
+    assert row.rv_err == pytest.approx(2.0 / np.sqrt(3), abs=5e-4)
+    assert row.rv == pytest.approx(np.mean(rv[10:13]), abs=5e-4)
     assert len(b) == t.size - 1 - 2 - 1                     # dropped row, 3 -> 1, the flagged outlier
 
 
@@ -179,13 +180,15 @@ def test_binning_carries_every_indicator_with_propagated_errors(tmp_path):
     sel = slice(3, 6)
     for name in ("fwhm", "bisector_span"):
         w = 1 / extra[f"{name}_err"][sel] ** 2
-        assert row[name] == pytest.approx(np.sum(w * extra[name][sel]) / np.sum(w), rel=1e-12)
-        assert row[f"{name}_err"] == pytest.approx(1 / np.sqrt(np.sum(w)), rel=1e-12)
-    assert row.rv_chromatic_slope_err == pytest.approx(0.5 / np.sqrt(3), rel=1e-12)
+        # the CSV keeps velocities to 0.001 m/s
+        assert row[name] == pytest.approx(np.sum(w * extra[name][sel]) / np.sum(w), abs=5e-4)
+        assert row[f"{name}_err"] == pytest.approx(1 / np.sqrt(np.sum(w)), abs=5e-4)
+    assert row.rv_chromatic_slope_err == pytest.approx(0.5 / np.sqrt(3), abs=5e-4)
     assert np.isnan(row.rv2) and np.isnan(row.rv2_err)          # absent stays absent, never a number
     single = b[b.n_binned == 1].iloc[0]
     k = int(np.flatnonzero(np.isclose(t, single.bjd_tdb))[0])
-    assert single.bisector_span == pytest.approx(bis[k]) and single.bisector_span_err == pytest.approx(bis_err[k])
+    assert single.bisector_span == pytest.approx(bis[k], abs=5e-4)
+    assert single.bisector_span_err == pytest.approx(bis_err[k], abs=5e-4)
 
 
 def test_series_usage_errors(tmp_path, capfd):
@@ -213,3 +216,21 @@ def test_sample_spectra_recover_the_invented_companion(tmp_path):
     assert abs(s["semi_amplitude"] - o.semi_amplitude) < 3 * s["errors"]["semi_amplitude"]
     assert abs(s["eccentricity"] - o.eccentricity) < 3 * s["errors"]["eccentricity"] + 0.02
     assert s["fap"] < 1e-6
+
+
+def test_jitter_small_sample_correction_moves_the_root():
+    # outside reference (common practice): with equal errors sigma, the maximum-likelihood excess
+    # variance is mean(r^2) - sigma^2 and its unbiased version with p fitted parameters is
+    # sum(r^2)/(n - p) - sigma^2
+    from lineshift.series.analysis import jitter
+
+    rng = np.random.default_rng(4)
+    n, sigma = 12, 2.0
+    resid = rng.normal(0.0, 5.0, n)
+    err = np.full(n, sigma)
+    ml = np.sqrt(np.mean(resid**2) - sigma**2)
+    for p in (0, 1, 3):
+        unbiased = np.sqrt(np.sum(resid**2) / (n - p) - sigma**2)
+        assert jitter(resid, err, n_params=p) == pytest.approx(unbiased, rel=1e-9)
+    assert jitter(resid, err, 0) == pytest.approx(ml, rel=1e-9)
+    assert jitter(resid, err, 3) > jitter(resid, err, 0) * 1.1

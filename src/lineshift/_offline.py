@@ -1,4 +1,4 @@
-"""Configure astropy so that lineshift never touches the network.
+"""Run lineshift's astropy work offline, without changing the host's settings.
 
 The IERS Earth-orientation tables come from the bundled ``astropy-iers-data`` package.  Without
 this, astropy tries to download a fresh IERS-A table once the bundled one is about 30 days old and,
@@ -10,12 +10,32 @@ network): sites come from headers, the config or ``--site``.
 
 from __future__ import annotations
 
+import contextlib
+import functools
 
-def configure_offline() -> None:
-    """Set astropy's configuration for offline use.  Idempotent; called on package import."""
+
+@contextlib.contextmanager
+def offline():
+    """Run the enclosed work with astropy offline, restoring the caller's settings afterwards.
+
+    Uses astropy's ``conf.set_temp``, so nothing outside the ``with`` block changes.  Re-entrant.
+    """
     from astropy.utils import data, iers
 
-    iers.conf.auto_download = False
-    iers.conf.auto_max_age = None
-    iers.conf.iers_degraded_accuracy = "warn"
-    data.conf.allow_internet = False
+    with contextlib.ExitStack() as stack:
+        stack.enter_context(iers.conf.set_temp("auto_download", False))
+        stack.enter_context(iers.conf.set_temp("auto_max_age", None))
+        stack.enter_context(iers.conf.set_temp("iers_degraded_accuracy", "warn"))
+        stack.enter_context(data.conf.set_temp("allow_internet", False))
+        yield
+
+
+def offline_call(func):
+    """Decorator: ``func`` runs inside :func:`offline`."""
+
+    @functools.wraps(func)
+    def wrapper(*args, **kwargs):
+        with offline():
+            return func(*args, **kwargs)
+
+    return wrapper

@@ -15,6 +15,7 @@ from collections.abc import Sequence
 import astropy.units as u
 from astropy.table import QTable
 
+from lineshift._offline import offline_call
 from lineshift.calib.barycentric import Target
 from lineshift.errors import ConfigError
 from lineshift.io.linelists import read_mask
@@ -35,6 +36,7 @@ def _ms(value, name: str) -> float | None:
         raise ConfigError(f"{name} must be a velocity Quantity (e.g. 800 * u.m / u.s)") from None
 
 
+@offline_call
 def measure(spectra: Sequence[str] | str, mask: str | LineMask, *, velocity_range=None, velocity_step=None,
             box_width=None, site=None, ra=None, dec=None, medium: str | None = None,
             ephemeris: str | None = None, workers: int = 1) -> QTable:

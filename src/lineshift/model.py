@@ -48,6 +48,9 @@ class Observation:
     medium : str
         ``vacuum`` or ``air``: the medium the file's wavelengths were given in (the arrays
         themselves are always vacuum after loading).
+    spec_frame : str
+        ``topocentric`` or ``barycentric``: the frame of the file's wavelengths (from SPECSYS,
+        default topocentric); a barycentric file gets no second barycentric correction.
     notes : tuple of str
         Warnings raised while reading (e.g. Poisson variance assumed).
     """
@@ -65,6 +68,7 @@ class Observation:
     equinox: str | None = None
     site_xyz: tuple[float, float, float] | None = None
     medium: str = "vacuum"
+    spec_frame: str = "topocentric"
     notes: tuple[str, ...] = ()
 
     @property

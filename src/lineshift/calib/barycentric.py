@@ -6,6 +6,10 @@
   multiplicatively (Wright & Eastman 2014, PASP 126, 838): ``1 + rv/c = (1 + rv_topo/c)(1 + berv/c)``.
 * BJD_TDB: ``t.tdb + t.light_travel_time(target, kind="barycentric", location=site)`` (Eastman,
   Siverd & Gaudi 2010, PASP 122, 935).
+* A file whose wavelengths are already barycentric (``Observation.spec_frame == "barycentric"``,
+  from ``SPECSYS = 'BARYCENT'``) gets no second correction: its result has ``berv = 0`` (the
+  velocity composed with the measured shift, so ``rv`` = ``rv_topo`` for it), the BJD_TDB is
+  computed as for any file, and the BERV astropy gives for the instant is quoted in a note.
 * Proper motion, parallax and the catalogue epoch come from the config.  Given all of them (and a
   radial velocity) astropy's correction includes the secular change of the space motion itself;
   nothing is corrected twice.
@@ -22,6 +26,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from lineshift._offline import offline_call
 from lineshift.errors import ConfigError, DegradedAccuracyWarning, IERSPredictionWarning, MetadataError
 from lineshift.model import C_MS, Observation
 
@@ -100,6 +105,7 @@ def _check(obs: Observation) -> None:
                             path=obs.path, status="missing site")
 
 
+@offline_call
 def barycentric_batch(observations: list[Observation], *, target: Target | None = None,
                       ephemeris: str | None = None) -> list[BarycentricResult | MetadataError]:
     """BERV and BJD_TDB for many observations, one astropy call per group.
@@ -160,7 +166,12 @@ def barycentric_batch(observations: list[Observation], *, target: Target | None 
                     elif status[j] == "predicted":
                         notes = (PREDICTED_NOTE,)
                     degraded.append(status[j])
-                    results[i] = BarycentricResult(float(berv[j]), float(bjd[j]), notes)
+                    applied = float(berv[j])
+                    if observations[i].spec_frame == "barycentric":
+                        notes = (*notes, f"wavelengths already barycentric: no BERV applied (BERV at mid-exposure "
+                                         f"{applied:+.3f} m/s)")
+                        applied = 0.0
+                    results[i] = BarycentricResult(applied, float(bjd[j]), notes)
     for w in caught:
         text = str(w.message)
         if "IERS" in text or "polar motion" in text.lower() or "dubious year" in text.lower():

@@ -34,7 +34,16 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def main(argv: list[str] | None = None) -> int:
-    """Run the command line; returns the exit code."""
+    """Run the command line; returns the exit code (astropy offline for the run, restored after)."""
+    import matplotlib
+
+    from lineshift._offline import offline
+
+    with offline(), matplotlib.rc_context({"backend": "Agg"}):
+        return _main(argv)
+
+
+def _main(argv: list[str] | None) -> int:
     parser = build_parser()
     raw = list(sys.argv[1:] if argv is None else argv)
     # "--velocity-range -250000,-150000": a value starting with '-' is still the option's value

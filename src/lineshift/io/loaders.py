@@ -32,7 +32,7 @@ import numpy as np
 
 from lineshift.errors import LineshiftError, MetadataError, SpectrumFormatError
 from lineshift.io import airvac
-from lineshift.io.metadata import read_site, read_target, read_time
+from lineshift.io.metadata import read_site, read_spec_frame, read_target, read_time
 from lineshift.model import Observation, Order, Spectrum
 
 __all__ = ["load_spectrum", "read_observation"]
@@ -83,15 +83,27 @@ def _open_fits(raw: bytes, path: str, *, read_data: bool = True):
             f"is truncated ({len(raw)} bytes is not a whole number of 2880-byte FITS blocks)",
             path=path, status="truncated")
     try:
-        with warnings.catch_warnings():
-            warnings.simplefilter("error")
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
             hdul = fits.open(io.BytesIO(raw), memmap=False, lazy_load_hdus=False)
             if read_data:
                 for hdu in hdul:
                     _ = hdu.data  # force reading: a damaged data unit fails here, not later
     except Exception as exc:  # astropy raises many types for damaged files
         raise SpectrumFormatError(f"is not a readable FITS file ({_short(exc)})", path=path) from None
-    return hdul
+    notes = []
+    for w in caught:
+        text = _short(w.message)
+        if any(word in text.lower() for word in _FATAL_WARNINGS):
+            raise SpectrumFormatError(f"is not a readable FITS file ({text})", path=path, status="truncated")
+        note = f"FITS: {text}"
+        if note not in notes:
+            notes.append(note)
+    return hdul, notes
+
+
+#: Warnings while opening that do mean the data are damaged (everything else becomes a note).
+_FATAL_WARNINGS = ("truncated", "unexpected end of file")
 
 
 def _short(exc: BaseException) -> str:
@@ -163,9 +175,12 @@ def _load(path: str, *, medium: str | None, arrays: bool):
     path = os.fspath(path)
     raw = _read_bytes(path)
     if _is_fits(raw):
-        hdul = _open_fits(raw, path, read_data=arrays)
+        hdul, fits_notes = _open_fits(raw, path, read_data=arrays)
         try:
-            return _load_fits(hdul, path, medium=medium, arrays=arrays)
+            obs, orders = _load_fits(hdul, path, medium=medium, arrays=arrays)
+            if fits_notes:
+                obs = replace(obs, notes=(*fits_notes, *obs.notes))
+            return obs, orders
         except LineshiftError:
             raise
         except Exception as exc:  # any surprise inside a damaged header is still a format error
@@ -293,7 +308,8 @@ def wcs_wavelengths(header, n: int, path: str = "") -> tuple[np.ndarray, str]:
 
     Linear: ``lambda = CRVAL1 + CDELT1 (p - CRPIX1)``; ``-LOG``: ``lambda = CRVAL1 exp(CDELT1 (p -
     CRPIX1) / CRVAL1)`` (Greisen et al. 2006, FITS WCS Paper III, sect. 3.2), p = 1..n.  The older
-    convention ``DC-FLAG = 1`` (CRVAL1, CDELT1 in log10 Angstrom) is also read.
+    convention ``DC-FLAG = 1`` (CRVAL1, CDELT1 in log10 Angstrom) is also read.  ``CD1_1`` wins over
+    ``CDELT1``; ``PC1_1`` multiplies ``CDELT1`` (FITS WCS Paper I, sect. 2.1.2).
     Returns the wavelengths and the medium (``air`` for ``AWAV*``).
     """
     ctype = str(header.get("CTYPE1", "")).strip().upper()
@@ -306,10 +322,14 @@ def wcs_wavelengths(header, n: int, path: str = "") -> tuple[np.ndarray, str]:
     try:
         crval = float(header["CRVAL1"])
         crpix = float(header.get("CRPIX1", 1.0))
-        delt = header.get("CDELT1", header.get("CD1_1"))
-        if delt is None:
+        # FITS WCS Paper I (Greisen & Calabretta 2002, sect. 2.1.2): CDi_j, when present, replaces
+        # CDELTi and PCi_j; otherwise the scale is CDELTi * PCi_j (PC1_1 defaults to 1)
+        if header.get("CD1_1") is not None:
+            delt = float(header["CD1_1"])
+        elif header.get("CDELT1") is not None:
+            delt = float(header["CDELT1"]) * float(header.get("PC1_1", 1.0))
+        else:
             raise KeyError("CDELT1")
-        delt = float(delt)
     except KeyError as exc:
         raise SpectrumFormatError(f"spectral WCS lacks {exc.args[0]}", path=path, status="bad wavelengths") from None
     except (TypeError, ValueError):
@@ -451,11 +471,15 @@ def _observation(get, path: str, layout: str, medium: str, notes: list) -> Obser
     mjd, scale, source, exptime = read_time(get, path)
     ra, dec, frame, equinox = read_target(get, path)
     site = read_site(get, path)
+    spec_frame, frame_note = read_spec_frame(get, path)
+    if frame_note is not None:
+        notes.append(frame_note)
     obj = get("OBJECT")
     return Observation(
         path=path, layout=layout, object=str(obj).strip() if obj is not None else "",
         mjd_mid=mjd, time_scale=scale, time_source=source, exptime=exptime, ra_deg=ra, dec_deg=dec,
-        frame=frame, equinox=equinox, site_xyz=site, medium=medium, notes=tuple(notes))
+        frame=frame, equinox=equinox, site_xyz=site, medium=medium, spec_frame=spec_frame,
+        notes=tuple(notes))
 
 
 def _build_orders(parts, medium: str, path: str, notes: list) -> list[Order]:

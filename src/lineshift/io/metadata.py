@@ -4,10 +4,18 @@ Rules (``shared/interface.md``), first found wins:
 
 * time: ``DATE-AVG`` / ``MJD-AVG`` (already mid-exposure); ``DATE-BEG`` + ``DATE-END`` (or
   ``MJD-BEG`` + ``MJD-END``); ``DATE-OBS`` or ``MJD-OBS`` plus half of ``EXPTIME`` / ``XPOSURE``.
-  Scale from ``TIMESYS`` (default UTC).  A start time without an exposure time is *not* used as the
+  Scale from ``TIMESYS`` (default UTC); every scale of the FITS standard 4.0 (sect. 9.2.1,
+  table 30) is handled or refused with its reason: UTC, TAI, TT, TDB, TCG, TCB, UT1 as astropy
+  scales; the deprecated GMT (= UTC), IAT (= TAI), TDT and ET (= TT) mapped with a note; GPS
+  converted to TAI (GPS = TAI - 19 s) with a note; a realisation in parentheses (``TT(TAI)``,
+  ``UTC(NIST)``) read as its scale; ``LOCAL`` refused (a free-running clock has no relation to any
+  time scale).  A start time without an exposure time is *not* used as the
   mid-exposure time: for a 30-minute exposure that would be a ~30 m/s error in the correction.
 * target: ``RA`` / ``DEC`` in degrees or sexagesimal (RA in hours), ``RADESYS`` (default ICRS),
   ``EQUINOX``.
+* spectral frame: ``SPECSYS`` (Greisen et al. 2006, FITS WCS Paper III, sect. 7): ``TOPOCENT`` or
+  absent = topocentric (the barycentric correction is applied); ``BARYCENT`` = the wavelengths are
+  already barycentric (no second correction); every other standard of rest is refused.
 * site: ``OBSGEO-X/Y/Z`` (geocentric metres) or ``OBSGEO-L/B/H`` (degrees, degrees, metres, WGS84).
 """
 
@@ -19,10 +27,22 @@ from collections.abc import Callable
 
 from lineshift.errors import MetadataError
 
-__all__ = ["parse_dec", "parse_ra", "read_site", "read_target", "read_time"]
+__all__ = ["parse_dec", "parse_ra", "read_site", "read_spec_frame", "read_target", "read_time",
+           "time_scale"]
 
-_SCALES = {"utc": "utc", "ut": "utc", "tt": "tt", "tdb": "tdb", "tai": "tai", "tcb": "tcb",
-           "tcg": "tcg", "gps": "tai"}
+#: FITS TIMESYS value -> (astropy scale, offset added to the value in seconds, note for time_source).
+_SCALES: dict[str, tuple[str, float, str]] = {
+    "utc": ("utc", 0.0, ""), "tai": ("tai", 0.0, ""), "tt": ("tt", 0.0, ""), "tdb": ("tdb", 0.0, ""),
+    "tcg": ("tcg", 0.0, ""), "tcb": ("tcb", 0.0, ""), "ut1": ("ut1", 0.0, "UT1 from the bundled IERS tables"),
+    "gmt": ("utc", 0.0, "GMT read as UTC"), "iat": ("tai", 0.0, "IAT read as TAI"),
+    "ut": ("utc", 0.0, "UT read as UTC (< 0.9 s from UT1)"), "tdt": ("tt", 0.0, "TDT read as TT"),
+    "et": ("tt", 0.0, "ET read as TT"),
+    # GPS time runs at TAI with a fixed offset: GPS = TAI - 19 s (FITS standard 4.0, sect. 9.2.1)
+    "gps": ("tai", 19.0, "GPS converted to TAI (+19 s)"),
+}
+_REFUSED = {
+    "local": "a free-running local clock has no defined relation to any time scale",
+}
 
 Getter = Callable[[str], object]
 
@@ -100,11 +120,39 @@ def read_time(get: Getter, path: str | None = None) -> tuple[float | None, str, 
     exptime : float or None
         Exposure time in seconds, if given.
     """
-    timesys = str(get("TIMESYS") or "UTC").strip().lower()
-    if timesys not in _SCALES:
-        raise MetadataError(f"TIMESYS = {timesys.upper()!r} is not a supported time scale", path=path)
-    scale = _SCALES[timesys]
+    scale, offset, note = time_scale(get("TIMESYS"), path)
+    out = _read_time(get, path, scale)
+    if out[0] is None:
+        return out
+    mjd, _, source, exptime = out
+    if offset:
+        mjd += offset / 86400.0
+    return mjd, scale, f"{source} ({note})" if note else source, exptime
 
+
+def time_scale(value, path: str | None = None) -> tuple[str, float, str]:
+    """astropy scale, offset (s, added to the value) and note for a FITS ``TIMESYS`` value.
+
+    A realisation in parentheses (``TT(TAI)``, ``UTC(NIST)``) is read as its scale; the
+    difference between realisations is below a microsecond.
+    """
+    text = str(value if value is not None else "UTC").strip()
+    match = re.fullmatch(r"\s*([A-Za-z0-9]+)\s*(?:\((.*)\))?\s*", text)
+    base = match.group(1).lower() if match else text.lower()
+    if match and base == "ut" and match.group(2) and match.group(2).strip().lower() in ("utc", "ut1"):
+        base = match.group(2).strip().lower()  # UT(UTC), UT(UT1): the realisation names the scale
+    if base in _REFUSED:
+        raise MetadataError(f"TIMESYS = {text!r} cannot be used: {_REFUSED[base]}", path=path)
+    if base not in _SCALES:
+        raise MetadataError(f"TIMESYS = {text!r} is not a FITS time scale (UTC, TAI, TT, TDB, TCG, TCB, UT1, "
+                            "GPS, or the deprecated GMT, IAT, TDT, ET)", path=path)
+    scale, offset, note = _SCALES[base]
+    if base != text.lower():
+        note = f"{note}; realisation {text} read as {base.upper()}" if note else f"{text} read as {base.upper()}"
+    return scale, offset, note
+
+
+def _read_time(get: Getter, path: str | None, scale: str) -> tuple[float | None, str, str, float | None]:
     exptime = None
     for key in ("EXPTIME", "XPOSURE"):
         if get(key) is not None:
@@ -189,3 +237,36 @@ def geodetic_to_xyz(lon: float, lat: float, height: float, *, path: str | None =
             f"site lon={lon}, lat={lat}, height={height} is not a place on the Earth", path=path)
     loc = EarthLocation.from_geodetic(lon * u.deg, lat * u.deg, height * u.m, ellipsoid="WGS84")
     return (float(loc.x.to_value(u.m)), float(loc.y.to_value(u.m)), float(loc.z.to_value(u.m)))
+
+
+#: FITS Paper III (Greisen et al. 2006, table 12) SPECSYS values we refuse, with the reason.
+_OTHER_FRAMES = {
+    "GEOCENTR": "geocentric", "HELIOCEN": "heliocentric", "LSRK": "kinematic local standard of rest",
+    "LSRD": "dynamical local standard of rest", "GALACTOC": "galactocentric", "LOCALGRP": "Local Group",
+    "CMBDIPOL": "CMB dipole", "SOURCE": "source rest frame",
+}
+
+
+def read_spec_frame(get: Getter, path: str | None = None) -> tuple[str, str | None]:
+    """The frame the file's wavelengths are in: ``topocentric`` or ``barycentric``, and a note.
+
+    ``SPECSYS`` absent or ``TOPOCENT``: topocentric.  ``BARYCENT``: barycentric (``VELOSYS``, the
+    velocity the writer removed, is quoted in the note).  Any other standard of rest of FITS Paper
+    III is refused: turning it back into a barycentric one needs the writer's exact definition.
+    """
+    value = get("SPECSYS")
+    text = str(value).strip().upper() if value is not None else "TOPOCENT"
+    if text in ("TOPOCENT", ""):
+        return "topocentric", None
+    if text == "BARYCENT":
+        velosys = get("VELOSYS")
+        extra = ""
+        if velosys is not None:
+            extra = f", VELOSYS = {_num(velosys, 'VELOSYS', path):.3f} m/s removed by the writer"
+        return "barycentric", f"SPECSYS = BARYCENT: wavelengths already barycentric{extra}"
+    if text in _OTHER_FRAMES:
+        raise MetadataError(
+            f"SPECSYS = {text!r} ({_OTHER_FRAMES[text]}) is not supported: only TOPOCENT and BARYCENT "
+            "spectra can be measured", path=path, status="unsupported frame")
+    raise MetadataError(f"SPECSYS = {text!r} is not a FITS spectral reference frame", path=path,
+                        status="unsupported frame")

@@ -1,5 +1,10 @@
 """Velocity tables: the contract columns first, written atomically in CSV, ECSV, FITS or Parquet.
 
+Text tables (CSV, ECSV) carry the digits their precision supports: velocities 0.001 m/s, times
+1e-8 d, everything else 1e-6; FITS and Parquet keep full double precision.  Provenance (``meta``)
+reaches FITS as HISTORY lines (nothing cut), ECSV and Parquet through astropy's table metadata, and
+Parquet units also as JSON (``lineshift.units``), so ``astropy.table.Table.read`` gives them back.
+
 Atomic: each table is written to a temporary file in the destination directory and renamed over the
 destination, so a reader never sees half a table and a killed run never leaves one.
 """
@@ -7,6 +12,7 @@ destination, so a reader never sees half a table and a killed run never leaves o
 from __future__ import annotations
 
 import contextlib
+import json
 import os
 import sys
 import tempfile
@@ -50,6 +56,22 @@ UNITS = {"bjd_tdb": "d", "rv": "m / s", "rv_err": "m / s", "berv": "m / s", "rv_
          "residual_err": "m / s", "pixel": "pix", "offset": "m / s", "offset_err": "m / s", "slope": "m / s",
          "slope_err": "m / s", "rms": "m / s", "offset_from_global": "m / s", "rv_aligned": "m / s"}
 _INT = ("n_lines", "n_orders")
+#: Text-table digits (decimals): 0.001 m/s for velocities, 1e-8 d for times, 1e-6 otherwise.
+_TEXT_DECIMALS = {"m / s": 3, "d": 8}
+_VELOCITY_LIKE = ("rv_chromatic_slope", "rv_chromatic_slope_err")
+
+
+def _decimals(name: str) -> int:
+    return 3 if name in _VELOCITY_LIKE else _TEXT_DECIMALS.get(UNITS.get(name, ""), 6)
+
+
+def _text_frame(frame: pd.DataFrame) -> pd.DataFrame:
+    """A copy with float columns rounded to the decimals of :func:`_decimals`."""
+    out = frame.copy()
+    for c in out.columns:
+        if pd.api.types.is_float_dtype(out[c]):
+            out[c] = out[c].round(_decimals(c))
+    return out
 
 
 def csv_header(frame: pd.DataFrame, meta: dict) -> str:
@@ -146,32 +168,37 @@ def write_frame(frame: pd.DataFrame, path: str | None, meta: dict[str, str] | No
     """Write any table atomically in the format its extension names (CSV on stdout without a path)."""
     meta = meta or {}
     if path is None:
-        frame.to_csv(sys.stdout, index=False)
+        _text_frame(frame).to_csv(sys.stdout, index=False)
         return frame
     fmt = table_format(path)
     with atomic_path(path) as tmp:
         if fmt == "csv":
             with open(tmp, "w", newline="") as fh:
                 fh.write(csv_header(frame, meta))
-                frame.to_csv(fh, index=False)
+                _text_frame(frame).to_csv(fh, index=False)
         elif fmt == "parquet":
-            import pyarrow as pa
             import pyarrow.parquet as pq
 
-            table = pa.Table.from_pandas(frame, preserve_index=False)
+            _astropy_table(frame, {str(k): str(v) for k, v in meta.items()}).write(
+                tmp, format="parquet", overwrite=True)
+            table = pq.read_table(tmp)
             md = dict(table.schema.metadata or {})
             md.update({f"lineshift.{k}".encode(): str(v).encode() for k, v in meta.items()})
-            md[b"lineshift.units"] = str(UNITS).encode()
+            md[b"lineshift.units"] = json.dumps({c: u for c, u in UNITS.items() if c in frame.columns}).encode()
             pq.write_table(table.replace_schema_metadata(md), tmp)
         elif fmt == "ecsv":
-            _astropy_table(frame, meta).write(tmp, format="ascii.ecsv", overwrite=True)
+            t = _astropy_table(_text_frame(frame), meta)
+            t.write(tmp, format="ascii.ecsv", overwrite=True)
         else:
+            import textwrap
+
             from astropy.io import fits
 
             t = _astropy_table(frame, {})
             hdu = fits.table_to_hdu(t)
             hdu.name = name
             for k, v in meta.items():
-                hdu.header.add_comment(f"{k}: {v}"[:72])
+                for line in textwrap.wrap(f"{k}: {v}", 72, break_long_words=True, drop_whitespace=False):
+                    hdu.header.add_history(line)
             fits.HDUList([fits.PrimaryHDU(), hdu]).writeto(tmp, overwrite=True)
     return frame

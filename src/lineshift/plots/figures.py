@@ -1,17 +1,16 @@
 """Plots people would rather look at than tables: the CCF of each spectrum, velocities against time.
 
-Written with matplotlib's Agg backend (no screen needed), each file atomically.
+Drawn on ``matplotlib.figure.Figure`` objects without pyplot, so importing this module neither selects
+nor changes the host's matplotlib backend; PNGs are rendered by Agg (no screen needed), each file
+atomically.
 """
 
 from __future__ import annotations
 
 import os
 
-import matplotlib
-
-matplotlib.use("Agg")
-import matplotlib.pyplot as plt
 import numpy as np
+from matplotlib.figure import Figure
 
 from lineshift.io.table import atomic_path
 
@@ -22,8 +21,23 @@ __all__ = ["plot_ccf", "plot_drift", "plot_orbit", "plot_order_offsets", "plot_p
 def _save(fig, path: str) -> str:
     with atomic_path(path) as tmp:
         fig.savefig(tmp, format="png", dpi=110)
-    plt.close(fig)
     return path
+
+
+class _Figures:
+    """``figure`` and ``subplots`` as pyplot spells them, on bare Figures (no backend, no global state)."""
+
+    @staticmethod
+    def figure(figsize=None) -> Figure:
+        return Figure(figsize=figsize)
+
+    @staticmethod
+    def subplots(nrows: int = 1, ncols: int = 1, *, figsize=None, **kwargs):
+        fig = Figure(figsize=figsize)
+        return fig, fig.subplots(nrows, ncols, **kwargs)
+
+
+plt = _Figures()
 
 
 def _stem(path: str) -> str:

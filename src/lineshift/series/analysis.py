@@ -142,18 +142,24 @@ def read_series(paths: list[str], *, dataset_column: str | None = None) -> Serie
 # --------------------------------------------------------------------------- jitter, offsets, outliers
 
 def jitter(resid: np.ndarray, err: np.ndarray, n_params: int = 0) -> float:
-    """Excess scatter s (m/s) maximising the Gaussian likelihood of residuals with errors sqrt(err^2 + s^2)."""
+    """Excess scatter s (m/s) maximising the Gaussian likelihood of residuals with errors sqrt(err^2 + s^2).
+
+    With ``n_params`` fitted parameters the residual term of the score is scaled by n/(n - p), so that
+    for equal errors the root is s^2 = sum(r^2)/(n - p) - err^2: the unbiased variance with p fitted
+    parameters in place of the maximum-likelihood sum(r^2)/n (common practice).
+    """
     n = resid.size
     if n <= n_params + 1:
         return 0.0
+    factor = n / (n - n_params)
 
     def dlogl(s):
         v = err**2 + s * s
-        return np.sum(resid**2 / v**2 - 1 / v) * (n / max(n - n_params, 1))
+        return np.sum(factor * resid**2 / v**2 - 1 / v)
 
     if dlogl(0.0) <= 0:
         return 0.0
-    hi = max(np.std(resid) * 10, 1.0)
+    hi = max(np.std(resid) * 10 * np.sqrt(factor), 1.0)
     return float(brentq(dlogl, 0.0, hi))
 
 

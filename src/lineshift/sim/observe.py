@@ -8,6 +8,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from lineshift._offline import offline_call
 from lineshift.io import airvac
 from lineshift.model import C_MS
 from lineshift.sim.instrument import Instrument, _edges, _subpixel_wavelengths, _through_instrument
@@ -32,6 +33,7 @@ class Exposure:
     truth: dict
 
 
+@offline_call
 def barycentric_truth(star: Star, site: Site, mjd_mid_utc: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """BERV (m/s) and BJD_TDB (days) straight from astropy, for the truth table."""
     import astropy.units as u

@@ -1,0 +1,84 @@
+"""SPECSYS (Greisen et al. 2006, FITS WCS Paper III): barycentric files get no second correction."""
+
+import astropy.units as u
+import numpy as np
+import pytest
+from astropy.coordinates import EarthLocation, SkyCoord
+from astropy.io import fits
+from astropy.time import Time
+
+from lineshift import sim
+from lineshift.api import measure
+from lineshift.errors import MetadataError
+from lineshift.io.loaders import read_observation
+from lineshift.model import C_MS
+
+INS = sim.Instrument("t-1d-vac", "wcs-1d", 65_000, 1, 4000, 5200.0, sampling=3.0, snr=200, blaze=False)
+
+
+def _astropy_berv(header):
+    # outside reference: astropy's barycentric correction for the header's instant, target and site
+    t = Time(header["DATE-OBS"], scale="utc") + header["EXPTIME"] / 2 * u.s
+    loc = EarthLocation.from_geocentric(header["OBSGEO-X"], header["OBSGEO-Y"], header["OBSGEO-Z"], unit=u.m)
+    coord = SkyCoord(header["RA"] * u.deg, header["DEC"] * u.deg)
+    return coord.radial_velocity_correction(kind="barycentric", obstime=t, location=loc).to_value(u.m / u.s)
+
+
+@pytest.fixture(scope="module")
+def pair(tmp_path_factory):
+    out = tmp_path_factory.mktemp("specsys")
+    exp = sim.observe(sim.DEMO_STAR, INS, sim.DEMO_SITE, 61000.8, np.random.default_rng(5))
+    topo = sim.write_observation(exp, str(out / "topo.fits"))
+    with fits.open(topo) as hdul:
+        header = hdul[0].header
+        berv = _astropy_berv(header)
+        # the same photons, their wavelengths moved to the barycentre: lambda_B = lambda (1 + berv/c)
+        # (Wright & Eastman 2014 composition), as an archive's 1-D product would write them
+        factor = 1 + berv / C_MS
+        header["CRVAL1"] = header["CRVAL1"] * factor
+        header["CDELT1"] = header["CDELT1"] * factor
+        header["SPECSYS"] = "BARYCENT"
+        header["VELOSYS"] = berv
+        hdul.writeto(out / "bary.fits")
+    mask = str(out / "mask.csv")
+    sim.write_mask(sim.DEMO_STAR, mask)
+    return topo, str(out / "bary.fits"), mask, berv
+
+
+def test_barycentric_file_measured_once(pair):
+    topo, bary, mask, berv = pair
+    table = measure([topo, bary], mask)
+    t_row, b_row = (table[table["file"] == p][0] for p in (topo, bary))
+    assert t_row["status"] == "ok" and b_row["status"] == "ok"
+    assert abs(t_row["berv"].to_value(u.m / u.s) - berv) < 0.01     # topocentric: corrected as before
+    assert b_row["berv"].to_value(u.m / u.s) == 0.0                   # barycentric: nothing applied
+    assert "already barycentric" in b_row["notes"]
+    assert f"{berv:+.3f}" in b_row["notes"]
+    # the same photons give the same barycentric velocity (a second correction would be off by |BERV|,
+    # several km/s here); the residual is the resampling of the shifted grid, well under the error
+    diff = (b_row["rv"] - t_row["rv"]).to_value(u.m / u.s)
+    print(f"bary-file minus topo-file rv: {diff:.3f} m/s (rv_err {t_row['rv_err']:.3f}, BERV {berv:.1f} m/s)")
+    assert abs(berv) > 1000
+    assert abs(diff) < 0.5
+    assert b_row["bjd_tdb"] == t_row["bjd_tdb"]
+
+
+@pytest.mark.parametrize("specsys", ["LSRK", "SOURCE", "GEOCENTR", "NOWHERE"])
+def test_other_frames_refused(tmp_path, specsys):
+    hdu = fits.PrimaryHDU(np.ones(100, dtype=np.float32))
+    hdu.header.update({"CTYPE1": "WAVE", "CRVAL1": 5000.0, "CDELT1": 0.02, "CRPIX1": 1.0, "SPECSYS": specsys})
+    path = str(tmp_path / "x.fits")
+    hdu.writeto(path)
+    with pytest.raises(MetadataError, match=f"SPECSYS = '{specsys}'.*(not supported|not a FITS)"):
+        read_observation(path)
+
+
+def test_topocent_and_absent_are_topocentric(tmp_path):
+    for value in ("TOPOCENT", None):
+        hdu = fits.PrimaryHDU(np.ones(100, dtype=np.float32))
+        hdu.header.update({"CTYPE1": "WAVE", "CRVAL1": 5000.0, "CDELT1": 0.02, "CRPIX1": 1.0})
+        if value:
+            hdu.header["SPECSYS"] = value
+        path = str(tmp_path / f"x{value}.fits")
+        hdu.writeto(path)
+        assert read_observation(path).spec_frame == "topocentric"
