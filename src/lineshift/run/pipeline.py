@@ -143,6 +143,38 @@ def _empty_row(path: str, obs: Observation | None, status: str, message: str, se
     return row
 
 
+def printable(text: str) -> str:
+    """``text`` with any undecodable file-name bytes (surrogate escapes) written as ``\\xNN``.
+
+    File names are bytes on POSIX; Python decodes the ones that are not UTF-8 with surrogate
+    escapes, which no table format or SQLite can encode.  This is the documented form of such a
+    name in every output.
+    """
+    try:
+        text.encode("utf-8")
+    except UnicodeEncodeError:
+        return text.encode("utf-8", "surrogateescape").decode("utf-8", "backslashreplace")
+    return text
+
+
+def _clean(row: dict) -> dict:
+    for k, v in row.items():
+        if isinstance(v, str):
+            row[k] = printable(v)
+    return row
+
+
+def _failure(exc: BaseException, path: str) -> LineshiftError:
+    """A specific, per-file error for what the operating system or the machine refused."""
+    if isinstance(exc, MemoryError):
+        return SpectrumFormatError("too large to hold in memory", path=path, status="too large")
+    if isinstance(exc, UnicodeError):
+        return SpectrumFormatError(f"text cannot be decoded ({exc.reason})", path=path, status="unreadable")
+    if isinstance(exc, OSError):
+        return SpectrumFormatError(f"cannot be read ({exc.strerror or exc})", path=path, status="unreadable")
+    raise exc
+
+
 def survey(paths: list[str], settings: MeasureSettings) -> list[Observation | LineshiftError]:
     """Phase 1: the observation record of every input (or the error that prevents reading it)."""
     out: list = []
@@ -152,6 +184,8 @@ def survey(paths: list[str], settings: MeasureSettings) -> list[Observation | Li
         except LineshiftError as exc:
             exc.path = exc.path or path
             out.append(exc)
+        except (MemoryError, UnicodeError, OSError) as exc:
+            out.append(_failure(exc, path))
     return out
 
 
@@ -200,6 +234,11 @@ def measure_task(task: Task, ctx: Context) -> dict:
             if ctx.template is not None:
                 return _template_row(task, obs, orders, ctx)
             res = ENGINES[s.method](orders, ctx.mask, s.search, berv=task.berv, path=task.path)
+    except (MemoryError, UnicodeError, OSError) as exc:
+        err = _failure(exc, task.path)
+        row = _empty_row(task.path, obs, err.status, str(err), s)
+        row.update(bjd_tdb=task.bjd_tdb, berv=task.berv, _error=str(err))
+        return _clean(row)
     except LineshiftError as exc:
         exc.path = exc.path or task.path
         row = _empty_row(task.path, obs, exc.status, str(exc), s)
@@ -359,7 +398,7 @@ def measure_files(paths: list[str], mask: LineMask, settings: MeasureSettings, *
     rows: list[dict | None] = [None] * len(paths)
 
     def emit(i: int, row: dict) -> None:
-        rows[i] = row
+        rows[i] = row = _clean(row)
         if on_row is not None:
             on_row(row)
 
@@ -419,7 +458,7 @@ def measure_files(paths: list[str], mask: LineMask, settings: MeasureSettings, *
             if row is None:
                 todo.append(t)
                 continue
-            row.update(file=t.path)  # the path as given this time (the content is the same)
+            row.update(file=printable(t.path))  # the path as given this time (the content is the same)
             report.skipped += 1
             emit(t.index, row)
     if settings.method == "template":
@@ -439,12 +478,12 @@ def measure_files(paths: list[str], mask: LineMask, settings: MeasureSettings, *
         for t in todo:
             row = final.get(t.index, first.get(t.index))
             if store is not None:
-                store.put(t.input_hash, report.settings_hash, row)
+                store.put(t.input_hash, report.settings_hash, _clean(row))
             emit(t.index, row)
     else:
         for task, row in run_tasks(measure_task, todo, ctx, workers=workers, scheduler=scheduler):
             if store is not None:
-                store.put(task.input_hash, report.settings_hash, row)
+                store.put(task.input_hash, report.settings_hash, _clean(row))
             emit(task.index, row)
     out = [r for r in rows if r is not None]
     if settings.components == 2:

@@ -1,0 +1,78 @@
+"""Hostile inputs mixed with good files: every bad one gets its own row, the good rows are unchanged."""
+
+import os
+import shutil
+
+import numpy as np
+import pandas as pd
+import pytest
+from astropy.io import fits
+
+from lineshift.calib.barycentric import check_mjd
+from lineshift.cli import main
+
+
+def _fits_inputs(sample_set):
+    directory, mask, rows = sample_set
+    return [os.path.join(directory, r["file"]) for r in rows if r["layout"] == "multi-order"], mask
+
+
+@pytest.mark.parametrize(("mjd", "words"), [
+    (1e20, "outside the accepted range"), (-3e6, "outside the accepted range"),
+    (1e9, "outside the accepted range"), (2460000.5, "looks like a Julian Date"),
+    (float("nan"), "not a finite number")])
+def test_dates_refused_before_astropy(mjd, words):
+    assert words in check_mjd(mjd)
+
+
+def test_sane_dates_accepted():
+    # MJD 60000 is 2023-02-25 (common practice: MJD = JD - 2400000.5)
+    assert check_mjd(60000.0) is None
+    assert check_mjd(0.0) is None
+
+
+def test_hostile_batch_keeps_the_good_rows(sample_set, tmp_path, capfd):
+    good, mask = _fits_inputs(sample_set)
+    clean_dir, mixed = tmp_path / "clean", tmp_path / "mixed"
+    clean_dir.mkdir()
+    mixed.mkdir()
+    for g in good:
+        shutil.copy(g, clean_dir)
+        shutil.copy(g, mixed)
+    hostile = {}
+    for name, mjd in [("mjd_huge.fits", 1e20), ("mjd_negative.fits", -3e6), ("mjd_1e9.fits", 1e9),
+                      ("mjd_is_jd.fits", 2460000.5)]:
+        path = mixed / name
+        shutil.copy(good[0], path)
+        with fits.open(path, mode="update") as hdul:
+            for hdu in hdul:
+                for key in ("MJD-OBS", "MJD-BEG", "MJD-END", "MJD-AVG", "DATE-OBS", "DATE-BEG", "DATE-END"):
+                    hdu.header.remove(key, ignore_missing=True, remove_all=True)
+            hdul[0].header["MJD-OBS"] = mjd
+        hostile[name] = "bad time"
+    # a file name that is not UTF-8: a copy of a good spectrum, which must still be measured
+    raw = os.path.join(os.fsencode(mixed), b"caf\xe9.fits")
+    shutil.copy(good[1], raw)
+    clean_out, mixed_out = tmp_path / "clean.csv", tmp_path / "mixed.csv"
+    assert main(["measure", str(clean_dir), "--mask", mask, "-o", str(clean_out), "-q"]) == 0
+    code = main(["measure", str(mixed), "--mask", mask, "-o", str(mixed_out), "-q"])
+    err = capfd.readouterr().err
+    assert code == 1
+    assert "Traceback" not in err and "unexpected error" not in err
+    clean = pd.read_csv(clean_out, keep_default_na=False)
+    table = pd.read_csv(mixed_out, keep_default_na=False)
+    assert len(table) == len(good) + len(hostile) + 1
+    by_name = {os.path.basename(f): row for f, row in zip(table.file, table.to_dict("records"), strict=True)}
+    for name, status in hostile.items():
+        assert by_name[name]["status"] == status, (name, by_name[name]["notes"])
+    assert "looks like a Julian Date" in by_name["mjd_is_jd.fits"]["notes"]
+    # the undecodable byte is written as \xe9 (documented form) and the spectrum is measured
+    assert by_name["caf\\xe9.fits"]["status"] == "ok"
+    for row in clean.to_dict("records"):
+        other = by_name[os.path.basename(row["file"])]
+        assert other["status"] == row["status"]
+        for col in ("rv", "rv_err", "berv", "bjd_tdb", "fwhm"):
+            assert float(other[col]) == float(row[col]), col  # identical, not merely close
+    np.testing.assert_equal(float(by_name["caf\\xe9.fits"]["rv"]),
+                            float(clean.set_index(clean.file.map(os.path.basename)).loc[
+                                os.path.basename(good[1]), "rv"]))
