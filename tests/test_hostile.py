@@ -76,3 +76,45 @@ def test_hostile_batch_keeps_the_good_rows(sample_set, tmp_path, capfd):
     np.testing.assert_equal(float(by_name["caf\\xe9.fits"]["rv"]),
                             float(clean.set_index(clean.file.map(os.path.basename)).loc[
                                 os.path.basename(good[1]), "rv"]))
+
+
+@pytest.mark.parametrize(("extra", "toml", "message"), [
+    (["--velocity-step", "inf"], None, "must be a finite number"),
+    (["--velocity-step", "nan"], None, "must be a finite number"),
+    (["--box-width", "inf"], None, "must be a finite number"),
+    (["--velocity-range", "nan,100000"], None, "must be a finite number"),
+    (["--velocity-range", "-inf,inf"], None, "must be a finite number"),
+    (["--velocity-range", "-4e8,0"], None, "speed of light"),
+    (["--velocity-step", "0.01"], None, "GiB for the CCF grid"),
+    (["--systemic-velocity", "nan"], None, "must be a finite number"),
+    (["--systemic-velocity", "1e300"], None, "speed of light"),
+    (["--site", "0,0,-6378137"], None, "not a place on the Earth"),
+    ([], "[measure]\nvelocity_step = nan\n", "must be a finite number"),
+    ([], "[site]\nx = 0.0\ny = 0.0\nz = 0.0\n", "from the Earth's surface"),
+    ([], "[target]\npm_ra_cosdec = 1.0\npm_dec = 1.0\nparallax = 1e-300\nepoch = 2016.0\n", "parallax"),
+])
+def test_absurd_settings_refused_before_any_work(sample_set, tmp_path, capfd, extra, toml, message):
+    directory, mask, _ = sample_set
+    argv = ["measure", directory, "--mask", mask, "-o", str(tmp_path / "out.csv"), "-q", *extra]
+    if toml is not None:
+        (tmp_path / "c.toml").write_text(toml)
+        argv += ["--config", str(tmp_path / "c.toml")]
+    assert main(argv) == 2
+    err = capfd.readouterr().err
+    assert message in err and "Traceback" not in err
+    assert len(err.strip().splitlines()) == 1
+    assert not (tmp_path / "out.csv").exists()
+
+
+def test_site_check_against_astropy_wgs84():
+    # a point 8.8 km above the WGS84 ellipsoid (Everest-like) passes; the geocentre does not
+    import astropy.units as u
+    from astropy.coordinates import EarthLocation
+
+    from lineshift.errors import ConfigError
+    from lineshift.run.config import check_site
+
+    top = EarthLocation.from_geodetic(86.9 * u.deg, 27.99 * u.deg, 8848 * u.m)
+    check_site(tuple(top.to_value(u.m)))
+    with pytest.raises(ConfigError):
+        check_site((0.0, 0.0, 0.0))

@@ -36,6 +36,7 @@ from lineshift.io.table import COLUMNS, EXTRA_COLUMNS, SB2_COLUMNS
 from lineshift.measure.mask_engine import SearchSettings, measure_mask
 from lineshift.measure.prepare import prepare_spectrum, reject_telluric_lines
 from lineshift.model import C_MS, LineMask, Observation
+from lineshift.run.config import check_settings
 from lineshift.run.executors import run_tasks
 
 __all__ = ["COLUMNS", "MeasureSettings", "Overrides", "expand_inputs", "measure_files"]
@@ -90,6 +91,7 @@ class MeasureSettings:
             raise ConfigError(f"components must be 1 or 2, not {self.components}")
         if self.components == 2 and self.method == "template":
             raise ConfigError("--components 2 works with the mask engine only (--method mask)")
+        check_settings(self)
 
 
 @dataclass(frozen=True)
