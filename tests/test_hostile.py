@@ -118,3 +118,45 @@ def test_site_check_against_astropy_wgs84():
     check_site(tuple(top.to_value(u.m)))
     with pytest.raises(ConfigError):
         check_site((0.0, 0.0, 0.0))
+
+
+def test_unwritable_output_refused_before_work(sample_set, tmp_path, capfd):
+    # a regular file where a directory should be: no one, not even root, can write beneath it
+    directory, mask, _ = sample_set
+    blocker = tmp_path / "blocker"
+    blocker.write_text("not a directory")
+    for extra in (["-o", str(blocker / "out.csv")], ["--plots", str(blocker / "plots")],
+                  ["--store", str(blocker / "s.sqlite")], ["--orders-table", str(blocker / "o.csv")]):
+        assert main(["measure", directory, "--mask", mask, "-q", *extra]) == 2
+        err = capfd.readouterr().err
+        assert "cannot write in" in err and len(err.strip().splitlines()) == 1, err
+
+
+def test_plot_names_unique_and_outputs_honour_umask(tmp_path):
+    from lineshift.cli.measure import unique_plot_names
+    from lineshift.io.table import atomic_path
+
+    names = unique_plot_names(["a/x.fits.gz", "b/x.fits.gz", "a/x.csv.gz", "c/y.fits"])
+    assert len(set(names.values())) == 4 and names["c/y.fits"] == "y"
+    old = os.umask(0o027)
+    try:
+        with atomic_path(str(tmp_path / "t.csv")) as tmp:
+            open(tmp, "w").close()
+    finally:
+        os.umask(old)
+    assert (tmp_path / "t.csv").stat().st_mode & 0o777 == 0o640  # 0666 & ~0027 (POSIX creat semantics)
+
+
+def test_a_failing_plot_never_costs_the_table(sample_set, tmp_path, capfd, monkeypatch):
+    from lineshift.plots import figures
+
+    def broken(*args, **kwargs):
+        raise RuntimeError("renderer exploded")
+
+    monkeypatch.setattr(figures, "plot_ccf", broken)
+    monkeypatch.setattr(figures, "plot_rv_time", broken)
+    good, mask = _fits_inputs(sample_set)
+    out = tmp_path / "t.csv"
+    assert main(["measure", *good, "--mask", mask, "-o", str(out), "--plots", str(tmp_path / "p"), "-q"]) == 0
+    assert len(pd.read_csv(out)) == len(good)
+    assert "renderer exploded" in capfd.readouterr().err

@@ -63,6 +63,20 @@ def rows_to_frame(rows: list[dict]) -> pd.DataFrame:
     return frame
 
 
+def _umask() -> int:
+    """The process umask, read without changing it where /proc allows (Linux)."""
+    try:
+        with open("/proc/self/status") as fh:
+            for line in fh:
+                if line.startswith("Umask:"):
+                    return int(line.split()[1], 8)
+    except OSError:
+        pass
+    old = os.umask(0o022)
+    os.umask(old)
+    return old
+
+
 @contextlib.contextmanager
 def atomic_path(path: str):
     """Yield a temporary path beside ``path``; on success rename it over ``path``."""
@@ -72,6 +86,7 @@ def atomic_path(path: str):
     os.close(fd)
     try:
         yield tmp
+        os.chmod(tmp, 0o666 & ~_umask())  # mkstemp makes 0600; a table is as readable as any new file
         os.replace(tmp, path)
     finally:
         if os.path.exists(tmp):
