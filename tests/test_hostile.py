@@ -160,3 +160,48 @@ def test_a_failing_plot_never_costs_the_table(sample_set, tmp_path, capfd, monke
     assert main(["measure", *good, "--mask", mask, "-o", str(out), "--plots", str(tmp_path / "p"), "-q"]) == 0
     assert len(pd.read_csv(out)) == len(good)
     assert "renderer exploded" in capfd.readouterr().err
+
+
+def test_a_foreign_sqlite_file_is_refused_untouched(tmp_path):
+    import hashlib
+    import sqlite3
+
+    from lineshift.errors import ConfigError
+    from lineshift.run.store import ResultStore
+
+    foreign = tmp_path / "theirs.sqlite"
+    db = sqlite3.connect(foreign)
+    db.execute("CREATE TABLE results (a INTEGER)")
+    db.execute("INSERT INTO results VALUES (1)")
+    db.commit()
+    db.close()
+    before = hashlib.sha256(foreign.read_bytes()).hexdigest()
+    with pytest.raises(ConfigError, match="not a lineshift results store"):
+        ResultStore(str(foreign))
+    assert hashlib.sha256(foreign.read_bytes()).hexdigest() == before
+    assert sorted(os.listdir(tmp_path)) == ["theirs.sqlite"]  # no -wal / -shm left either
+    (tmp_path / "text.sqlite").write_text("hello")
+    with pytest.raises(ConfigError, match="not an SQLite database"):
+        ResultStore(str(tmp_path / "text.sqlite"))
+
+
+def test_store_is_durable_by_default(tmp_path):
+    from lineshift.run.store import ResultStore
+
+    # PRAGMA synchronous: 2 = FULL, 1 = NORMAL (SQLite documentation)
+    with ResultStore(str(tmp_path / "a.sqlite")) as st:
+        assert st._db.execute("PRAGMA synchronous").fetchone()[0] == 2
+    with ResultStore(str(tmp_path / "a.sqlite"), durable=False) as st:
+        assert st._db.execute("PRAGMA synchronous").fetchone()[0] == 1
+
+
+def test_stale_temporary_files_are_cleaned(tmp_path):
+    from lineshift.io.table import atomic_path
+
+    stale, fresh = tmp_path / ".t.csv.abc123.tmp", tmp_path / ".t.csv.def456.tmp"
+    stale.write_text("killed")
+    fresh.write_text("another writer, now")
+    os.utime(stale, (0, 0))
+    with atomic_path(str(tmp_path / "t.csv")) as tmp:
+        open(tmp, "w").close()
+    assert not stale.exists() and fresh.exists()

@@ -44,6 +44,8 @@ def add_parser(sub) -> None:
                    help="results store: keep every result, skip inputs already measured with these settings")
     p.add_argument("--scheduler", metavar="ADDRESS",
                    help="run the measurements on an existing Dask cluster (e.g. tcp://127.0.0.1:8786)")
+    p.add_argument("--store-sync", choices=("full", "normal"), default="full",
+                   help="full (default): every stored row survives power loss; normal: faster, may lose the last rows")
     p.add_argument("--plots", metavar="DIR", help="write a CCF plot per spectrum and rv_time.png here")
     p.add_argument("-q", "--quiet", action="store_true", help="no progress or summary on stderr")
     p.add_argument("--debug", action="store_true", help="show tracebacks of unexpected errors")
@@ -145,7 +147,7 @@ def run(args) -> int:
     if args.store:
         from lineshift.run.store import ResultStore
 
-        store = ResultStore(args.store)
+        store = ResultStore(args.store, durable=args.store_sync == "full")
     progress = Progress(len(paths), args.quiet)
     failures: list[str] = []
 
