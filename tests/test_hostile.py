@@ -205,3 +205,38 @@ def test_stale_temporary_files_are_cleaned(tmp_path):
     with atomic_path(str(tmp_path / "t.csv")) as tmp:
         open(tmp, "w").close()
     assert not stale.exists() and fresh.exists()
+
+
+def test_gzip_bomb_stopped_while_streaming(tmp_path, monkeypatch):
+    import gzip
+    import tracemalloc
+
+    from lineshift.errors import SpectrumFormatError
+    from lineshift.io import loaders
+
+    monkeypatch.setattr(loaders, "MAX_INPUT_BYTES", 8 * 2**20)
+    bomb = tmp_path / "bomb.fits.gz"
+    with gzip.open(bomb, "wb", compresslevel=9) as gz:  # 256 MiB of zeros packs into ~250 kB
+        block = b"\0" * 2**20
+        for _ in range(256):
+            gz.write(block)
+    assert bomb.stat().st_size < 2**20
+    tracemalloc.start()
+    with pytest.raises(SpectrumFormatError, match="decompressed content exceeds the input limit") as info:
+        loaders.load_spectrum(str(bomb))
+    peak = tracemalloc.get_traced_memory()[1]
+    tracemalloc.stop()
+    assert info.value.status == "too large"
+    assert peak < 64 * 2**20  # never near the 256 MiB a full unpack would take
+
+
+def test_pixel_limit_from_the_header(tmp_path, monkeypatch):
+    from lineshift.errors import SpectrumFormatError
+    from lineshift.io import loaders
+
+    monkeypatch.setattr(loaders, "MAX_PIXELS", 1000)
+    path = tmp_path / "big.fits"
+    fits.PrimaryHDU(np.ones((2, 1000), dtype="f4")).writeto(path)
+    with pytest.raises(SpectrumFormatError, match="2,000 pixels, more than the limit") as info:
+        loaders.load_spectrum(str(path))
+    assert info.value.status == "too large"

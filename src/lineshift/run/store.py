@@ -92,7 +92,8 @@ def _recognise(path: str) -> None:
     except OSError as exc:
         raise ConfigError(f"store {path!r} cannot be read ({exc.strerror or exc})") from None
     if magic != b"SQLite format 3\x00":  # the SQLite file header (sqlite.org "Database File Format")
-        raise ConfigError(f"store {path!r} is not a lineshift results store (not an SQLite database): refusing to touch it")
+        raise ConfigError(f"store {path!r} is not a lineshift results store (not an SQLite database): "
+                          "refusing to touch it")
     uri = pathlib.Path(os.path.abspath(path)).as_uri() + "?mode=ro"
     try:
         db = sqlite3.connect(uri, uri=True, timeout=30.0)
