@@ -14,7 +14,7 @@ SRC = os.path.join(os.path.dirname(os.path.dirname(os.path.abspath(__file__))), 
 
 
 def _wait_gone(procs, timeout):
-    gone, alive = psutil.wait_procs(procs, timeout=timeout)
+    _gone, alive = psutil.wait_procs(procs, timeout=timeout)
     return [p for p in alive if p.is_running() and p.status() != psutil.STATUS_ZOMBIE]
 
 
