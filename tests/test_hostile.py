@@ -240,3 +240,30 @@ def test_pixel_limit_from_the_header(tmp_path, monkeypatch):
     with pytest.raises(SpectrumFormatError, match="2,000 pixels, more than the limit") as info:
         loaders.load_spectrum(str(path))
     assert info.value.status == "too large"
+
+
+def test_cluster_failures_are_not_stored(sample_set, tmp_path, monkeypatch):
+    # a stand-in for a Dask cluster whose workers cannot see the files: every task fails to read
+    from lineshift.io.linelists import read_mask
+    from lineshift.run import pipeline
+    from lineshift.run.store import ResultStore
+
+    good, mask = _fits_inputs(sample_set)
+    shipped = []
+
+    def fake_cluster(fn, tasks, ctx, *, workers=1, scheduler=None):
+        for t in tasks:
+            shipped.append(t.path)
+            row = pipeline._empty_row(t.path, None, "unreadable", f"{t.path}: cannot be read (No such file)",
+                                      ctx.settings)
+            yield t, row
+
+    monkeypatch.setattr(pipeline, "run_tasks", fake_cluster)
+    monkeypatch.chdir(os.path.dirname(good[0]))
+    rel = [os.path.basename(g) for g in good]
+    with ResultStore(str(tmp_path / "s.sqlite")) as store:
+        rows = pipeline.measure_files(rel, read_mask(mask), pipeline.MeasureSettings(telluric_bands=False),
+                                      scheduler="tcp://127.0.0.1:1", store=store)
+        assert len(store) == 0  # nothing replayed later as "already in the store"
+    assert all(os.path.isabs(p) for p in shipped)
+    assert [r["file"] for r in rows] == rel

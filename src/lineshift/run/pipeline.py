@@ -177,6 +177,15 @@ def _failure(exc: BaseException, path: str) -> LineshiftError:
     raise exc
 
 
+def cluster_failure(row: dict) -> bool:
+    """A row that failed because a cluster worker could not read a file this process surveyed.
+
+    The survey has already read every task's file here, so "unreadable" on a worker is the
+    cluster's fault (file not shared, worker lost), not the file's: such rows are never stored.
+    """
+    return row.get("status") in ("unreadable", "internal error")
+
+
 def survey(paths: list[str], settings: MeasureSettings) -> list[Observation | LineshiftError]:
     """Phase 1: the observation record of every input (or the error that prevents reading it)."""
     out: list = []
@@ -400,6 +409,8 @@ def measure_files(paths: list[str], mask: LineMask, settings: MeasureSettings, *
     rows: list[dict | None] = [None] * len(paths)
 
     def emit(i: int, row: dict) -> None:
+        if scheduler and row.get("file") is not None:
+            row["file"] = paths[i]  # as given, not the absolute path shipped to the cluster
         rows[i] = row = _clean(row)
         if on_row is not None:
             on_row(row)
@@ -426,7 +437,9 @@ def measure_files(paths: list[str], mask: LineMask, settings: MeasureSettings, *
         if not isinstance(observations[i], Observation):
             continue
         if isinstance(b, BarycentricResult):
-            tasks.append(Task(i, paths[i], b.berv, b.bjd_tdb, b.notes, hashes[i]))
+            # a cluster's workers do not share our working directory: ship absolute paths
+            shipped = os.path.abspath(paths[i]) if scheduler else paths[i]
+            tasks.append(Task(i, shipped, b.berv, b.bjd_tdb, b.notes, hashes[i]))
         else:
             obs = observations[i]
             emit(i, {**_empty_row(paths[i], obs, b.status, str(b), settings), "_error": str(b)})
@@ -479,12 +492,12 @@ def measure_files(paths: list[str], mask: LineMask, settings: MeasureSettings, *
                     final[i] = failed
         for t in todo:
             row = final.get(t.index, first.get(t.index))
-            if store is not None:
+            if store is not None and not (scheduler and cluster_failure(row)):
                 store.put(t.input_hash, report.settings_hash, _clean(row))
             emit(t.index, row)
     else:
         for task, row in run_tasks(measure_task, todo, ctx, workers=workers, scheduler=scheduler):
-            if store is not None:
+            if store is not None and not (scheduler and cluster_failure(row)):
                 store.put(task.input_hash, report.settings_hash, _clean(row))
             emit(task.index, row)
     out = [r for r in rows if r is not None]
