@@ -267,3 +267,19 @@ def test_cluster_failures_are_not_stored(sample_set, tmp_path, monkeypatch):
         assert len(store) == 0  # nothing replayed later as "already in the store"
     assert all(os.path.isabs(p) for p in shipped)
     assert [r["file"] for r in rows] == rel
+
+
+def test_messages_name_the_real_fault(tmp_path):
+    from lineshift.errors import SpectrumFormatError
+    from lineshift.io.loaders import load_spectrum
+
+    def one_d(name, flux, **cards):
+        hdu = fits.PrimaryHDU(np.asarray(flux, dtype="f8"))
+        hdu.header.update({"CRVAL1": 5000.0, "CDELT1": 0.05, "CRPIX1": 1.0, "CTYPE1": "WAVE", **cards})
+        hdu.writeto(tmp_path / name)
+        return str(tmp_path / name)
+
+    with pytest.raises(SpectrumFormatError, match="beyond any spectrograph's range"):
+        load_spectrum(one_d("huge.fits", np.ones(500), CRVAL1=1e300))
+    with pytest.raises(SpectrumFormatError, match="NaN or infinite"):
+        load_spectrum(one_d("inf.fits", np.full(500, np.inf)))

@@ -61,6 +61,11 @@ MAX_INPUT_BYTES = int(float(os.environ.get("LINESHIFT_MAX_INPUT_BYTES", 2**30)))
 MAX_PIXELS = int(float(os.environ.get("LINESHIFT_MAX_PIXELS", 100_000_000)))
 
 
+#: Longest wavelength accepted (Angstrom): 1 mm, past the far infrared (common practice: optical
+#: and infrared spectrographs stop well below 1e6 A = 100 micron).
+MAX_WAVELENGTH = 1e7
+
+
 def _too_large(path: str, what: str) -> SpectrumFormatError:
     return SpectrumFormatError(f"{what} exceeds the input limit of {MAX_INPUT_BYTES:,} bytes "
                                "(LINESHIFT_MAX_INPUT_BYTES)", path=path, status="too large")
@@ -505,6 +510,11 @@ def _build_orders(parts, medium: str, path: str, notes: list) -> list[Order]:
             step = -step[::-1]
             if "wavelengths decrease with pixel: arrays flipped" not in notes:
                 notes.append("wavelengths decrease with pixel: arrays flipped")
+        if not np.all(np.isfinite(wave)) or wave[-1] > MAX_WAVELENGTH:
+            raise SpectrumFormatError(
+                f"order {index} has wavelengths up to {np.nanmax(np.abs(wave)):.3g} A, beyond any "
+                f"spectrograph's range (limit {MAX_WAVELENGTH:.0e} A): check CRVAL/CDELT and the unit",
+                path=path, status="bad wavelengths")
         if np.any(step == 0):
             raise SpectrumFormatError(f"order {index} has zero dispersion (repeated wavelengths)",
                                       path=path, status="bad wavelengths")
@@ -521,7 +531,8 @@ def _build_orders(parts, medium: str, path: str, notes: list) -> list[Order]:
     if not orders:
         raise SpectrumFormatError("contains no orders", path=path)
     if all(not np.any(np.isfinite(o.flux)) for o in orders):
-        raise SpectrumFormatError("all flux values are NaN", path=path, status="no valid flux")
+        kind = "NaN" if all(np.all(np.isnan(o.flux)) for o in orders) else "NaN or infinite"
+        raise SpectrumFormatError(f"all flux values are {kind}", path=path, status="no valid flux")
     if all(not np.any(np.isfinite(o.var) & (o.var > 0)) for o in orders):
         raise SpectrumFormatError("no valid uncertainties (zero, negative or NaN everywhere)", path=path,
                                   status="no valid uncertainties")
