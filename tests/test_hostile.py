@@ -283,3 +283,26 @@ def test_messages_name_the_real_fault(tmp_path):
         load_spectrum(one_d("huge.fits", np.ones(500), CRVAL1=1e300))
     with pytest.raises(SpectrumFormatError, match="NaN or infinite"):
         load_spectrum(one_d("inf.fits", np.full(500, np.inf)))
+
+
+def test_directory_entries_that_are_not_files_get_rows(sample_set, tmp_path):
+    from lineshift.run.pipeline import expand_inputs, survey
+
+    good, _ = _fits_inputs(sample_set)
+    d = tmp_path / "d"
+    d.mkdir()
+    shutil.copy(good[0], d / "good.fits")
+    os.symlink(d / "nowhere.fits", d / "dangling.fits")
+    os.symlink(d / "loop_b.fits", d / "loop_a.fits")
+    os.symlink(d / "loop_a.fits", d / "loop_b.fits")
+    (d / "sub.fits").mkdir()
+    paths = expand_inputs([str(d)])
+    assert sorted(os.path.basename(p) for p in paths) == ["dangling.fits", "good.fits", "loop_a.fits",
+                                                         "loop_b.fits", "sub.fits"]
+    from lineshift.run.pipeline import MeasureSettings
+
+    found = {os.path.basename(p): o for p, o in zip(paths, survey(paths, MeasureSettings()), strict=True)}
+    assert "is a directory" in str(found["sub.fits"])
+    assert "cannot be read" in str(found["dangling.fits"])
+    assert "cannot be read" in str(found["loop_a.fits"])
+    assert not isinstance(found["good.fits"], Exception)

@@ -120,14 +120,20 @@ class Context:
 def expand_inputs(items: Iterable[str]) -> list[str]:
     """Files, directories (their spectrum files, sorted, not recursive) and globs, in order given.
 
-    A name that matches nothing is kept, so that it is reported as unreadable.
+    A name that matches nothing is kept, so that it is reported as unreadable; so are directory
+    entries named like spectra that are not readable files.
     """
     out: list[str] = []
     for item in items:
         if os.path.isdir(item):
-            names = sorted(n for n in os.listdir(item) if not n.startswith(".")
-                           and n.lower().endswith(SPECTRUM_SUFFIXES))
-            out.extend(os.path.join(item, n) for n in names if os.path.isfile(os.path.join(item, n)))
+            try:
+                entries = os.listdir(item)
+            except OSError as exc:
+                raise ConfigError(f"directory {item!r} cannot be listed ({exc.strerror or exc})") from None
+            # entries named like spectra that are not files (dangling links, link loops, a
+            # directory called x.fits) are kept: each gets its own row saying what it is
+            names = sorted(n for n in entries if not n.startswith(".") and n.lower().endswith(SPECTRUM_SUFFIXES))
+            out.extend(os.path.join(item, n) for n in names)
         elif not os.path.exists(item) and any(ch in item for ch in "*?["):
             out.extend(sorted(glob.glob(item)))
         else:
