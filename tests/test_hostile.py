@@ -306,3 +306,26 @@ def test_directory_entries_that_are_not_files_get_rows(sample_set, tmp_path):
     assert "cannot be read" in str(found["dangling.fits"])
     assert "cannot be read" in str(found["loop_a.fits"])
     assert not isinstance(found["good.fits"], Exception)
+
+
+def test_mask_screen_excludes_and_names_outliers(sample_set, tmp_path):
+    from lineshift.io.loaders import read_observation
+    from lineshift.run.mask_builder import _screen
+
+    directory, _, rows = sample_set
+    good = [os.path.join(directory, r["file"]) for r in rows if r["layout"] in ("multi-order", "wcs-1d")]
+    wcs = next(os.path.join(directory, r["file"]) for r in rows if r["layout"] == "wcs-1d")
+    foreign, nan = str(tmp_path / "foreign.fits"), str(tmp_path / "nanflux.fits")
+    shutil.copy(wcs, foreign)
+    with fits.open(foreign, mode="update") as hdul:
+        hdul[0].header["CRVAL1"] = 20011.0
+    shutil.copy(wcs, nan)
+    with fits.open(nan, mode="update") as hdul:
+        hdul[0].data = np.full_like(hdul[0].data, np.nan)
+    paths = [*good, foreign, nan]
+    objects = {p: read_observation(p).object for p in paths}
+    kept, out = _screen([(p, None) for p in paths], objects)
+    assert [p for p, _ in kept] == good
+    reasons = dict(out)
+    assert "overlaps no other input" in reasons[foreign]
+    assert "no finite flux" in reasons[nan] or "NaN" in reasons[nan]
