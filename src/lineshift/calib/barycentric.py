@@ -92,11 +92,34 @@ def _coord(obs: Observation, target: Target):
     return SkyCoord(ra=obs.ra_deg * u.deg, dec=obs.dec_deg * u.deg, **kwargs)
 
 
+#: MJD range accepted for an observation time: 1858-11-17 to 2132-08-31.  Outside it a date is a
+#: header error, not an observation (astropy/ERFA refuse some, e.g. MJD 1e9, and the rest would
+#: give a BERV for no real epoch).  Common practice: MJD = JD - 2400000.5 (IAU 1997 Res. B1).
+MJD_RANGE = (0.0, 100_000.0)
+_JD_RANGE = (2_400_000.5 + MJD_RANGE[0], 2_400_000.5 + MJD_RANGE[1])
+
+
+def check_mjd(mjd: float) -> str | None:
+    """Why ``mjd`` cannot be an observation's MJD (None when it can)."""
+    if not np.isfinite(mjd):
+        return f"observation time MJD {mjd} is not a finite number"
+    if _JD_RANGE[0] <= mjd <= _JD_RANGE[1]:
+        return (f"observation time {mjd} looks like a Julian Date, not an MJD "
+                f"(MJD = JD - 2400000.5 = {mjd - 2_400_000.5:.5f}); fix the header or give the MJD")
+    if not MJD_RANGE[0] <= mjd <= MJD_RANGE[1]:
+        return (f"observation time MJD {mjd:g} is outside the accepted range "
+                f"{MJD_RANGE[0]:g}-{MJD_RANGE[1]:g} (years 1858-2132)")
+    return None
+
+
 def _check(obs: Observation) -> None:
     missing = obs.missing
     if "time" in missing:
         raise MetadataError(f"no usable observation time ({obs.time_source})", path=obs.path,
                             status="missing time")
+    reason = check_mjd(float(obs.mjd_mid))
+    if reason is not None:
+        raise MetadataError(reason, path=obs.path, status="bad time")
     if "target" in missing:
         raise MetadataError("no target position (RA/DEC keywords, --ra/--dec or the config)",
                             path=obs.path, status="missing target")
@@ -149,29 +172,33 @@ def barycentric_batch(observations: list[Observation], *, target: Target | None 
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         with solar_system_ephemeris.set(ephemeris or "builtin"):
-            for key, idx in groups.items():
-                first = observations[idx[0]]
+            for key, group in groups.items():
+                first = observations[group[0]]
                 coord = _coord(first, target)
                 loc = EarthLocation.from_geocentric(*first.site_xyz, unit=u.m)
-                t = Time(np.array([observations[i].mjd_mid for i in idx]), format="mjd", scale=key[-1])
-                berv = coord.radial_velocity_correction(kind="barycentric", obstime=t, location=loc)
-                ltt = t.light_travel_time(coord, kind="barycentric", location=loc)
-                bjd = np.atleast_1d((t.tdb + ltt).jd)
-                berv = np.atleast_1d(berv.to_value(u.m / u.s))
-                status = _iers_status(t)
-                for j, i in enumerate(idx):
-                    notes = ()
-                    if status[j] == "beyond":
-                        notes = (DEGRADED_NOTE,)
-                    elif status[j] == "predicted":
-                        notes = (PREDICTED_NOTE,)
-                    degraded.append(status[j])
-                    applied = float(berv[j])
-                    if observations[i].spec_frame == "barycentric":
-                        notes = (*notes, f"wavelengths already barycentric: no BERV applied (BERV at mid-exposure "
-                                         f"{applied:+.3f} m/s)")
-                        applied = 0.0
-                    results[i] = BarycentricResult(applied, float(bjd[j]), notes)
+
+                def compute(idx, coord=coord, loc=loc, scale=key[-1]):
+                    t = Time(np.array([observations[i].mjd_mid for i in idx]), format="mjd", scale=scale)
+                    berv = coord.radial_velocity_correction(kind="barycentric", obstime=t, location=loc)
+                    ltt = t.light_travel_time(coord, kind="barycentric", location=loc)
+                    return (np.atleast_1d((t.tdb + ltt).jd), np.atleast_1d(berv.to_value(u.m / u.s)),
+                            _iers_status(t))
+
+                try:
+                    parts = [(group, compute(group))]
+                except (ValueError, ArithmeticError, MemoryError):
+                    # one bad value (ERFA refuses it) must not sink the group: one call each
+                    parts = []
+                    for i in group:
+                        try:
+                            parts.append(([i], compute([i])))
+                        except (ValueError, ArithmeticError, MemoryError) as exc:
+                            results[i] = MetadataError(
+                                f"barycentric correction failed for MJD {observations[i].mjd_mid:g} "
+                                f"({type(exc).__name__}: {str(exc).splitlines()[0] if str(exc) else ''})",
+                                path=observations[i].path, status="bad time")
+                for idx, (bjd, berv, status) in parts:
+                    _store(idx, bjd, berv, status, results, degraded, observations)
     for w in caught:
         text = str(w.message)
         if "IERS" in text or "polar motion" in text.lower() or "dubious year" in text.lower():
@@ -192,6 +219,22 @@ DEGRADED_NOTE = ("date beyond the bundled IERS tables: Earth orientation extrapo
 
 PREDICTED_NOTE = ("date after the bundled IERS measurements: Earth orientation from IERS "
                   "predictions (effect < 1 mm/s)")
+
+
+def _store(idx, bjd, berv, status, results, degraded, observations) -> None:
+    for j, i in enumerate(idx):
+        notes = ()
+        if status[j] == "beyond":
+            notes = (DEGRADED_NOTE,)
+        elif status[j] == "predicted":
+            notes = (PREDICTED_NOTE,)
+        degraded.append(status[j])
+        applied = float(berv[j])
+        if observations[i].spec_frame == "barycentric":
+            notes = (*notes, f"wavelengths already barycentric: no BERV applied (BERV at mid-exposure "
+                             f"{applied:+.3f} m/s)")
+            applied = 0.0
+        results[i] = BarycentricResult(applied, float(bjd[j]), notes)
 
 
 def _iers_status(t) -> list[str]:

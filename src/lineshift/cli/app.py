@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import argparse
 import os
+import signal
 import sys
 
 from lineshift._version import __version__
@@ -62,6 +63,7 @@ def _main(argv: list[str] | None) -> int:
     if args.command is None:
         parser.print_help(sys.stderr)
         return 2
+    previous = _sigterm_as_interrupt()
     try:
         return COMMANDS[args.command].run(args)
     except (ConfigError, MaskError) as exc:
@@ -84,6 +86,22 @@ def _main(argv: list[str] | None) -> int:
             raise
         print(f"lineshift: unexpected error ({type(exc).__name__}: {exc}); rerun with --debug", file=sys.stderr)
         return 2
+    finally:
+        if previous is not None:
+            signal.signal(signal.SIGTERM, previous)
+
+
+def _sigterm_as_interrupt():
+    """While a command runs, SIGTERM stops it like Ctrl-C (workers are ended); returns the old handler."""
+    import threading
+
+    if threading.current_thread() is not threading.main_thread():
+        return None
+
+    def handler(signum, frame):
+        raise KeyboardInterrupt
+
+    return signal.signal(signal.SIGTERM, handler)
 
 
 if __name__ == "__main__":

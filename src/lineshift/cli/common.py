@@ -98,6 +98,10 @@ def floats(text: str, n: int, name: str) -> tuple[float, ...]:
     return values
 
 
+def _given(value, default):
+    return default if value is None else value
+
+
 def settings_from(args, cfg):
     from lineshift.calib.barycentric import Target
     from lineshift.io.metadata import parse_dec, parse_ra
@@ -113,11 +117,7 @@ def settings_from(args, cfg):
         raise ConfigError(f"--ra/--dec: {exc.reason}") from None
     site_xyz = parse_site(args.site) if args.site else site.get("xyz")
     vrange = floats(args.velocity_range, 2, "--velocity-range") if args.velocity_range else mc.get("velocity_range")
-    if vrange is not None and vrange[0] >= vrange[1]:
-        raise ConfigError("--velocity-range: LO must be below HI")
-    for name, value in (("--velocity-step", args.velocity_step), ("--box-width", args.box_width)):
-        if value is not None and not value > 0:
-            raise ConfigError(f"{name} must be a positive number of m/s")
+    # every number is checked once, by MeasureSettings (lineshift.run.config.check_settings)
     if args.workers < 1:
         raise ConfigError("--workers must be at least 1")
     frame = t.get("frame")
@@ -132,8 +132,8 @@ def settings_from(args, cfg):
     equinox = t.get("equinox")
     return MeasureSettings(
         method=args.method or mc.get("method", "mask"),
-        search=SearchSettings(velocity_range=vrange, velocity_step=args.velocity_step or mc.get("velocity_step"),
-                              box_width=args.box_width or mc.get("box_width")),
+        search=SearchSettings(velocity_range=vrange, velocity_step=_given(args.velocity_step, mc.get("velocity_step")),
+                              box_width=_given(args.box_width, mc.get("box_width"))),
         continuum_degree=mc.get("continuum_degree", 4),
         medium=args.medium or mc.get("medium"),
         overrides=Overrides(object=args.object or t.get("object"), ra_deg=ra, dec_deg=dec,

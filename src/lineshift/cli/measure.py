@@ -50,10 +50,47 @@ def add_parser(sub) -> None:
                         "all of them again (default: new spectra are measured against the stored template)")
     p.add_argument("--scheduler", metavar="ADDRESS",
                    help="run the measurements on an existing Dask cluster (e.g. tcp://127.0.0.1:8786)")
+    p.add_argument("--store-sync", choices=("full", "normal"), default="full",
+                   help="full (default): every stored row survives power loss; normal: faster, may lose the last rows")
     p.add_argument("--plots", metavar="DIR", help="write a CCF plot per spectrum and rv_time.png here")
     p.add_argument("--report", metavar="REPORT.html",
                    help="write a self-contained HTML report of the run, with a gallery of CCFs")
     add_shared(p, "-q", "--debug")
+
+
+def check_writable(directory: str, what: str, given: str) -> None:
+    """Create ``directory`` if needed and prove a file can be made there, before any work starts."""
+    import tempfile
+
+    try:
+        os.makedirs(directory, exist_ok=True)
+        with tempfile.TemporaryFile(dir=directory):
+            pass
+    except OSError as exc:
+        raise ConfigError(f"{what} {given!r}: cannot write in {directory!r} ({exc.strerror or exc})") from None
+
+
+def unique_plot_names(paths: list[str]) -> dict[str, str]:
+    """A plot file stem per input (keyed by the row's ``file``), unique even when base names repeat.
+
+    ``a/x.fits.gz``, ``b/x.fits.gz`` and ``a/x.csv.gz`` share the stem ``x``: such inputs get the
+    stem plus the first 8 hex digits of the SHA-1 of their absolute path.
+    """
+    import hashlib
+    from collections import Counter
+
+    from lineshift.plots.figures import _stem
+    from lineshift.run.pipeline import printable
+
+    stems = {p: printable(_stem(p)) for p in paths}
+    count = Counter(stems.values())
+    out = {}
+    for p, stem in stems.items():
+        if count[stem] > 1:
+            digest = hashlib.sha1(os.path.abspath(p).encode("utf-8", "surrogateescape")).hexdigest()[:8]
+            stem = f"{stem}_{digest}"
+        out[printable(p)] = stem
+    return out
 
 
 def run(args) -> int:
@@ -86,6 +123,12 @@ def run(args) -> int:
     if args.store and (os.path.abspath(args.store) in inputs
                        or (args.output and os.path.abspath(args.store) == os.path.abspath(args.output))):
         raise ConfigError(f"store {args.store!r} is one of the inputs or the output table")
+    for what, target in (("output", args.output), ("--orders-table", args.orders_table), ("--store", args.store)):
+        if target:
+            check_writable(os.path.dirname(os.path.abspath(target)), what, target)
+    if args.plots:
+        check_writable(args.plots, "--plots", args.plots)
+    plot_names = unique_plot_names(paths)
     if args.scheduler and not args.scheduler.startswith(("tcp://", "tls://", "inproc://", "ucx://")):
         raise ConfigError(f"--scheduler {args.scheduler!r}: expected an address like tcp://HOST:PORT")
     if args.save_mask and os.path.abspath(args.save_mask) in inputs:
@@ -119,7 +162,7 @@ def run(args) -> int:
     if args.store:
         from lineshift.run.store import ResultStore
 
-        store = ResultStore(args.store)
+        store = ResultStore(args.store, durable=args.store_sync == "full")
     progress = Progress(len(paths), args.quiet)
     failures: list[str] = []
 
@@ -134,8 +177,10 @@ def run(args) -> int:
             if args.plots and "_ccf" in row:
                 from lineshift.plots.figures import plot_ccf
 
-                os.makedirs(args.plots, exist_ok=True)
-                plot_ccf(row, args.plots)
+                try:
+                    plot_ccf(row, args.plots, name=plot_names.get(row["file"]))
+                except Exception as exc:  # a plot never costs the table
+                    progress.write(f"lineshift: note: no CCF plot for {row['file']} ({type(exc).__name__}: {exc})")
             row.pop("_ccf", None)
 
     report = BatchReport()
@@ -175,8 +220,10 @@ def run(args) -> int:
     if args.plots:
         from lineshift.plots.figures import plot_rv_time
 
-        os.makedirs(args.plots, exist_ok=True)
-        plot_rv_time(rows, args.plots)
+        try:
+            plot_rv_time(rows, args.plots)
+        except Exception as exc:  # the table is already written
+            print(f"lineshift: note: rv_time.png not written ({type(exc).__name__}: {exc})", file=sys.stderr)
     if args.report:
         import pandas as pd
 

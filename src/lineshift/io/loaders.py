@@ -23,6 +23,7 @@ from __future__ import annotations
 
 import gzip
 import io
+import math
 import os
 import warnings
 from collections.abc import Callable
@@ -53,19 +54,44 @@ _POISSON_NOTE = "no uncertainty given: Poisson variance from the counts assumed"
 
 # --------------------------------------------------------------------------- file access
 
+#: Largest input accepted, in bytes after decompression (default 1 GiB, well below the memory of
+#: a machine that runs two workers); ``LINESHIFT_MAX_INPUT_BYTES`` in the environment changes it.
+MAX_INPUT_BYTES = int(float(os.environ.get("LINESHIFT_MAX_INPUT_BYTES", 2**30)))
+#: Most pixels (array elements of all image extensions together) accepted from one file.
+MAX_PIXELS = int(float(os.environ.get("LINESHIFT_MAX_PIXELS", 100_000_000)))
+
+
+#: Longest wavelength accepted (Angstrom): 1 mm, past the far infrared (common practice: optical
+#: and infrared spectrographs stop well below 1e6 A = 100 micron).
+MAX_WAVELENGTH = 1e7
+
+
+def _too_large(path: str, what: str) -> SpectrumFormatError:
+    return SpectrumFormatError(f"{what} exceeds the input limit of {MAX_INPUT_BYTES:,} bytes "
+                               "(LINESHIFT_MAX_INPUT_BYTES)", path=path, status="too large")
+
+
 def _read_bytes(path: str) -> bytes:
     try:
         with open(path, "rb") as fh:
-            raw = fh.read()
+            if os.fstat(fh.fileno()).st_size > MAX_INPUT_BYTES:
+                raise _too_large(path, "the file")
+            raw = fh.read(MAX_INPUT_BYTES + 1)
     except IsADirectoryError:
         raise SpectrumFormatError("is a directory, not a spectrum", path=path) from None
     except OSError as exc:
         raise SpectrumFormatError(f"cannot be read ({exc.strerror or exc})", path=path) from None
+    if len(raw) > MAX_INPUT_BYTES:
+        raise _too_large(path, "the file")
     if raw[:2] == b"\x1f\x8b":
         try:
-            raw = gzip.decompress(raw)
+            # streamed: stop as soon as the limit is passed, never unpack a bomb in full
+            with gzip.GzipFile(fileobj=io.BytesIO(raw)) as gz:
+                raw = gz.read(MAX_INPUT_BYTES + 1)
         except (OSError, EOFError, gzip.BadGzipFile) as exc:
             raise SpectrumFormatError(f"is a damaged gzip file ({exc})", path=path) from None
+        if len(raw) > MAX_INPUT_BYTES:
+            raise _too_large(path, "the decompressed content")
     if not raw.strip():
         raise SpectrumFormatError("is empty", path=path, status="empty file")
     return raw
@@ -86,9 +112,16 @@ def _open_fits(raw: bytes, path: str, *, read_data: bool = True):
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
             hdul = fits.open(io.BytesIO(raw), memmap=False, lazy_load_hdus=False)
+            pixels = sum(math.prod(h.header.get(f"NAXIS{i}", 0) or 0 for i in range(1, h.header.get("NAXIS", 0) + 1))
+                         for h in hdul if h.header.get("NAXIS", 0))
+            if pixels > MAX_PIXELS:
+                raise SpectrumFormatError(f"holds {pixels:,} pixels, more than the limit of {MAX_PIXELS:,} "
+                                          "(LINESHIFT_MAX_PIXELS)", path=path, status="too large")
             if read_data:
                 for hdu in hdul:
                     _ = hdu.data  # force reading: a damaged data unit fails here, not later
+    except SpectrumFormatError:
+        raise
     except Exception as exc:  # astropy raises many types for damaged files
         raise SpectrumFormatError(f"is not a readable FITS file ({_short(exc)})", path=path) from None
     notes = []
@@ -501,6 +534,11 @@ def _build_orders(parts, medium: str, path: str, notes: list) -> list[Order]:
             step = -step[::-1]
             if "wavelengths decrease with pixel: arrays flipped" not in notes:
                 notes.append("wavelengths decrease with pixel: arrays flipped")
+        if not np.all(np.isfinite(wave)) or wave[-1] > MAX_WAVELENGTH:
+            raise SpectrumFormatError(
+                f"order {index} has wavelengths up to {np.nanmax(np.abs(wave)):.3g} A, beyond any "
+                f"spectrograph's range (limit {MAX_WAVELENGTH:.0e} A): check CRVAL/CDELT and the unit",
+                path=path, status="bad wavelengths")
         if np.any(step == 0):
             raise SpectrumFormatError(f"order {index} has zero dispersion (repeated wavelengths)",
                                       path=path, status="bad wavelengths")
@@ -517,7 +555,8 @@ def _build_orders(parts, medium: str, path: str, notes: list) -> list[Order]:
     if not orders:
         raise SpectrumFormatError("contains no orders", path=path)
     if all(not np.any(np.isfinite(o.flux)) for o in orders):
-        raise SpectrumFormatError("all flux values are NaN", path=path, status="no valid flux")
+        kind = "NaN" if all(np.all(np.isnan(o.flux)) for o in orders) else "NaN or infinite"
+        raise SpectrumFormatError(f"all flux values are {kind}", path=path, status="no valid flux")
     if all(not np.any(np.isfinite(o.var) & (o.var > 0)) for o in orders):
         raise SpectrumFormatError("no valid uncertainties (zero, negative or NaN everywhere)", path=path,
                                   status="no valid uncertainties")

@@ -123,15 +123,47 @@ def rows_to_frame(rows: list[dict]) -> pd.DataFrame:
     return frame
 
 
+#: A temporary file of ours older than this (s) is left by a killed write and is removed.
+STALE_TMP_AGE = 3600.0
+
+
+def _clean_stale(directory: str, name: str) -> None:
+    import glob
+    import time
+
+    for old in glob.glob(os.path.join(glob.escape(directory), f".{glob.escape(name)}.*.tmp")):
+        try:
+            if time.time() - os.path.getmtime(old) > STALE_TMP_AGE:
+                os.unlink(old)
+        except OSError:
+            pass  # another writer's file, or already gone
+
+
+def _umask() -> int:
+    """The process umask, read without changing it where /proc allows (Linux)."""
+    try:
+        with open("/proc/self/status") as fh:
+            for line in fh:
+                if line.startswith("Umask:"):
+                    return int(line.split()[1], 8)
+    except OSError:
+        pass
+    old = os.umask(0o022)
+    os.umask(old)
+    return old
+
+
 @contextlib.contextmanager
 def atomic_path(path: str):
     """Yield a temporary path beside ``path``; on success rename it over ``path``."""
     directory = os.path.dirname(os.path.abspath(path))
     os.makedirs(directory, exist_ok=True)
+    _clean_stale(directory, os.path.basename(path))
     fd, tmp = tempfile.mkstemp(prefix=f".{os.path.basename(path)}.", suffix=".tmp", dir=directory)
     os.close(fd)
     try:
         yield tmp
+        os.chmod(tmp, 0o666 & ~_umask())  # mkstemp makes 0600; a table is as readable as any new file
         os.replace(tmp, path)
     finally:
         if os.path.exists(tmp):

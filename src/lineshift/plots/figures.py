@@ -48,7 +48,7 @@ def _stem(path: str) -> str:
     return name
 
 
-def plot_ccf(row: dict, outdir: str) -> str:
+def plot_ccf(row: dict, outdir: str, name: str | None = None) -> str:
     """CCF (observatory frame) with its fitted profile(s), residuals, and the bisector."""
     v, ccf, model, bis = row["_ccf"]
     fig = plt.figure(figsize=(8.4, 4.8))
@@ -81,7 +81,7 @@ def plot_ccf(row: dict, outdir: str) -> str:
         span = row.get("bisector_span", np.nan)
         axb.set_title(f"bisector span {span:+.1f} ± {row.get('bisector_span_err', np.nan):.1f} m/s", fontsize=8)
     fig.tight_layout()
-    return _save(fig, os.path.join(outdir, f"{_stem(row['file'])}_ccf.png"))
+    return _save(fig, os.path.join(outdir, f"{name or _stem(row['file'])}_ccf.png"))
 
 
 def plot_rv_time(rows: list[dict], outdir: str, name: str = "rv_time.png") -> str | None:

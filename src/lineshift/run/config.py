@@ -150,3 +150,99 @@ def parse_site(text: str) -> tuple[float, float, float]:
         return geodetic_to_xyz(lon, lat, h)
     except MetadataError as exc:
         raise ConfigError(f"--site: {exc.reason}") from None
+
+
+# -- one validation of every numeric setting (command line, TOML and Python alike) -------------------
+
+C_LIGHT = 299_792_458.0  # m/s, exact (SI definition)
+#: Memory the fine CCF grid of one spectrum may take before it is refused (bytes).
+GRID_MEMORY_BUDGET = 4 * 2**30
+#: Assumptions of the estimate: a line as broad as 50 km/s FWHM (a fast rotator), searched over
+#: ``window_fwhm`` FWHM on either side, and 8192 pixels per order (a large CCD row), 8-byte floats.
+_BROAD_FWHM, _PIXELS = 50_000.0, 8192
+#: Heights accepted for a site above the WGS84 ellipsoid (m): the Dead Sea shore to an airborne
+#: observatory's ceiling (common practice: aircraft observatories fly near 14 km).
+SITE_HEIGHT_RANGE = (-1_000.0, 20_000.0)
+#: Parallax accepted (mas): above a galaxy's 1e-4 mas, below Proxima Centauri's 768 mas with room.
+PARALLAX_RANGE = (1e-4, 1_000.0)
+
+
+def _finite(name: str, value) -> float:
+    import math
+
+    try:
+        x = float(value)
+    except (TypeError, ValueError):
+        raise ConfigError(f"{name} = {value!r} is not a number") from None
+    if not math.isfinite(x):
+        raise ConfigError(f"{name} = {value!r} must be a finite number")
+    return x
+
+
+def grid_bytes(step: float, window_fwhm: float = 3.0) -> float:
+    """Estimated bytes of the fine CCF grid for a velocity step (see :data:`GRID_MEMORY_BUDGET`)."""
+    points = 2 * window_fwhm * _BROAD_FWHM / step + 1
+    return points * _PIXELS * 8.0
+
+
+def check_settings(settings) -> None:
+    """Refuse (``ConfigError``, one line) any numeric setting that is not finite or not physical.
+
+    Called by ``MeasureSettings`` itself, so the command line, the TOML file and the Python API
+    go through the same check before any file is read or any array allocated.
+    """
+    s = settings.search
+    if s.velocity_range is not None:
+        lo, hi = (_finite("velocity range", v) for v in s.velocity_range)
+        if not lo < hi:
+            raise ConfigError(f"velocity range {lo:g}..{hi:g}: LO must be below HI")
+        if max(abs(lo), abs(hi)) >= C_LIGHT:
+            raise ConfigError(f"velocity range {lo:g}..{hi:g} m/s reaches the speed of light")
+    for name, value in (("velocity step", s.velocity_step), ("box width", s.box_width)):
+        if value is not None and not _finite(name, value) > 0:
+            raise ConfigError(f"{name} = {value!r} must be a positive number of m/s")
+        if value is not None and value >= C_LIGHT:
+            raise ConfigError(f"{name} = {value:g} m/s is not below the speed of light")
+    if s.velocity_step is not None:
+        need = grid_bytes(s.velocity_step, s.window_fwhm)
+        if need > GRID_MEMORY_BUDGET:
+            raise ConfigError(
+                f"velocity step {s.velocity_step:g} m/s needs about {need / 2**30:,.0f} GiB for the CCF grid "
+                f"(limit {GRID_MEMORY_BUDGET / 2**30:.0f} GiB); use a step of at least "
+                f"{grid_bytes(1.0, s.window_fwhm) / GRID_MEMORY_BUDGET:.1f} m/s")
+    if settings.systemic_velocity is not None:
+        v = _finite("systemic velocity", settings.systemic_velocity)
+        if abs(v) >= C_LIGHT:
+            raise ConfigError(f"systemic velocity {v:g} m/s is not below the speed of light")
+    if not 0 <= int(settings.continuum_degree) <= 12:
+        raise ConfigError("continuum degree must be 0..12")
+    t = settings.target
+    for name in ("pm_ra_cosdec", "pm_dec", "parallax", "radial_velocity", "epoch"):
+        value = getattr(t, name)
+        if value is not None:
+            _finite(name, value)
+    if t.parallax is not None and not PARALLAX_RANGE[0] <= t.parallax <= PARALLAX_RANGE[1]:
+        raise ConfigError(f"parallax {t.parallax:g} mas is outside {PARALLAX_RANGE[0]:g}..{PARALLAX_RANGE[1]:g} mas")
+    if t.radial_velocity is not None and abs(t.radial_velocity) >= C_LIGHT:
+        raise ConfigError(f"radial_velocity {t.radial_velocity:g} m/s is not below the speed of light")
+    if t.epoch is not None and not 1000.0 <= t.epoch <= 3000.0:
+        raise ConfigError(f"epoch {t.epoch:g} is not a Julian year between 1000 and 3000")
+    o = settings.overrides
+    for name in ("ra_deg", "dec_deg"):
+        if getattr(o, name) is not None:
+            _finite(name.replace("_deg", ""), getattr(o, name))
+    if o.site_xyz is not None:
+        check_site(o.site_xyz)
+
+
+def check_site(xyz) -> None:
+    """The site (geocentric metres) must lie near the Earth's surface (WGS84, astropy EarthLocation)."""
+    import astropy.units as u
+    from astropy.coordinates import EarthLocation
+
+    x, y, z = (_finite("site", v) for v in xyz)
+    height = EarthLocation.from_geocentric(x, y, z, unit=u.m).geodetic.height.to_value(u.m)
+    if not SITE_HEIGHT_RANGE[0] <= height <= SITE_HEIGHT_RANGE[1]:
+        raise ConfigError(f"site ({x:.0f}, {y:.0f}, {z:.0f}) m is {height / 1e3:,.1f} km from the Earth's "
+                          f"surface (WGS84); expected {SITE_HEIGHT_RANGE[0] / 1e3:g} to "
+                          f"{SITE_HEIGHT_RANGE[1] / 1e3:g} km")

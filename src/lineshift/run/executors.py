@@ -10,6 +10,7 @@ deterministic.
 
 from __future__ import annotations
 
+import os
 import warnings
 from collections.abc import Iterator
 
@@ -24,11 +25,31 @@ _WORKER_FN = None
 CONNECT_TIMEOUT = "15s"
 
 
-def _init_worker(fn, ctx) -> None:
+#: How often (s) a worker checks that the process that started it is still alive.
+PARENT_POLL = 0.5
+
+
+def _watch_parent(parent: int) -> None:
+    """Exit this worker as soon as its parent is gone (killed with SIGKILL, say): no orphans."""
+    import threading
+    import time
+
+    def watch():
+        while True:
+            time.sleep(PARENT_POLL)
+            if os.getppid() != parent:
+                os._exit(1)
+
+    threading.Thread(target=watch, name="lineshift-parent-watch", daemon=True).start()
+
+
+def _init_worker(fn, ctx, parent: int | None = None) -> None:
     global _WORKER_CTX, _WORKER_FN
     _WORKER_CTX = ctx
     _WORKER_FN = fn
     warnings.simplefilter("ignore")
+    if parent is not None:
+        _watch_parent(parent)
 
 
 def _run_in_worker(task):
@@ -45,21 +66,28 @@ def _processes(fn, tasks, ctx, workers: int, limit: int) -> Iterator:
     import multiprocessing as mp
 
     with cf.ProcessPoolExecutor(max_workers=workers, mp_context=mp.get_context("spawn"),
-                                initializer=_init_worker, initargs=(fn, ctx)) as pool:
-        pending: dict = {}
-        it = iter(tasks)
-        for t in it:
-            pending[pool.submit(_run_in_worker, t)] = t
-            if len(pending) >= limit:
-                break
-        while pending:
-            done, _ = cf.wait(pending, return_when=cf.FIRST_COMPLETED)
-            for fut in done:
-                t = pending.pop(fut)
-                yield t, fut.result()
-                nxt = next(it, None)
-                if nxt is not None:
-                    pending[pool.submit(_run_in_worker, nxt)] = nxt
+                                initializer=_init_worker, initargs=(fn, ctx, os.getpid())) as pool:
+        try:
+            pending: dict = {}
+            it = iter(tasks)
+            for t in it:
+                pending[pool.submit(_run_in_worker, t)] = t
+                if len(pending) >= limit:
+                    break
+            while pending:
+                done, _ = cf.wait(pending, return_when=cf.FIRST_COMPLETED)
+                for fut in done:
+                    t = pending.pop(fut)
+                    yield t, fut.result()
+                    nxt = next(it, None)
+                    if nxt is not None:
+                        pending[pool.submit(_run_in_worker, nxt)] = nxt
+        except BaseException:  # interrupted (SIGINT/SIGTERM) or the caller stopped: no worker outlives us
+            procs = list((getattr(pool, "_processes", None) or {}).values())
+            pool.shutdown(wait=False, cancel_futures=True)
+            for proc in procs:
+                proc.terminate()
+            raise
 
 
 def _dask(fn, tasks, ctx, address: str, limit: int) -> Iterator:

@@ -98,6 +98,42 @@ def _ranges(paths) -> tuple[float, float, float]:
     return lo, hi, float(np.median(dv))
 
 
+def _screen(use, objects: dict) -> tuple[list, list[tuple[str, str]]]:
+    """Keep the inputs that belong: readable with finite flux, the majority's object, and a
+    wavelength range overlapping at least one other input's.  Returns (kept, [(path, reason)])."""
+    from collections import Counter
+
+    from lineshift.errors import LineshiftError
+
+    kept, out, ranges = [], [], {}
+    for p, b in use:
+        try:
+            with np.errstate(all="ignore"):
+                sp = load_spectrum(p)
+                if not any(np.isfinite(o.flux).sum() > 10 for o in sp.orders):
+                    raise MeasurementError("no finite flux", path=p, status="no valid flux")
+            ranges[p] = sp.wavelength_range
+            kept.append((p, b))
+        except (LineshiftError, MemoryError, OSError) as exc:
+            out.append((p, f"{p}: not used for the mask ({getattr(exc, 'reason', exc)})"))
+    named = Counter(objects[p] for p, _ in kept if objects.get(p))
+    if named:
+        major, n = named.most_common(1)[0]
+        if n > len(kept) / 2:
+            out += [(p, f"{p}: not used for the mask (object {objects[p]!r}, the majority is {major!r})")
+                    for p, _ in kept if objects.get(p) and objects[p] != major]
+            kept = [(p, b) for p, b in kept if not objects.get(p) or objects[p] == major]
+    if len(kept) >= 3:  # a spectrum whose range overlaps no other input's does not belong
+        def overlaps(p, q):
+            return ranges[p][0] < ranges[q][1] and ranges[q][0] < ranges[p][1]
+
+        far = [p for p, _ in kept if not any(overlaps(p, q) for q, _ in kept if q != p)]
+        out += [(p, f"{p}: not used for the mask ({ranges[p][0]:.0f}-{ranges[p][1]:.0f} A overlaps "
+                    "no other input)") for p in far]
+        kept = [(p, b) for p, b in kept if p not in far]
+    return kept, out
+
+
 def _coadd(paths, factors, grid, bands) -> Template:
     """One streaming pass over the spectra: a template in the frame given by ``factors``."""
     acc = TemplateAccumulator(grid, bands=bands)
@@ -167,6 +203,9 @@ def build_mask(paths: list[str], settings: MeasureSettings, build: MaskBuildSett
     bary = barycentric_batch([o for _, o in ok], target=settings.target, ephemeris=settings.ephemeris)
     use = [(p, b) for (p, _), b in zip(ok, bary, strict=True) if isinstance(b, BarycentricResult)]
     failures += [(p, str(b)) for (p, _), b in zip(ok, bary, strict=True) if not isinstance(b, BarycentricResult)]
+    objects = {p: o.object for p, o in ok}
+    use, excluded = _screen(use, objects)
+    failures += excluded
     if not use:
         raise MeasurementError("no usable input spectrum", status="no usable input")
     upaths = [p for p, _ in use]

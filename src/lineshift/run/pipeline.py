@@ -36,6 +36,7 @@ from lineshift.io.table import COLUMNS, EXTRA_COLUMNS, SB2_COLUMNS
 from lineshift.measure.mask_engine import SearchSettings, measure_mask
 from lineshift.measure.prepare import prepare_spectrum, reject_telluric_lines
 from lineshift.model import C_MS, LineMask, Observation
+from lineshift.run.config import check_settings
 from lineshift.run.executors import run_tasks
 
 __all__ = ["COLUMNS", "MeasureSettings", "Overrides", "expand_inputs", "measure_files"]
@@ -93,6 +94,7 @@ class MeasureSettings:
             raise ConfigError(f"components must be 1 or 2, not {self.components}")
         if self.components == 2 and self.method == "template":
             raise ConfigError("--components 2 works with the mask engine only (--method mask)")
+        check_settings(self)
 
 
 @dataclass(frozen=True)
@@ -121,14 +123,20 @@ class Context:
 def expand_inputs(items: Iterable[str]) -> list[str]:
     """Files, directories (their spectrum files, sorted, not recursive) and globs, in order given.
 
-    A name that matches nothing is kept, so that it is reported as unreadable.
+    A name that matches nothing is kept, so that it is reported as unreadable; so are directory
+    entries named like spectra that are not readable files.
     """
     out: list[str] = []
     for item in items:
         if os.path.isdir(item):
-            names = sorted(n for n in os.listdir(item) if not n.startswith(".")
-                           and n.lower().endswith(SPECTRUM_SUFFIXES))
-            out.extend(os.path.join(item, n) for n in names if os.path.isfile(os.path.join(item, n)))
+            try:
+                entries = os.listdir(item)
+            except OSError as exc:
+                raise ConfigError(f"directory {item!r} cannot be listed ({exc.strerror or exc})") from None
+            # entries named like spectra that are not files (dangling links, link loops, a
+            # directory called x.fits) are kept: each gets its own row saying what it is
+            names = sorted(n for n in entries if not n.startswith(".") and n.lower().endswith(SPECTRUM_SUFFIXES))
+            out.extend(os.path.join(item, n) for n in names)
         elif not os.path.exists(item) and any(ch in item for ch in "*?["):
             out.extend(sorted(glob.glob(item)))
         else:
@@ -146,6 +154,47 @@ def _empty_row(path: str, obs: Observation | None, status: str, message: str, se
     return row
 
 
+def printable(text: str) -> str:
+    """``text`` with any undecodable file-name bytes (surrogate escapes) written as ``\\xNN``.
+
+    File names are bytes on POSIX; Python decodes the ones that are not UTF-8 with surrogate
+    escapes, which no table format or SQLite can encode.  This is the documented form of such a
+    name in every output.
+    """
+    try:
+        text.encode("utf-8")
+    except UnicodeEncodeError:
+        return text.encode("utf-8", "surrogateescape").decode("utf-8", "backslashreplace")
+    return text
+
+
+def _clean(row: dict) -> dict:
+    for k, v in row.items():
+        if isinstance(v, str):
+            row[k] = printable(v)
+    return row
+
+
+def _failure(exc: BaseException, path: str) -> LineshiftError:
+    """A specific, per-file error for what the operating system or the machine refused."""
+    if isinstance(exc, MemoryError):
+        return SpectrumFormatError("too large to hold in memory", path=path, status="too large")
+    if isinstance(exc, UnicodeError):
+        return SpectrumFormatError(f"text cannot be decoded ({exc.reason})", path=path, status="unreadable")
+    if isinstance(exc, OSError):
+        return SpectrumFormatError(f"cannot be read ({exc.strerror or exc})", path=path, status="unreadable")
+    raise exc
+
+
+def cluster_failure(row: dict) -> bool:
+    """A row that failed because a cluster worker could not read a file this process surveyed.
+
+    The survey has already read every task's file here, so "unreadable" on a worker is the
+    cluster's fault (file not shared, worker lost), not the file's: such rows are never stored.
+    """
+    return row.get("status") in ("unreadable", "internal error")
+
+
 def survey(paths: list[str], settings: MeasureSettings) -> list[Observation | LineshiftError]:
     """Phase 1: the observation record of every input (or the error that prevents reading it)."""
     out: list = []
@@ -155,6 +204,8 @@ def survey(paths: list[str], settings: MeasureSettings) -> list[Observation | Li
         except LineshiftError as exc:
             exc.path = exc.path or path
             out.append(exc)
+        except (MemoryError, UnicodeError, OSError) as exc:
+            out.append(_failure(exc, path))
     return out
 
 
@@ -203,6 +254,11 @@ def measure_task(task: Task, ctx: Context) -> dict:
             if ctx.template is not None:
                 return _with_activity(_template_row(task, obs, orders, ctx), spectrum, s)
             res = ENGINES[s.method](orders, ctx.mask, s.search, berv=task.berv, path=task.path)
+    except (MemoryError, UnicodeError, OSError) as exc:
+        err = _failure(exc, task.path)
+        row = _empty_row(task.path, obs, err.status, str(err), s)
+        row.update(bjd_tdb=task.bjd_tdb, berv=task.berv, _error=str(err))
+        return _clean(row)
     except LineshiftError as exc:
         exc.path = exc.path or task.path
         row = _empty_row(task.path, obs, exc.status, str(exc), s)
@@ -439,7 +495,9 @@ def measure_files(paths: list[str], mask: LineMask, settings: MeasureSettings, *
     rows: list[dict | None] = [None] * len(paths)
 
     def emit(i: int, row: dict) -> None:
-        rows[i] = row
+        if scheduler and row.get("file") is not None:
+            row["file"] = paths[i]  # as given, not the absolute path shipped to the cluster
+        rows[i] = row = _clean(row)
         if on_row is not None:
             on_row(row)
 
@@ -465,7 +523,9 @@ def measure_files(paths: list[str], mask: LineMask, settings: MeasureSettings, *
         if not isinstance(observations[i], Observation):
             continue
         if isinstance(b, BarycentricResult):
-            tasks.append(Task(i, paths[i], b.berv, b.bjd_tdb, b.notes, hashes[i]))
+            # a cluster's workers do not share our working directory: ship absolute paths
+            shipped = os.path.abspath(paths[i]) if scheduler else paths[i]
+            tasks.append(Task(i, shipped, b.berv, b.bjd_tdb, b.notes, hashes[i]))
         else:
             obs = observations[i]
             emit(i, {**_empty_row(paths[i], obs, b.status, str(b), settings), "_error": str(b)})
@@ -498,7 +558,7 @@ def measure_files(paths: list[str], mask: LineMask, settings: MeasureSettings, *
                 if row is None:
                     todo.append(t)
                     continue
-                row.update(file=t.path)  # the path as given this time (the content is the same)
+                row.update(file=printable(t.path))  # the path as given this time (the content is the same)
                 report.skipped += 1
                 emit(t.index, row)
     if settings.method == "template":
@@ -510,8 +570,8 @@ def measure_files(paths: list[str], mask: LineMask, settings: MeasureSettings, *
             emit(t.index, final[t.index])
     else:
         for task, row in run_tasks(measure_task, todo, ctx, workers=workers, scheduler=scheduler):
-            if store is not None:
-                store.put(task.input_hash, report.settings_hash, row)
+            if store is not None and not (scheduler and cluster_failure(row)):
+                store.put(task.input_hash, report.settings_hash, _clean(row))
             emit(task.index, row)
     out = [r for r in rows if r is not None]
     if settings.components == 2:

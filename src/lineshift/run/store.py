@@ -81,6 +81,41 @@ def _jsonable(row: dict) -> dict:
     return out
 
 
+_RESULT_COLUMNS = ["input_hash", "settings_hash", "file", "status", "row", "created"]
+
+
+def _recognise(path: str) -> None:
+    """Refuse, untouched, an existing file that is not a lineshift store (read-only look first)."""
+    import pathlib
+
+    try:
+        if not os.path.exists(path) or os.path.getsize(path) == 0:
+            return
+        with open(path, "rb") as fh:
+            magic = fh.read(16)
+    except OSError as exc:
+        raise ConfigError(f"store {path!r} cannot be read ({exc.strerror or exc})") from None
+    if magic != b"SQLite format 3\x00":  # the SQLite file header (sqlite.org "Database File Format")
+        raise ConfigError(f"store {path!r} is not a lineshift results store (not an SQLite database): "
+                          "refusing to touch it")
+    uri = pathlib.Path(os.path.abspath(path)).as_uri() + "?mode=ro"
+    try:
+        db = sqlite3.connect(uri, uri=True, timeout=30.0)
+        try:
+            tables = {r[0] for r in db.execute("SELECT name FROM sqlite_master WHERE type = 'table'")}
+            cols = [r[1] for r in db.execute("PRAGMA table_info(results)")] if "results" in tables else []
+            schema = (db.execute("SELECT value FROM meta WHERE key = 'schema'").fetchone()
+                      if "meta" in tables else None)
+        finally:
+            db.close()
+    except sqlite3.DatabaseError as exc:
+        raise ConfigError(f"store {path!r} cannot be opened read-only ({exc}): refusing to touch it") from None
+    # "templates" (kept co-added templates) is created on first open: stores written before it lack it
+    if tables - {"templates"} != {"results", "meta"} or cols != _RESULT_COLUMNS or schema is None:
+        raise ConfigError(f"store {path!r} is an SQLite database but not a lineshift results store "
+                          f"(tables: {', '.join(sorted(tables)) or 'none'}): refusing to touch it")
+
+
 class ResultStore:
     """SQLite store of result rows.
 
@@ -88,15 +123,21 @@ class ResultStore:
     ----------
     path : str
         Database file; created if absent.  An existing file that is not a lineshift store is a
-        :class:`ConfigError`.
+        :class:`ConfigError`, found by a read-only look before anything is written.
+    durable : bool
+        ``True`` (default): ``synchronous=FULL``, every commit survives power loss.  ``False``:
+        ``synchronous=NORMAL``, faster on slow disks; a power cut may lose the last rows.
     """
 
-    def __init__(self, path: str):
+    def __init__(self, path: str, *, durable: bool = True):
         self.path = path
+        _recognise(path)
         try:
             self._db = sqlite3.connect(path, timeout=30.0, isolation_level=None)
             self._db.execute("PRAGMA journal_mode=WAL")
-            self._db.execute("PRAGMA synchronous=NORMAL")
+            # FULL: a commit survives power loss, not only a crash of this process (SQLite docs,
+            # "PRAGMA synchronous"); NORMAL in WAL mode may lose the last commits on power loss.
+            self._db.execute(f"PRAGMA synchronous={'FULL' if durable else 'NORMAL'}")
             self._db.execute(
                 "CREATE TABLE IF NOT EXISTS results (input_hash TEXT NOT NULL, settings_hash TEXT NOT NULL, "
                 "file TEXT NOT NULL, status TEXT NOT NULL, row TEXT NOT NULL, created REAL NOT NULL, "
