@@ -72,3 +72,32 @@ def test_bad_pixels_nan_runs_zero_negative_saturated_grown():
         expected[a:b] = True
     assert np.array_equal(bad, expected)
     assert not bad_pixels(np.full(10, 5.0), np.full(10, 5.0)).any()
+
+
+
+def test_pipeline_counts_rejected_pixels(tmp_path):
+    # Injection-recovery through measure_files on a shipped sample file: the clean file reports
+    # 0 rejected pixels; with three 2-pixel cosmic rays at 10x the counts it reports exactly those
+    # 6 pixels plus one grown neighbour on each side (12), and the notes say why.
+    import os
+
+    from astropy.io import fits
+
+    from lineshift.io.linelists import read_mask
+    from lineshift.run.pipeline import MeasureSettings, measure_files
+
+    root = os.path.join(os.path.dirname(__file__), os.pardir)
+    clean = os.path.join(root, "sample_spectra", "vessa-9_demo-echelle_000.fits.gz")
+    hit = str(tmp_path / "hit.fits")
+    with fits.open(clean) as h:
+        flux = h["FLUX"].data.astype(float)
+        for start in (300, 700, 1100):
+            flux[2, start:start + 2] *= 10
+        h["FLUX"].data = flux.astype(np.float32)
+        h.writeto(hit)
+    mask = read_mask(os.path.join(root, "line_lists", "vessa9_mask.csv"))
+    rows = measure_files([clean, hit], mask, MeasureSettings())
+    assert rows[0]["status"] == "ok" and rows[1]["status"] == "ok"
+    assert rows[0]["n_rejected_pixels"] == 0
+    assert rows[1]["n_rejected_pixels"] == 12
+    assert "12 pixel(s) rejected" in rows[1]["notes"]

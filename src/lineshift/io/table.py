@@ -27,13 +27,13 @@ COLUMNS = ["file", "object", "bjd_tdb", "rv", "rv_err", "berv", "rv_topo", "fwhm
            "n_lines", "status"]
 EXTRA_COLUMNS = ["method", "fwhm_err", "contrast_err", "bis_span", "bis_span_err", "rv_chromatic_slope",
                  "rv_chromatic_slope_err", "n_orders", "mjd_mid", "time_scale", "time_source", "layout", "medium",
-                 "notes"]
+                 "n_rejected_pixels", "notes"]
 
 FORMATS = {".csv": "csv", ".ecsv": "ecsv", ".fits": "fits", ".fit": "fits", ".parquet": "parquet"}
 UNITS = {"bjd_tdb": "d", "rv": "m / s", "rv_err": "m / s", "berv": "m / s", "rv_topo": "m / s",
          "fwhm": "m / s", "fwhm_err": "m / s", "mjd_mid": "d", "bis_span": "m / s", "bis_span_err": "m / s",
          "rv2": "m / s", "rv2_err": "m / s", "rv2_topo": "m / s", "fwhm2": "m / s", "fwhm2_err": "m / s"}
-_INT = ("n_lines", "n_orders")
+_INT = ("n_lines", "n_orders", "n_rejected_pixels")
 
 
 def table_format(path: str) -> str:

@@ -81,6 +81,7 @@ def _weighted_polyfit(V: np.ndarray, y: np.ndarray, w: np.ndarray) -> np.ndarray
     A = (w @ VV).reshape(-1, k, k)
     b = (w * y) @ V
     A += np.eye(V.shape[1])[None] * 1e-12 * np.trace(A, axis1=1, axis2=2)[:, None, None]
+    A[np.trace(A, axis1=1, axis2=2) == 0] = np.eye(k)   # an order with no usable pixel: coefficients 0
     return np.linalg.solve(A, b[..., None])[..., 0]
 
 
