@@ -39,7 +39,7 @@ COLUMNS = ["file", "object", "bjd_tdb", "rv", "rv_err", "berv", "rv_topo", "fwhm
            "n_lines", "status"]
 EXTRA_COLUMNS = ["method", "fwhm_err", "contrast_err", "bisector_span", "bisector_span_err", "rv_chromatic_slope",
                  "rv_chromatic_slope_err", "n_orders", "mjd_mid", "time_scale", "time_source", "layout", "medium",
-                 "notes"]
+                 "n_rejected_pixels", "notes"]
 
 FORMATS = {".csv": "csv", ".ecsv": "ecsv", ".fits": "fits", ".fit": "fits", ".parquet": "parquet"}
 #: Old column names still accepted on reading (old name -> current name); dropped one release later.
@@ -55,7 +55,7 @@ UNITS = {"bjd_tdb": "d", "rv": "m / s", "rv_err": "m / s", "berv": "m / s", "rv_
          "wavelength_lab": "Angstrom", "wavelength_measured": "Angstrom", "residual": "m / s",
          "residual_err": "m / s", "pixel": "pix", "offset": "m / s", "offset_err": "m / s", "slope": "m / s",
          "slope_err": "m / s", "rms": "m / s", "offset_from_global": "m / s", "rv_aligned": "m / s"}
-_INT = ("n_lines", "n_orders")
+_INT = ("n_lines", "n_orders", "n_rejected_pixels")
 #: Text-table digits (decimals): 0.001 m/s for velocities, 1e-8 d for times, 1e-6 otherwise.
 _TEXT_DECIMALS = {"m / s": 3, "d": 8}
 _VELOCITY_LIKE = ("rv_chromatic_slope", "rv_chromatic_slope_err")

@@ -24,6 +24,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from lineshift.measure.badpixels import bad_pixels
+from lineshift.measure.outliers import find_spikes
 from lineshift.model import C_MS, LineMask, Order, Spectrum
 
 __all__ = ["PreparedOrder", "fit_continuum", "pixel_edges", "prepare_order", "prepare_spectrum",
@@ -79,6 +81,7 @@ def _weighted_polyfit(V: np.ndarray, y: np.ndarray, w: np.ndarray) -> np.ndarray
     A = (w @ VV).reshape(-1, k, k)
     b = (w * y) @ V
     A += np.eye(V.shape[1])[None] * 1e-12 * np.trace(A, axis1=1, axis2=2)[:, None, None]
+    A[np.trace(A, axis1=1, axis2=2) == 0] = np.eye(k)   # an order with no usable pixel: coefficients 0
     return np.linalg.solve(A, b[..., None])[..., 0]
 
 
@@ -152,7 +155,9 @@ def _prepare_block(orders: list[Order], degree: int) -> list[PreparedOrder | Non
     """Prepare orders of equal length together (array operations across orders)."""
     flux = np.vstack([o.flux for o in orders])
     var = np.vstack([o.var for o in orders])
-    good = np.isfinite(flux) & np.isfinite(var) & (var > 0)
+    # bad pixels grown by the reach of a reduction's interpolation, and cosmic-ray / hot-pixel
+    # spikes against a running median (measure/badpixels.py, measure/outliers.py)
+    good = np.vstack([~bad_pixels(o.flux, o.var) & ~find_spikes(o.flux, o.var) for o in orders])
     blaze = np.ones_like(flux)
     given = [k for k, o in enumerate(orders) if o.blaze is not None]
     if given:

@@ -228,6 +228,31 @@ def effective_mask(mask: LineMask, settings: MeasureSettings, bervs: np.ndarray,
     return mask.select(keep), note
 
 
+def _rejected_pixels(spectrum, orders) -> int:
+    """Pixels the file gives as usable (finite, positive variance) that preparation masked.
+
+    These are the neighbours of bad pixels, non-positive or saturated counts and cosmic-ray /
+    hot-pixel spikes (measure/badpixels.py, measure/outliers.py), in the orders that were kept.
+    """
+    raw = {id(o.wave): o for o in spectrum.orders}   # a prepared order keeps its order's wave array
+    n = 0
+    for p in orders:
+        o = raw.get(id(p.wave))
+        if o is not None and o.flux.size == p.good.size:
+            ok = np.isfinite(o.flux) & np.isfinite(o.var) & (o.var > 0)
+            n += int(np.count_nonzero(ok & ~p.good))
+    return n
+
+
+def _note_rejected(row: dict, n: int) -> dict:
+    row["n_rejected_pixels"] = n
+    if n:
+        why = (f"{n} pixel(s) rejected (cosmic-ray/hot-pixel spikes, saturated or non-positive counts, "
+               "neighbours of bad pixels)")
+        row["notes"] = "; ".join(x for x in (row.get("notes") or "", why) if x)
+    return row
+
+
 def measure_task(task: Task, ctx: Context) -> dict:
     """Phase 4 for one spectrum: a pure function of its task and the batch context.
 
@@ -249,10 +274,11 @@ def measure_task(task: Task, ctx: Context) -> dict:
                 status="outside mask range")
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", RuntimeWarning)
+            n_rej = _rejected_pixels(spectrum, orders)
             if s.components == 2:
-                return _with_activity(_two_component_row(task, obs, orders, ctx), spectrum, s)
+                return _with_activity(_note_rejected(_two_component_row(task, obs, orders, ctx), n_rej), spectrum, s)
             if ctx.template is not None:
-                return _with_activity(_template_row(task, obs, orders, ctx), spectrum, s)
+                return _with_activity(_note_rejected(_template_row(task, obs, orders, ctx), n_rej), spectrum, s)
             res = ENGINES[s.method](orders, ctx.mask, s.search, berv=task.berv, path=task.path)
     except (MemoryError, UnicodeError, OSError) as exc:
         err = _failure(exc, task.path)
@@ -281,6 +307,7 @@ def measure_task(task: Task, ctx: Context) -> dict:
         bisector_span=res.bis_span, bisector_span_err=res.bis_span_err, rv_chromatic_slope=res.chromatic_slope,
         rv_chromatic_slope_err=res.chromatic_slope_err)
     row["_orders"] = [dict(o) for o in res.orders]
+    _note_rejected(row, n_rej)
     if s.keep_ccf:
         row["_ccf"] = (res.velocity, res.ccf, res.model, res.bisector)
     return _with_activity(row, spectrum, s)
