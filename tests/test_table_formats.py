@@ -51,3 +51,18 @@ def test_text_tables_carry_the_digits_of_their_precision(tmp_path, ext):
     assert got["snr"] == "150.123457" and got["contrast"] == "0.351235"
     assert got["n_lines"] == "42"
     assert np.isclose(float(got["bjd_tdb"]), ROW["bjd_tdb"], rtol=0, atol=1e-8)
+
+
+def test_orders_table_names_round_trip():
+    """The per-order table's written names (rv_topo, flag + flag_reason) map back to the measure rows' names."""
+    from lineshift.io.table import orders_frame, orders_from_written
+
+    rows = [{"file": "a.fits", "_orders": [
+        {"order": 3, "wavelength": 5000.0, "rv": 12.5, "rv_err": 1.5, "n_lines": 40, "chi2_red": 1.1, "flag": ""},
+        {"order": 4, "wavelength": 5100.0, "rv": 99.0, "rv_err": 9.0, "n_lines": 3, "chi2_red": 7.0,
+         "flag": "poor fit"}]}]
+    written = orders_frame(rows)
+    assert list(written["flag"]) == [False, True] and list(written["flag_reason"]) == ["", "poor fit"]
+    back = orders_from_written(written)
+    assert list(back["rv"]) == [12.5, 99.0] and list(back["rv_err"]) == [1.5, 9.0]
+    assert list(back["flag"]) == ["", "poor fit"]

@@ -9,10 +9,6 @@ import warnings
 from lineshift.cli.common import Progress, add_shared, check_inputs, settings_from
 from lineshift.errors import ConfigError, LineshiftError
 
-#: Columns of the ``--orders-table`` (docs/reference.md).
-ORDERS_COLUMNS = ["file", "order", "wavelength", "rv_topo", "rv_topo_err", "n_lines", "chi2_red", "flag",
-                  "flag_reason"]
-
 
 def add_parser(sub) -> None:
     """Declare the command and its options on the subcommand set ``sub``."""
@@ -201,16 +197,9 @@ def run(args) -> int:
                               f"across the batch; {report.swaps} exchanged), rv2... the secondary")
     write_table(rows, args.output, meta)
     if args.orders_table:
-        import pandas as pd
+        from lineshift.io.table import orders_frame, write_frame
 
-        from lineshift.io.table import write_frame
-
-        per_order = [{"file": r["file"], "order": o.get("order"), "wavelength": o.get("wavelength"),
-                      "rv_topo": o.get("rv"), "rv_topo_err": o.get("rv_err"), "n_lines": o.get("n_lines"),
-                      "chi2_red": o.get("chi2_red"), "flag": bool(o.get("flag")),
-                      "flag_reason": o.get("flag") or ""}
-                     for r in rows for o in r.get("_orders", [])]
-        write_frame(pd.DataFrame(per_order, columns=ORDERS_COLUMNS), args.orders_table,
+        write_frame(orders_frame(rows), args.orders_table,
                     {"RV_TOPO": "rv_topo, rv_topo_err: per-order velocity in the observatory frame (no barycentric "
                                 "correction; profile width fixed), m/s",
                      "WAVELENGTH": "wavelength: the order's median (mask engine: weighted mean line) wavelength, "

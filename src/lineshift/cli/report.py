@@ -45,9 +45,10 @@ def run(args) -> int:
     frame, meta = read_tables(args.tables)
     orders = _read_table(args.orders) if args.orders else None
     wave = _read_table(args.wavecheck) if args.wavecheck else None
-    if orders is not None and "rv_topo" in orders.columns:   # the written names -> those of the measure rows
-        orders = orders.drop(columns=["rv", "rv_err", "flag"], errors="ignore").rename(
-            columns={"rv_topo": "rv", "rv_topo_err": "rv_err", "flag_reason": "flag"})
+    if orders is not None:   # the written names -> those of the measure rows
+        from lineshift.io.table import orders_from_written
+
+        orders = orders_from_written(orders)
     if orders is not None and not {"file", "order", "rv", "rv_err"} <= set(orders.columns):
         raise ConfigError("is not a per-order table (needs file, order, rv_topo, rv_topo_err)", path=args.orders)
     if wave is not None and not {"file", "order", "offset", "offset_err", "flagged"} <= set(wave.columns):

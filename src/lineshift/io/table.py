@@ -41,6 +41,35 @@ EXTRA_COLUMNS = ["method", "fwhm_err", "contrast_err", "bisector_span", "bisecto
                  "rv_chromatic_slope_err", "n_orders", "mjd_mid", "time_scale", "time_source", "layout", "medium",
                  "n_rejected_pixels", "notes"]
 
+#: Columns of the ``--orders-table`` (docs/reference.md).
+ORDERS_COLUMNS = ["file", "order", "wavelength", "rv_topo", "rv_topo_err", "n_lines", "chi2_red", "flag",
+                  "flag_reason"]
+
+
+def orders_frame(rows):
+    """The per-order table of measured ``rows``: each row's ``_orders`` under the written names.
+
+    In the measure rows an order carries ``rv``/``rv_err`` (observatory frame) and ``flag`` (the reason text,
+    empty when good); the written table says ``rv_topo``/``rv_topo_err`` and splits the flag into a boolean
+    ``flag`` and ``flag_reason``.  :func:`orders_from_written` is the exact inverse.
+    """
+    import pandas as pd
+
+    per_order = [{"file": r["file"], "order": o.get("order"), "wavelength": o.get("wavelength"),
+                  "rv_topo": o.get("rv"), "rv_topo_err": o.get("rv_err"), "n_lines": o.get("n_lines"),
+                  "chi2_red": o.get("chi2_red"), "flag": bool(o.get("flag")), "flag_reason": o.get("flag") or ""}
+                 for r in rows for o in r.get("_orders", [])]
+    return pd.DataFrame(per_order, columns=ORDERS_COLUMNS)
+
+
+def orders_from_written(frame):
+    """A written per-order table back under the names of the measure rows (inverse of :func:`orders_frame`)."""
+    if "rv_topo" not in frame.columns:
+        return frame
+    return frame.drop(columns=["rv", "rv_err", "flag"], errors="ignore").rename(
+        columns={"rv_topo": "rv", "rv_topo_err": "rv_err", "flag_reason": "flag"})
+
+
 FORMATS = {".csv": "csv", ".ecsv": "ecsv", ".fits": "fits", ".fit": "fits", ".parquet": "parquet"}
 #: Old column names still accepted on reading (old name -> current name); dropped one release later.
 OLD_NAMES = OLD_COLUMN_NAMES
