@@ -10,6 +10,7 @@ import os
 import pathlib
 import re
 
+import numpy as np
 import pytest
 from astropy.table import Table
 
@@ -125,6 +126,23 @@ def test_the_tables_each_command_writes_match_the_reference(doc, sample_set, tmp
     assert main(["mask", directory, "-o", str(m), "-q"]) == 0
     first = next(line for line in m.read_text().splitlines() if not line.startswith("#"))
     assert first.split(",") == [c for c, _ in tables["Table: mask"]]
+
+
+def test_the_lines_table_matches_the_reference(doc, sample_set, tmp_path, capfd):
+    _, tables = doc
+    directory, mask, _ = sample_set
+    t, ln = str(tmp_path / "t.ecsv"), str(tmp_path / "l.ecsv")
+    assert main(["measure", directory, "--mask", mask, "--method", "lines", "-o", t, "--lines-table", ln, "-q"]) == 0
+    _check(ln, tables["Table: lines (`--lines-table`)"])
+    measured, lines = Table.read(t), Table.read(ln)
+    assert set(measured["method"]) == {"lines"} and set(lines["file"]) == set(measured["file"])
+    # one row per spectrum and measured line: the table holds every line the measure table counts
+    for row in measured:
+        mine = lines[lines["file"] == row["file"]]
+        measured_rv = ~mine["rv"].mask if hasattr(mine["rv"], "mask") else np.isfinite(mine["rv"])
+        assert int(measured_rv.sum()) == row["n_lines"]
+    assert main(["measure", directory, "--mask", mask, "--lines-table", str(tmp_path / "x.csv")]) == 2
+    assert "--lines-table needs --method lines" in capfd.readouterr().err
 
 
 def test_the_wavecheck_tables_match_the_reference(doc, tmp_path):

@@ -25,9 +25,9 @@ def add_parser(sub) -> None:
     p.add_argument("--velocity-range", metavar="LO,HI", help="barycentric search range, m/s (default -300000,300000)")
     p.add_argument("--velocity-step", type=float, metavar="M_S", help="fine CCF step, m/s (default one pixel)")
     p.add_argument("--box-width", type=float, metavar="M_S", help="mask box full width, m/s (default one pixel)")
-    p.add_argument("--method", choices=("mask", "template"),
-                   help="velocity engine: mask CCF or least-squares template matching (default: mask, or the "
-                        "config's)")
+    p.add_argument("--method", choices=("mask", "template", "lines"),
+                   help="velocity engine: mask CCF, least-squares template matching, or line-by-line against the "
+                        "template with an outlier-resistant combination (default: mask, or the config's)")
     p.add_argument("--components", type=int, choices=(1, 2), default=1,
                    help="2: fit two correlation profiles (double-lined binary); rv2... columns for the secondary")
     p.add_argument("--activity", action="store_true",
@@ -35,6 +35,9 @@ def add_parser(sub) -> None:
     p.add_argument("--b-minus-v", type=float, metavar="MAG", help="the star's B-V colour, for log R'HK")
     p.add_argument("--orders-table", metavar="TABLE",
                    help="per-order topocentric velocities, one row per file and order (.csv, .ecsv, .fits, .parquet)")
+    p.add_argument("--lines-table", metavar="TABLE",
+                   help="with --method lines: per-line velocities, one row per file and mask line "
+                        "(.csv, .ecsv, .fits, .parquet)")
     p.add_argument("--systemic-velocity", type=float, metavar="M_S",
                    help="approximate barycentric velocity for telluric rejection (default: measured)")
     add_shared(p, "--telluric", "--no-telluric", "--ephemeris")
@@ -108,10 +111,13 @@ def run(args) -> int:
     if not paths:
         raise ConfigError(f"no spectrum files in {', '.join(args.spectra)}")
     inputs = {os.path.abspath(p) for p in paths} | ({os.path.abspath(mask_path)} if mask_path else set())
-    if args.orders_table:
-        table_format(args.orders_table)
-        if os.path.abspath(args.orders_table) in inputs:
-            raise ConfigError(f"--orders-table {args.orders_table!r} is one of the inputs")
+    for opt, given in (("--orders-table", args.orders_table), ("--lines-table", args.lines_table)):
+        if given:
+            table_format(given)
+            if os.path.abspath(given) in inputs:
+                raise ConfigError(f"{opt} {given!r} is one of the inputs")
+    if args.lines_table and settings.method != "lines":
+        raise ConfigError("--lines-table needs --method lines")
     if args.output:
         table_format(args.output)
         if os.path.abspath(args.output) in inputs:
@@ -119,7 +125,8 @@ def run(args) -> int:
     if args.store and (os.path.abspath(args.store) in inputs
                        or (args.output and os.path.abspath(args.store) == os.path.abspath(args.output))):
         raise ConfigError(f"store {args.store!r} is one of the inputs or the output table")
-    for what, target in (("output", args.output), ("--orders-table", args.orders_table), ("--store", args.store)):
+    for what, target in (("output", args.output), ("--orders-table", args.orders_table),
+                         ("--lines-table", args.lines_table), ("--store", args.store)):
         if target:
             check_writable(os.path.dirname(os.path.abspath(target)), what, target)
     if args.plots:
@@ -206,6 +213,15 @@ def run(args) -> int:
                                    "Angstrom (vacuum)",
                      "FLAGS": "flag = order flagged (poor fit, rejected, no fit); flag_reason says why"},
                     name="ORDERS")
+    if args.lines_table:
+        from lineshift.io.table import lines_frame, write_frame
+
+        write_frame(lines_frame(rows), args.lines_table,
+                    {**meta, "LINES": "one row per file and mask line; rv, rv_err: the line's barycentric velocity "
+                                      "(rv_topo composed with berv), m/s; line_wavelength: rest, vacuum, Angstrom; "
+                                      "line_depth: 1 - template flux at the line; outlier_probability: membership of "
+                                      "the broad component of the line mixture (Artigau et al. 2022)"},
+                    name="LINES")
     if args.plots:
         from lineshift.plots.figures import plot_rv_time
 

@@ -18,7 +18,12 @@ JSON_UNITS = {"period": "d", "semi_amplitude": "m / s", "eccentricity": "", "ome
               "stellar_mass": "M_sun", "semi_amplitude_2": "m / s", "semi_amplitude_2_err": "m / s",
               "gamma_2": "m / s", "gamma_2_err": "m / s", "mass_ratio": "", "mass_ratio_err": "", "rms_2": "m / s",
               "peaks": {"period": "d", "frequency": "1 / d", "power": "", "fap": "", "aliases": "d"},
-              "rv_bisector_correlation": {"r": "", "p_value": "", "n": "", "slope": "", "significant": ""}}
+              "rv_bisector_correlation": {"r": "", "p_value": "", "n": "", "slope": "", "significant": ""},
+              "indicator_periodograms": {"peaks": {"period": "d", "frequency": "1 / d", "power": "", "fap": ""},
+                                         "power_at_rv_peak": "", "shares_rv_peak": ""},
+              "decorrelation": {"coefficient": "m / s per unit of the indicator",
+                                "coefficient_err": "m / s per unit of the indicator",
+                                "mean": "the indicator's unit"}}
 
 
 def add_parser(sub) -> None:
@@ -42,6 +47,9 @@ def add_parser(sub) -> None:
                    help="flag residuals beyond this many robust sigma")
     p.add_argument("--min-period", type=float, metavar="DAYS", help="shortest period searched (default 1.2 d)")
     p.add_argument("--max-period", type=float, metavar="DAYS", help="longest period searched (default 2 x span)")
+    p.add_argument("--decorrelate", metavar="NAMES",
+                   help="comma-separated indicators (e.g. fwhm,bisector_span) whose linear terms are fitted jointly "
+                        "with the velocity model (the orbit with --fit-orbit, else the data-set offsets)")
     p.add_argument("--plots", metavar="DIR", help="periodogram, orbit and series plots")
     add_shared(p, "-q", "--debug")
 
@@ -64,6 +72,9 @@ def run(args) -> int:
     for out in (args.output, args.json):
         if out and os.path.abspath(out) in ins:
             raise ConfigError(f"output {out!r} is one of the inputs: refusing to overwrite it")
+    names = [n.strip() for n in args.decorrelate.split(",") if n.strip()] if args.decorrelate else []
+    if args.decorrelate is not None and (not names or len(set(names)) != len(names)):
+        raise ConfigError(f"--decorrelate {args.decorrelate!r}: give distinct indicator names separated by commas")
     check_inputs(args.tables, "table")
     s = ser.read_series(args.tables, dataset_column=args.dataset_column)
     say = (lambda text: None) if args.quiet else (lambda text: print(f"lineshift: {text}", file=sys.stderr))
@@ -79,14 +90,25 @@ def run(args) -> int:
     pg = ser.periodogram(s, min_period=args.min_period, max_period=args.max_period, offsets=offsets)
     summary: dict = {"n_points": int(s.t.size), "n_dropped": s.n_dropped, "datasets": s.datasets,
                      "peaks": pg.peaks, "fap": pg.fap_best, "caveats": list(ser.CAVEATS)}
+    from lineshift.series import vetting
+
+    ind_pg = vetting.indicator_periodograms(s, min_period=args.min_period, max_period=args.max_period)
+    if ind_pg and pg.peaks:
+        span = float(np.ptp(s.t[~s.flag]))
+        summary["indicator_periodograms"] = {n: vetting.periodogram_summary(q, rv_frequency=pg.peaks[0]["frequency"],
+                                                                          span=span) for n, q in ind_pg.items()}
+    regressors = None
+    if names:
+        X, means = vetting.decorrelation_regressors(s, names)
+        regressors = (names, X)
     fit = None
     if args.fit_orbit:
-        fit = ser.fit_orbit(s, [p["period"] for p in pg.peaks[:3]])
+        fit = ser.fit_orbit(s, [p["period"] for p in pg.peaks[:3]], regressors=regressors)
         s.flag[:] = False
         s.flag_reason[:] = ""
         ser.flag_outliers(s, fit.model, threshold=args.outlier_threshold, s_jit=fit.jitter)
         if s.flag.any():
-            fit = ser.fit_orbit(s, [fit.orbit.period])
+            fit = ser.fit_orbit(s, [fit.orbit.period], regressors=regressors)
         o = fit.orbit
         offsets = dict(fit.gammas)
         summary.update(model="keplerian", period=o.period, semi_amplitude=o.semi_amplitude, eccentricity=o.eccentricity,
@@ -96,6 +118,9 @@ def run(args) -> int:
             summary.update(ser.derived_masses(fit, args.stellar_mass, args.stellar_mass_err),
                            stellar_mass=args.stellar_mass)
         resid_jit = fit.jitter
+        if names:
+            summary["decorrelation"] = {n: {"coefficient": c, "coefficient_err": e, "mean": means[n]}
+                                        for n, (c, e) in fit.coefficients.items()}
     else:
         from astropy.timeseries import LombScargle
 
@@ -107,6 +132,11 @@ def run(args) -> int:
         resid_jit = ser.jitter(y - np.average(y, weights=1 / s.err[use] ** 2), s.err[use], 1)
         summary.update(model="sinusoid at the strongest peak", period=best["period"], semi_amplitude=amp,
                        eccentricity=0.0, jitter=resid_jit, offsets=offsets)
+        if names:
+            offsets, coefs, _ = vetting.fit_offsets_and_indicators(s, X, names)
+            summary["offsets"] = offsets
+            summary["decorrelation"] = {n: {"coefficient": c, "coefficient_err": e, "mean": means[n]}
+                                        for n, (c, e) in coefs.items()}
     summary["n_flagged"] = int(s.flag.sum())
     corr = ser.bisector_correlation(s, offsets)
     indicator_corr = ser.indicator_correlations(s, offsets)
@@ -147,6 +177,10 @@ def run(args) -> int:
             from lineshift.plots.figures import plot_rv_bisector
 
             plot_rv_bisector(s, offsets, corr, os.path.join(args.plots, "rv_bisector.png"))
+        if ind_pg:
+            from lineshift.plots.figures import plot_indicator_periodograms
+
+            plot_indicator_periodograms(pg, ind_pg, os.path.join(args.plots, "periodograms.png"))
         if indicator_corr:
             from lineshift.plots.figures import plot_indicator_grid
 
@@ -168,6 +202,12 @@ def run(args) -> int:
         if corr["significant"]:
             say("WARNING: velocity and bisector span correlate significantly: the velocity changes come with "
                 "line-shape changes (activity or a blend), not only a companion")
+    for n, d in summary.get("decorrelation", {}).items():
+        say(f"decorrelation: {d['coefficient']:+.4g} +- {d['coefficient_err']:.2g} m/s per unit of {n} "
+            "(fitted jointly with the " + ("orbit)" if fit is not None else "data-set offsets)"))
+    for n, d in summary.get("indicator_periodograms", {}).items():
+        if d["shares_rv_peak"]:
+            say(f"WARNING: the {n} periodogram has one of its strongest peaks at the velocity's strongest period")
     if "mass_ratio" in summary:
         say(f"secondary: K2 = {summary['semi_amplitude_2']:.1f} +- {summary['semi_amplitude_2_err']:.1f} m/s; "
             f"mass ratio q = m2/m1 = K1/K2 = {summary['mass_ratio']:.4f} +- {summary['mass_ratio_err']:.4f}")

@@ -23,9 +23,9 @@ import pandas as pd
 from lineshift.errors import ConfigError
 from lineshift.model import OLD_COLUMN_NAMES
 
-__all__ = ["ACTIVITY_COLUMNS", "COLUMNS", "EXTRA_COLUMNS", "FORMATS", "OLD_NAMES", "SB2_COLUMNS", "UNITS",
-           "atomic_path", "csv_header", "require_parquet", "rows_to_frame", "table_format", "write_frame",
-           "write_table"]
+__all__ = ["ACTIVITY_COLUMNS", "COLUMNS", "EXTRA_COLUMNS", "FORMATS", "LINES_COLUMNS", "OLD_NAMES", "SB2_COLUMNS",
+           "UNITS", "atomic_path", "csv_header", "lines_frame", "require_parquet", "rows_to_frame", "table_format",
+           "write_frame", "write_table"]
 
 #: Columns of the secondary with ``--components 2`` (shared/interface.md), right after the contract columns.
 SB2_COLUMNS = ["rv2", "rv2_err", "fwhm2", "contrast2", "rv2_topo", "fwhm2_err", "contrast2_err", "flux_ratio"]
@@ -70,6 +70,32 @@ def orders_from_written(frame):
         columns={"rv_topo": "rv", "rv_topo_err": "rv_err", "flag_reason": "flag"})
 
 
+#: Columns of the ``--lines-table`` (line-by-line engine, docs/reference.md).
+LINES_COLUMNS = ["file", "bjd_tdb", "line_wavelength", "species", "line_depth", "rv", "rv_err", "rv_topo",
+                 "rv_topo_err", "outlier_probability", "n_pixels", "chi2_red"]
+
+
+def lines_frame(rows):
+    """The per-line table of measured ``rows`` (``--method lines``): one row per spectrum and mask line."""
+    import pandas as pd
+
+    per_line = [{"file": r["file"], "bjd_tdb": r.get("bjd_tdb"), "line_wavelength": ln.get("wavelength"),
+                 "species": ln.get("species") or "", "line_depth": ln.get("depth"), "rv": ln.get("rv"),
+                 "rv_err": ln.get("rv_err"), "rv_topo": ln.get("rv_topo"), "rv_topo_err": ln.get("rv_topo_err"),
+                 "outlier_probability": ln.get("outlier_probability"), "n_pixels": ln.get("n_pixels"),
+                 "chi2_red": ln.get("chi2_red")}
+                for r in rows for ln in (r.get("_lines") or [])]
+    frame = pd.DataFrame(per_line, columns=LINES_COLUMNS)
+    for c in LINES_COLUMNS:
+        if c in ("file", "species"):
+            frame[c] = frame[c].fillna("").astype(str)
+        elif c == "n_pixels":
+            frame[c] = pd.array(frame[c], dtype="Int64")
+        else:
+            frame[c] = pd.to_numeric(frame[c], errors="coerce").astype(float)
+    return frame
+
+
 FORMATS = {".csv": "csv", ".ecsv": "ecsv", ".fits": "fits", ".fit": "fits", ".parquet": "parquet"}
 #: Old column names still accepted on reading (old name -> current name); dropped one release later.
 OLD_NAMES = OLD_COLUMN_NAMES
@@ -80,11 +106,11 @@ UNITS = {"bjd_tdb": "d", "rv": "m / s", "rv_err": "m / s", "berv": "m / s", "rv_
          "fwhm": "m / s", "fwhm_err": "m / s", "mjd_mid": "d", "bisector_span": "m / s",
          "bisector_span_err": "m / s", "rv_chromatic_slope": "m / s", "rv_chromatic_slope_err": "m / s",
          "rv2": "m / s", "rv2_err": "m / s", "rv2_topo": "m / s", "fwhm2": "m / s", "fwhm2_err": "m / s",
-         "rv_topo_err": "m / s", "wavelength": "Angstrom",
+         "rv_topo_err": "m / s", "wavelength": "Angstrom", "line_wavelength": "Angstrom",
          "wavelength_lab": "Angstrom", "wavelength_measured": "Angstrom", "residual": "m / s",
          "residual_err": "m / s", "pixel": "pix", "offset": "m / s", "offset_err": "m / s", "slope": "m / s",
          "slope_err": "m / s", "rms": "m / s", "offset_from_global": "m / s", "rv_aligned": "m / s"}
-_INT = ("n_lines", "n_orders", "n_rejected_pixels")
+_INT = ("n_lines", "n_orders", "n_rejected_pixels", "n_pixels")
 #: Text-table digits (decimals): 0.001 m/s for velocities, 1e-8 d for times, 1e-6 otherwise.
 _TEXT_DECIMALS = {"m / s": 3, "d": 8}
 _VELOCITY_LIKE = ("rv_chromatic_slope", "rv_chromatic_slope_err")

@@ -15,6 +15,17 @@ Band definitions (wavelengths in AIR, Angstrom; converted to vacuum by the calle
   D2 5889.95 A, 0.5 A wide; reference bands 5805.0 A (10 A wide) and 6090.0 A (20 A wide).
   ``I = (F_D1 + F_D2) / (F_L + F_R)``.
 
+Where each number was checked (literature search, 2026-12-03; nothing found wrong):
+  Ca II H & K centres, the 1.09 A triangles and the 20 A continuum bands at 3901.07 / 4001.07 A agree with
+  Cincunegui, Diaz & Mauas (2007, A&A 469, 309: triangular profile of Vaughan et al. 1978, 20 A bands at
+  3901 and 4001 A) and with the edges 3891.067-3911.069 / 3991.067-4011.067 A in public S-index code
+  [paper, secondary]; D1 5895.92 and D2 5889.95 A as in Diaz, Cincunegui & Mauas (2007, arXiv:0704.0812)
+  [paper]; the 1.6 A H-alpha core as in "Optimising the H-alpha index" (2022, arXiv:2210.06903: "the broader
+  1.6 A, generally used in exoplanet detection") [paper]; the Na I D core widths and reference bands and
+  the H-alpha reference bands [memory: the 2011 table itself was not readable]; the C_cf and R_phot
+  polynomials of Noyes et al. as in several independent public implementations [secondary]; the
+  0.44-0.90 validity range [memory].
+
 Every index here is a ratio of band-MEAN fluxes (flux per Angstrom, weighted by the passband); an index
 built from band-integrated fluxes differs from it by a constant ratio of band widths, which a per-instrument
 calibration absorbs.

@@ -14,8 +14,8 @@ from matplotlib.figure import Figure
 
 from lineshift.io.table import atomic_path
 
-__all__ = ["plot_ccf", "plot_drift", "plot_orbit", "plot_order_offsets", "plot_periodogram", "plot_residuals",
-           "plot_rv_bisector", "plot_rv_time", "plot_template"]
+__all__ = ["plot_ccf", "plot_drift", "plot_indicator_periodograms", "plot_orbit", "plot_order_offsets",
+           "plot_periodogram", "plot_residuals", "plot_rv_bisector", "plot_rv_time", "plot_template"]
 
 
 def _save(fig, path: str) -> str:
@@ -304,5 +304,27 @@ def plot_indicator_grid(series, offsets, corr: dict[str, dict], path: str) -> st
                      + ("  SIGNIFICANT" if c["significant"] else ""), fontsize=8)
     for ax in list(axes.flat)[len(names):]:
         ax.set_visible(False)
+    fig.tight_layout()
+    return _save(fig, path)
+
+
+def plot_indicator_periodograms(pg, indicators: dict, path: str) -> str:
+    """The velocity periodogram above one periodogram per indicator, on one period axis; each panel's
+    strongest peaks marked, and the velocity's strongest period as a dashed line through all panels."""
+    names = list(indicators)
+    fig, axes = plt.subplots(len(names) + 1, 1, figsize=(8, 1.9 * (len(names) + 1) + 0.6), sharex=True,
+                             squeeze=False)
+    axes = axes[:, 0]
+    best = pg.peaks[0]["period"] if pg.peaks else None
+    for ax, (label, q) in zip(axes, [("rv", pg)] + [(n, indicators[n]) for n in names], strict=True):
+        ax.semilogx(1 / q.frequency, q.power, lw=0.7, color="0.2" if label == "rv" else "tab:blue")
+        for k, peak in enumerate(q.peaks[:3]):
+            ax.plot(peak["period"], peak["power"], "v", color="tab:red" if k == 0 else "tab:orange", ms=5)
+            ax.annotate(f"{peak['period']:.3f} d", (peak["period"], peak["power"]), textcoords="offset points",
+                        xytext=(4, 2 + 9 * k), fontsize=7)
+        if best is not None:
+            ax.axvline(best, color="tab:red", lw=0.6, ls="--")
+        ax.set_ylabel(f"{label}\nGLS power", fontsize=8)
+    axes[-1].set_xlabel("period (d)")
     fig.tight_layout()
     return _save(fig, path)

@@ -44,7 +44,10 @@ __all__ = ["COLUMNS", "MeasureSettings", "Overrides", "expand_inputs", "measure_
 SPECTRUM_SUFFIXES = (".fits", ".fit", ".fts", ".fits.gz", ".fit.gz", ".fts.gz", ".csv", ".csv.gz",
                      ".txt", ".txt.gz", ".dat", ".dat.gz", ".tsv", ".tsv.gz")
 
-ENGINES: dict[str, Callable] = {"mask": measure_mask, "template": measure_mask}  # template: first pass by mask
+ENGINES: dict[str, Callable] = {"mask": measure_mask, "template": measure_mask,   # template, lines: first
+                                 "lines": measure_mask}                            # pass by mask
+#: Engines that fit each spectrum against the co-added template (second pass).
+CO_ADDED = ("template", "lines")
 
 #: Set by ``--debug``: unexpected errors propagate instead of becoming a row status.
 DEBUG = False
@@ -92,7 +95,7 @@ class MeasureSettings:
             raise ConfigError(f"unknown method {self.method!r} (known: {', '.join(ENGINES)})")
         if self.components not in (1, 2):
             raise ConfigError(f"components must be 1 or 2, not {self.components}")
-        if self.components == 2 and self.method == "template":
+        if self.components == 2 and self.method in CO_ADDED:
             raise ConfigError("--components 2 works with the mask engine only (--method mask)")
         check_settings(self)
 
@@ -109,6 +112,7 @@ class Task:
     input_hash: str = ""
     delta0: float | None = None      # template engine: starting ln(1 + rv_topo/c) in the template frame
     factor: float | None = None      # template engine: the factor this spectrum entered the template with
+    fwhm: float | None = None        # lines engine: first-pass FWHM (m/s), sets the per-line windows
 
 
 @dataclass(frozen=True)
@@ -278,7 +282,8 @@ def measure_task(task: Task, ctx: Context) -> dict:
             if s.components == 2:
                 return _with_activity(_note_rejected(_two_component_row(task, obs, orders, ctx), n_rej), spectrum, s)
             if ctx.template is not None:
-                return _with_activity(_note_rejected(_template_row(task, obs, orders, ctx), n_rej), spectrum, s)
+                engine_row = _lines_row if s.method == "lines" else _template_row
+                return _with_activity(_note_rejected(engine_row(task, obs, orders, ctx), n_rej), spectrum, s)
             res = ENGINES[s.method](orders, ctx.mask, s.search, berv=task.berv, path=task.path)
     except (MemoryError, UnicodeError, OSError) as exc:
         err = _failure(exc, task.path)
@@ -349,6 +354,41 @@ def _template_row(task: Task, obs: Observation, orders, ctx: Context) -> dict:
     return row
 
 
+def _lines_row(task: Task, obs: Observation, orders, ctx: Context) -> dict:
+    """The line-by-line engine's row (``--method lines``); per-line velocities in ``_lines``."""
+    from lineshift.measure.lines_engine import LinesSettings, measure_lines
+
+    if task.delta0 is None:
+        raise MeasurementError("no first-pass velocity to start the line-by-line fit from", path=task.path,
+                               status="no velocity")
+    settings = LinesSettings()
+    if task.fwhm is not None and np.isfinite(task.fwhm) and task.fwhm > 0:
+        # the line and its wings: +-1.5 FWHM is +-3.5 sigma of a Gaussian profile
+        settings = LinesSettings(half_window=1.5 * float(task.fwhm))
+    res = measure_lines(orders, ctx.template, ctx.mask, settings, delta0=task.delta0, factor=task.factor,
+                        path=task.path)
+    scale = 1 + task.berv / C_MS
+    lines = []
+    for line in res.lines:
+        line = dict(line)
+        line["rv_topo"] = line.pop("rv")
+        line["rv_topo_err"] = line.pop("rv_err")
+        line["rv"] = float(compose_velocity(line["rv_topo"], task.berv)) if np.isfinite(line["rv_topo"]) else np.nan
+        line["rv_err"] = line["rv_topo_err"] * scale
+        lines.append(line)
+    outliers = sum(1 for line in lines if line["outlier_probability"] > 0.5)
+    notes = tuple(obs.notes) + task.notes + (
+        (f"{outliers} of {res.n_lines} lines more likely outliers than not (line-by-line mixture, "
+         f"outlier fraction {res.outlier_fraction:.3f}, width {res.outlier_width:.0f} m/s)",) if outliers else ())
+    row = _empty_row(task.path, obs, "ok", "; ".join(notes), ctx.settings)
+    row.update(bjd_tdb=task.bjd_tdb, berv=task.berv, rv=float(compose_velocity(res.rv, task.berv)),
+               rv_err=res.rv_err * scale, rv_topo=res.rv, snr=res.snr, n_orders=res.n_orders, n_lines=res.n_lines,
+               method="lines")
+    row["_orders"] = [dict(o) for o in res.orders]
+    row["_lines"] = lines
+    return row
+
+
 def _fit_against(tasks: list[Task], first: dict[int, dict], rv: dict[int, float], ctx: Context, state,
                  in_template: dict[int, float], *, workers: int, scheduler) -> dict[int, dict]:
     """Fit each spectrum against the template ``state``, starting from velocity ``rv`` (m/s); a spectrum that
@@ -356,12 +396,13 @@ def _fit_against(tasks: list[Task], first: dict[int, dict], rv: dict[int, float]
     itself.  Line-shape columns come from the mask pass (``first``)."""
     tctx = Context(ctx.mask, ctx.settings, state)
     ttasks = [replace(t, delta0=float(np.log((1 + rv[t.index] / C_MS) / (1 + t.berv / C_MS))),
-                      factor=in_template.get(t.index)) for t in tasks]
+                      factor=in_template.get(t.index), fwhm=first[t.index].get("fwhm")) for t in tasks]
     new = {}
     for task, row in run_tasks(measure_task, ttasks, tctx, workers=workers, scheduler=scheduler):
         first_row = first[task.index]
         for k in ("fwhm", "contrast", "fwhm_err", "contrast_err", "bisector_span", "bisector_span_err", "n_lines"):
-            row[k] = first_row.get(k)
+            if not (k == "n_lines" and row.get(k) is not None):   # the lines engine counts its own lines
+                row[k] = first_row.get(k)
         new[task.index] = row
     return new
 
@@ -401,7 +442,7 @@ def _run_template(tasks: list[Task], first: dict[int, dict], ctx: Context, *, wo
         new = _fit_against(use, first, {t.index: rows[t.index]["rv"] for t in use}, ctx, state, factor,
                            workers=workers, scheduler=scheduler)
         moved = [abs(new[i]["rv"] - rows[i]["rv"]) / new[i]["rv_err"] for i in new
-                 if new[i]["status"] == "ok" and rows[i].get("method") == "template"]
+                 if new[i]["status"] == "ok" and rows[i].get("method") in CO_ADDED]
         rows.update(new)
         if moved and max(moved) < 0.1:
             break
@@ -468,7 +509,7 @@ def _template_rows(tasks: list[Task], todo: list[Task], ctx: Context, store, sto
                 final[i] = row
         return final
     for row in final.values():
-        if row.get("method") == "template" and row.get("status") == "ok":
+        if row.get("method") in CO_ADDED and row.get("status") == "ok":
             row["notes"] = "; ".join(n for n in (row.get("notes"), note) if n)
     return final
 
@@ -576,9 +617,9 @@ def measure_files(paths: list[str], mask: LineMask, settings: MeasureSettings, *
         from lineshift.run.store import settings_hash
 
         key = report.settings_hash = settings_hash(settings, use_mask)
-        if settings.method == "template" and not rebuild_template:
+        if settings.method in CO_ADDED and not rebuild_template:
             stored_template = store.get_template(key)
-        if settings.method != "template" or stored_template is not None:
+        if settings.method not in CO_ADDED or stored_template is not None:
             todo = []
             for t in tasks:
                 row = store.get(t.input_hash, key)
@@ -588,7 +629,7 @@ def measure_files(paths: list[str], mask: LineMask, settings: MeasureSettings, *
                 row.update(file=printable(t.path))  # the path as given this time (the content is the same)
                 report.skipped += 1
                 emit(t.index, row)
-    if settings.method == "template":
+    if settings.method in CO_ADDED:
         final = _template_rows(tasks, todo, ctx, store, stored_template, report, workers=workers,
                                scheduler=scheduler)
         for t in todo:

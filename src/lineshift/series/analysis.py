@@ -312,6 +312,8 @@ class OrbitFit:
     rms: float
     n_points: int
     model: np.ndarray
+    #: with ``regressors``: per indicator (coefficient, error), m/s per unit of the indicator
+    coefficients: dict[str, tuple[float, float]] = field(default_factory=dict)
 
 
 def _unpack(x, datasets):
@@ -328,7 +330,8 @@ def _kepler_model(x, t, ds_idx, datasets, t_ref):
     return radial_velocity(t, Orbit(P, K, min(e, 0.99), w, tp)) + g
 
 
-def fit_orbit(s: Series, periods: list[float], *, max_iter_jitter: int = 4) -> OrbitFit:
+def fit_orbit(s: Series, periods: list[float], *, max_iter_jitter: int = 4,
+              regressors: tuple[list[str], np.ndarray] | None = None) -> OrbitFit:
     """Keplerian fit started from each period in ``periods``; the best (lowest chi-square) is kept.
 
     Parameters are (ln P, K, sqrt(e) cos w, sqrt(e) sin w, mean anomaly at t_ref, gamma per data
@@ -336,18 +339,27 @@ def fit_orbit(s: Series, periods: list[float], *, max_iter_jitter: int = 4) -> O
     with the measurement errors alone and compared by chi-square; the best is then refitted with
     the jitter estimated by maximum likelihood.  Errors come from the Jacobian at the solution
     (propagated to P, e, omega, T_peri).
+
+    ``regressors`` = (names, R): linear terms ``R @ c`` (R: one row per point of ``s``, e.g. centred
+    indicators; rows with a NaN are left out) fitted jointly with the orbit; ``coefficients`` gives c.
     """
-    use = ~s.flag
+    reg_names, R_all = regressors if regressors is not None else ([], np.zeros((s.t.size, 0)))
+    use = ~s.flag & np.all(np.isfinite(R_all), axis=1)
     t, y, err, ds = s.t[use], s.rv[use], s.err[use], s.dataset[use]
+    R = R_all[use]
+    n_reg = R.shape[1]
     datasets = list(dict.fromkeys(ds.tolist()))
     ds_idx = np.array([datasets.index(d) for d in ds])
     t_ref = float(np.round(np.median(t), 1))
     n_ds = len(datasets)
 
+    def model(x, tt, idx, RR):
+        return _kepler_model(x[: 5 + n_ds], tt, idx, datasets, t_ref) + RR @ x[5 + n_ds:]
+
     def solve(x0, sig, P0):
-        lo = np.array([np.log(P0 * 0.8), 0.0, -0.95, -0.95, -np.inf] + [-np.inf] * n_ds)
-        hi = np.array([np.log(P0 * 1.25), np.inf, 0.95, 0.95, np.inf] + [np.inf] * n_ds)
-        return least_squares(lambda x: (_kepler_model(x, t, ds_idx, datasets, t_ref) - y) / sig,
+        lo = np.array([np.log(P0 * 0.8), 0.0, -0.95, -0.95, -np.inf] + [-np.inf] * (n_ds + n_reg))
+        hi = np.array([np.log(P0 * 1.25), np.inf, 0.95, 0.95, np.inf] + [np.inf] * (n_ds + n_reg))
+        return least_squares(lambda x: (model(x, t, ds_idx, R) - y) / sig,
                              np.clip(x0, lo + 1e-9, hi - 1e-9), bounds=(lo, hi), x_scale="jac")
 
     # every start is fitted with the measurement errors alone, so their chi-squares compare fairly
@@ -358,7 +370,8 @@ def fit_orbit(s: Series, periods: list[float], *, max_iter_jitter: int = 4) -> O
             for ph0 in (0.0, 2.0, 4.0):
                 gam0 = [float(np.median(y[ds == d])) for d in datasets]
                 K0 = max(0.5 * np.ptp(y), 1.0)
-                x0 = np.array([np.log(P0), K0, np.sqrt(e0) * np.cos(w0), np.sqrt(e0) * np.sin(w0), ph0, *gam0])
+                x0 = np.array([np.log(P0), K0, np.sqrt(e0) * np.cos(w0), np.sqrt(e0) * np.sin(w0), ph0, *gam0,
+                               *np.zeros(n_reg)])
                 res = solve(x0, err, P0)
                 chi2 = float(np.sum(res.fun**2))
                 if best is None or chi2 < best[0]:
@@ -367,7 +380,7 @@ def fit_orbit(s: Series, periods: list[float], *, max_iter_jitter: int = 4) -> O
     # then the jitter by maximum likelihood, refitting with it
     s_jit = 0.0
     for _ in range(max_iter_jitter):
-        resid = _kepler_model(res.x, t, ds_idx, datasets, t_ref) - y
+        resid = model(res.x, t, ds_idx, R) - y
         new_jit = jitter(resid, err, n_params=res.x.size)
         if abs(new_jit - s_jit) < 1e-3 * (1 + s_jit):
             break
@@ -379,11 +392,11 @@ def fit_orbit(s: Series, periods: list[float], *, max_iter_jitter: int = 4) -> O
     with np.errstate(all="ignore"):
         cov = np.linalg.pinv(J.T @ J)
     dof = max(t.size - x.size, 1)
-    P, K, e, w, phase, gam = _unpack(x, datasets)
+    P, K, e, w, phase, gam = _unpack(x[: 5 + n_ds], datasets)
     tp = t_ref - phase / (2 * np.pi) * P
 
     def derived(xx):
-        P_, K_, e_, w_, ph_, _ = _unpack(xx, datasets)
+        P_, K_, e_, w_, ph_, _ = _unpack(xx[: 5 + n_ds], datasets)
         return np.array([P_, K_, e_, w_, t_ref - ph_ / (2 * np.pi) * P_])
 
     D = np.empty((5, x.size))
@@ -397,11 +410,13 @@ def fit_orbit(s: Series, periods: list[float], *, max_iter_jitter: int = 4) -> O
     names = ["period", "semi_amplitude", "eccentricity", "omega", "time_periastron"]
     errors = {n: float(np.sqrt(max(C[i, i], 0.0))) for i, n in enumerate(names)}
     g_err = {d: float(np.sqrt(max(cov[5 + i, 5 + i], 0.0))) for i, d in enumerate(datasets)}
-    model_all = _kepler_model(x, s.t, np.array([datasets.index(d) if d in datasets else 0 for d in s.dataset]),
-                              datasets, t_ref)
+    model_all = model(x, s.t, np.array([datasets.index(d) if d in datasets else 0 for d in s.dataset]),
+                      np.nan_to_num(R_all))
     resid = y - model_all[use]
+    coefs = {n: (float(x[5 + n_ds + j]), float(np.sqrt(max(cov[5 + n_ds + j, 5 + n_ds + j], 0.0))))
+             for j, n in enumerate(reg_names)}
     return OrbitFit(Orbit(P, K, e, float(np.mod(w, 2 * np.pi)), tp), errors, gam, g_err, s_jit, chi2 / dof,
-                    float(np.std(resid)), int(t.size), model_all)
+                    float(np.std(resid)), int(t.size), model_all, coefs)
 
 
 def derived_masses(fit: OrbitFit, m_star: float, m_star_err: float = 0.0) -> dict[str, float]:
