@@ -34,21 +34,16 @@ import numpy as np
 from lineshift.errors import LineshiftError, MetadataError, SpectrumFormatError
 from lineshift.io import airvac
 from lineshift.io.metadata import read_site, read_spec_frame, read_target, read_time
+from lineshift.io.wcs import angstrom_factor, is_multispec, multispec_orders, wcs_wavelengths
 from lineshift.model import Observation, Order, Spectrum
 
-__all__ = ["load_spectrum", "read_observation"]
+__all__ = ["load_spectrum", "read_observation", "wcs_wavelengths"]
 
 WAVE_NAMES = ("WAVE", "WAVELENGTH", "LAMBDA", "LAM")
 FLUX_NAMES = ("FLUX",)
 STD_NAMES = ("ERR", "ERROR", "SIGMA", "UNCERT")
 VAR_NAMES = ("VAR", "VARIANCE")
 IVAR_NAMES = ("IVAR",)
-_UNIT_TO_ANGSTROM = {
-    "angstrom": 1.0, "angstroms": 1.0, "a": 1.0, "aa": 1.0, "0.1nm": 1.0,
-    "nm": 10.0, "nanometer": 10.0, "nanometers": 10.0,
-    "um": 1.0e4, "micron": 1.0e4, "microns": 1.0e4, "micrometer": 1.0e4,
-    "m": 1.0e10, "meter": 1.0e10, "cm": 1.0e8, "mm": 1.0e7,
-}
 _POISSON_NOTE = "no uncertainty given: Poisson variance from the counts assumed"
 
 
@@ -162,13 +157,7 @@ def _header_getter(*headers) -> Callable[[str], object]:
 
 
 def _wave_factor(unit, path: str, what: str) -> float:
-    if unit is None or not str(unit).strip():
-        return 1.0
-    key = str(unit).strip().lower()
-    if key not in _UNIT_TO_ANGSTROM:
-        raise SpectrumFormatError(f"{what} = {unit!r} is not a wavelength unit (Angstrom, nm, um, m)",
-                                  path=path, status="bad wavelengths")
-    return _UNIT_TO_ANGSTROM[key]
+    return angstrom_factor(unit, path, what)
 
 
 # --------------------------------------------------------------------------- public API
@@ -328,62 +317,14 @@ def _load_fits(hdul, path: str, *, medium: str | None, arrays: bool):
 
     for hdu in hdul:
         if isinstance(hdu, fits.PrimaryHDU | fits.ImageHDU) and _has_data(hdu):
+            if is_multispec(hdu.header):
+                return _load_multispec(hdul, hdu, primary, path, medium=medium, arrays=arrays)
             if hdu.header.get("CTYPE1") is not None:
                 return _load_wcs_1d(hdul, hdu, primary, path, medium=medium, arrays=arrays)
             break
     raise SpectrumFormatError(
         "has no spectrum: no 1-D image with CTYPE1, no table with wavelength and FLUX columns, "
         "no FLUX+WAVE image extensions", path=path, status="not a spectrum")
-
-
-def wcs_wavelengths(header, n: int, path: str = "") -> tuple[np.ndarray, str]:
-    """Pixel-centre wavelengths (Angstrom, in the header's medium) of a 1-D spectral WCS.
-
-    Linear: ``lambda = CRVAL1 + CDELT1 (p - CRPIX1)``; ``-LOG``: ``lambda = CRVAL1 exp(CDELT1 (p -
-    CRPIX1) / CRVAL1)`` (Greisen et al. 2006, FITS WCS Paper III, sect. 3.2), p = 1..n.  The older
-    convention ``DC-FLAG = 1`` (CRVAL1, CDELT1 in log10 Angstrom) is also read.  ``CD1_1`` wins over
-    ``CDELT1``; ``PC1_1`` multiplies ``CDELT1`` (FITS WCS Paper I, sect. 2.1.2).
-    Returns the wavelengths and the medium (``air`` for ``AWAV*``).
-    """
-    ctype = str(header.get("CTYPE1", "")).strip().upper()
-    base, _, algo = ctype.partition("-")
-    algo = algo.strip("-")
-    if base not in ("WAVE", "AWAV", "LINEAR") or algo not in ("", "LOG"):
-        raise SpectrumFormatError(
-            f"CTYPE1 = {ctype!r} is not a wavelength axis (WAVE, AWAV, WAVE-LOG, AWAV-LOG)",
-            path=path, status="bad wavelengths")
-    try:
-        crval = float(header["CRVAL1"])
-        crpix = float(header.get("CRPIX1", 1.0))
-        # FITS WCS Paper I (Greisen & Calabretta 2002, sect. 2.1.2): CDi_j, when present, replaces
-        # CDELTi and PCi_j; otherwise the scale is CDELTi * PCi_j (PC1_1 defaults to 1)
-        if header.get("CD1_1") is not None:
-            delt = float(header["CD1_1"])
-        elif header.get("CDELT1") is not None:
-            delt = float(header["CDELT1"]) * float(header.get("PC1_1", 1.0))
-        else:
-            raise KeyError("CDELT1")
-    except KeyError as exc:
-        raise SpectrumFormatError(f"spectral WCS lacks {exc.args[0]}", path=path, status="bad wavelengths") from None
-    except (TypeError, ValueError):
-        raise SpectrumFormatError("spectral WCS keywords are not numbers", path=path,
-                                  status="bad wavelengths") from None
-    if not (np.isfinite(crval) and np.isfinite(delt) and np.isfinite(crpix)):
-        raise SpectrumFormatError("spectral WCS keywords are not finite", path=path, status="bad wavelengths")
-    if delt == 0:
-        raise SpectrumFormatError("zero dispersion (CDELT1 = 0)", path=path, status="bad wavelengths")
-    if delt < 0:
-        raise SpectrumFormatError(
-            "reversed dispersion (CDELT1 < 0): wavelengths must increase with pixel", path=path,
-            status="bad wavelengths")
-    pix = np.arange(1, n + 1, dtype=float) - crpix
-    if int(header.get("DC-FLAG", 0) or 0) == 1:
-        wave = 10.0 ** (crval + delt * pix)
-        factor = 1.0
-    else:
-        factor = _wave_factor(header.get("CUNIT1"), path, "CUNIT1")
-        wave = crval * np.exp(delt * pix / crval) if algo == "LOG" else crval + delt * pix
-    return wave * factor, ("air" if base == "AWAV" else "vacuum")
 
 
 def _load_wcs_1d(hdul, hdu, primary, path: str, *, medium: str | None, arrays: bool):
@@ -393,14 +334,74 @@ def _load_wcs_1d(hdul, hdu, primary, path: str, *, medium: str | None, arrays: b
     if shape[0] < 2 or any(n != 1 for n in shape[1:]):
         raise SpectrumFormatError(f"image with CTYPE1 has shape {tuple(shape[::-1])}, expected 1-D along axis 1",
                                   path=path)
-    wave, wcs_medium = wcs_wavelengths(hdu.header, shape[0], path)
+    wave, wcs_medium = wcs_wavelengths(hdu.header, shape[0], path, hdul=hdul, notes=notes)
     file_medium = medium or wcs_medium
+    if medium is None and _ctype_base(hdu.header) == "LINEAR":
+        notes.append(_IRAF_MEDIUM_NOTE)
     obs = _observation(get, path, "wcs-1d", file_medium, notes)
     if not arrays:
         return obs, []
     data = np.asarray(hdu.data, dtype=float).ravel()
     var = _uncertainty_from_ext(hdul, data, path, notes)
     orders = _build_orders([(wave, data, var, None)], file_medium, path, notes)
+    return replace(obs, notes=tuple(notes)), orders
+
+
+_IRAF_MEDIUM_NOTE = ("IRAF dispersion has no air/vacuum flag: vacuum assumed (IRAF's arc line lists are "
+                     "mostly in air: give --medium air if so)")
+
+
+def _ctype_base(header) -> str:
+    return str(header.get("CTYPE1", "") or "").strip().upper().partition("-")[0]
+
+
+#: BANDID text (IRAF apextract) -> our uncertainty kind; the first band is the spectrum.
+_BAND_KINDS = (("sigma", "std"), ("variance", "var"))
+
+
+def _load_multispec(hdul, hdu, primary, path: str, *, medium: str | None, arrays: bool):
+    """IRAF multispec image: one order per image line; in the 3-D form band 1 is the spectrum and
+    the band whose ``BANDIDk`` starts with ``sigma`` (or ``variance``) its uncertainty."""
+    get = _header_getter(hdu.header, primary)
+    notes: list[str] = []
+    naxis = int(hdu.header["NAXIS"])
+    shape = [int(hdu.header.get(f"NAXIS{k}", 0)) for k in range(1, naxis + 1)]
+    if naxis > 3:
+        raise SpectrumFormatError(f"multispec image has {naxis} axes (at most 3: pixels, lines, bands)", path=path)
+    n_pix = shape[0]
+    n_lines = shape[1] if naxis > 1 else 1
+    n_bands = shape[2] if naxis > 2 else 1
+    wat_orders, wcs_notes = multispec_orders(hdu.header, n_pix, n_lines, path)
+    notes.extend(wcs_notes)
+    file_medium = medium or "vacuum"
+    if medium is None:
+        notes.append(_IRAF_MEDIUM_NOTE)
+    obs = _observation(get, path, "multispec", file_medium, notes)
+    if not arrays:
+        return obs, []
+    cube = np.asarray(hdu.data, dtype=float).reshape(n_bands, n_lines, n_pix)
+    flux = cube[0]
+    err_band = None
+    for band in range(2, n_bands + 1):
+        text = str(hdu.header.get(f"BANDID{band}", "") or "").strip().lower()
+        for word, kind in _BAND_KINDS:
+            if text.startswith(word):
+                err_band = (band, kind)
+                break
+        if err_band is not None:
+            break
+    if err_band is not None:
+        var = _to_variance(cube[err_band[0] - 1], err_band[1])
+        notes.append(f"uncertainty from band {err_band[0]} ({hdu.header.get(f'BANDID{err_band[0]}')!s}".strip()
+                     + ")")
+    else:
+        var = _uncertainty_from_ext(hdul, flux, path, notes)
+    parts = []
+    for o in wat_orders:
+        i, nw = o.line - 1, o.wave.size
+        parts.append((o.wave, flux[i, :nw], var[i, :nw], None))
+    orders = _build_orders(parts, file_medium, path, notes)
+    orders = [replace(order, index=o.line - 1) for order, o in zip(orders, wat_orders, strict=True)]
     return replace(obs, notes=tuple(notes)), orders
 
 
