@@ -363,19 +363,20 @@ def multispec_orders(header, n_pixels: int, n_lines: int, path: str = "") -> tup
         try:
             ap, beam, dtype = int(float(words[0])), int(float(words[1])), int(float(words[2]))
             w1, dw, nw, z = float(words[3]), float(words[4]), int(float(words[5])), float(words[6])
-            if dtype == 2:
-                wave = _nonlinear(physical, words[9:], where, path)
-            elif dtype in (0, 1):
-                wave = w1 + dw * (physical - 1.0)
-                if dtype == 1:
-                    wave = 10.0 ** wave
-            elif dtype == -1:
-                notes.append(f"{where} (aperture {ap}) has no dispersion (dtype -1): left out")
-                continue
-            else:
-                raise _error(f"{where} has dispersion type {dtype} (IRAF knows -1, 0, 1, 2)", path)
+            [float(w) for w in words[7:]]
         except ValueError:
             raise _error(f"{where} has fields that are not numbers", path) from None
+        if dtype == 2:
+            wave = _nonlinear(physical, words[9:], where, path)
+        elif dtype in (0, 1):
+            wave = w1 + dw * (physical - 1.0)
+            if dtype == 1:
+                wave = 10.0 ** wave
+        elif dtype == -1:
+            notes.append(f"{where} (aperture {ap}) has no dispersion (dtype -1): left out")
+            continue
+        else:
+            raise _error(f"{where} has dispersion type {dtype} (IRAF knows -1, 0, 1, 2)", path)
         if not -1.0 < z < 100.0:
             raise _error(f"{where} has redshift z = {z}", path)
         nw = min(nw, n_pixels) if nw > 0 else n_pixels
