@@ -162,12 +162,12 @@ def _wave_factor(unit, path: str, what: str) -> float:
 
 # --------------------------------------------------------------------------- public API
 
-def read_observation(path: str, *, medium: str | None = None) -> Observation:
+def read_observation(path: str, *, medium: str | None = None, flux_time_key: str | None = None) -> Observation:
     """Read only the observation record of a file (cheap: no arrays are validated)."""
-    return _load(path, medium=medium, arrays=False)[0]
+    return _load(path, medium=medium, arrays=False, time_key=flux_time_key)[0]
 
 
-def load_spectrum(path: str, *, medium: str | None = None) -> Spectrum:
+def load_spectrum(path: str, *, medium: str | None = None, flux_time_key: str | None = None) -> Spectrum:
     """Load a spectrum file of any supported layout.
 
     Parameters
@@ -176,6 +176,9 @@ def load_spectrum(path: str, *, medium: str | None = None) -> Spectrum:
         The file.
     medium : {'air', 'vacuum'} or None
         Override the medium of the file's wavelengths (config / ``--medium``).
+    flux_time_key : str or None
+        Header keyword holding a flux-weighted mid-exposure time (an exposure meter's), used
+        before the other time rules when the file has it (config / ``--flux-time-key``).
 
     Returns
     -------
@@ -189,17 +192,18 @@ def load_spectrum(path: str, *, medium: str | None = None) -> Spectrum:
     MetadataError
         A metadata keyword is present but malformed (missing metadata is not an error here).
     """
-    obs, orders = _load(path, medium=medium, arrays=True)
+    obs, orders = _load(path, medium=medium, arrays=True, time_key=flux_time_key)
     return Spectrum(obs, tuple(orders))
 
 
-def _load(path: str, *, medium: str | None, arrays: bool):
+def _load(path: str, *, medium: str | None, arrays: bool,
+               time_key: str | None = None):
     path = os.fspath(path)
     raw = _read_bytes(path)
     if _is_fits(raw):
         hdul, fits_notes = _open_fits(raw, path, read_data=arrays)
         try:
-            obs, orders = _load_fits(hdul, path, medium=medium, arrays=arrays)
+            obs, orders = _load_fits(hdul, path, medium=medium, arrays=arrays, time_key=time_key)
             if fits_notes:
                 obs = replace(obs, notes=(*fits_notes, *obs.notes))
             return obs, orders
@@ -214,7 +218,7 @@ def _load(path: str, *, medium: str | None, arrays: bool):
     except UnicodeDecodeError:
         raise SpectrumFormatError("is neither FITS nor a text table", path=path) from None
     try:
-        return _load_text(text, path, medium=medium, arrays=arrays)
+        return _load_text(text, path, medium=medium, arrays=arrays, time_key=time_key)
     except LineshiftError:
         raise
     except Exception as exc:  # a surprise inside a damaged text file is still a format error
@@ -279,7 +283,8 @@ def _medium_from_ctype(ctype: str | None) -> str:
     return "air" if ctype and str(ctype).strip().upper().startswith("AWAV") else "vacuum"
 
 
-def _load_fits(hdul, path: str, *, medium: str | None, arrays: bool):
+def _load_fits(hdul, path: str, *, medium: str | None, arrays: bool,
+               time_key: str | None = None):
     from astropy.io import fits
 
     primary = hdul[0].header
@@ -289,7 +294,7 @@ def _load_fits(hdul, path: str, *, medium: str | None, arrays: bool):
         get = _header_getter(primary, flux_ext.header)
         file_medium = medium or _medium_from_ctype(get("CTYPE1"))
         notes: list[str] = []
-        obs = _observation(get, path, "multi-order", file_medium, notes)
+        obs = _observation(get, path, "multi-order", file_medium, notes, time_key)
         if not arrays:
             return obs, []
         flux = np.atleast_2d(np.asarray(flux_ext.data, dtype=float))
@@ -313,21 +318,22 @@ def _load_fits(hdul, path: str, *, medium: str | None, arrays: bool):
         if isinstance(hdu, fits.BinTableHDU) and _has_data(hdu):
             cols = {c.name.upper(): c for c in hdu.columns}
             if any(n in cols for n in WAVE_NAMES) and "FLUX" in cols:
-                return _load_fits_table(hdu, cols, primary, path, medium=medium, arrays=arrays)
+                return _load_fits_table(hdu, cols, primary, path, medium=medium, arrays=arrays, time_key=time_key)
 
     for hdu in hdul:
         if isinstance(hdu, fits.PrimaryHDU | fits.ImageHDU) and _has_data(hdu):
             if is_multispec(hdu.header):
-                return _load_multispec(hdul, hdu, primary, path, medium=medium, arrays=arrays)
+                return _load_multispec(hdul, hdu, primary, path, medium=medium, arrays=arrays, time_key=time_key)
             if hdu.header.get("CTYPE1") is not None:
-                return _load_wcs_1d(hdul, hdu, primary, path, medium=medium, arrays=arrays)
+                return _load_wcs_1d(hdul, hdu, primary, path, medium=medium, arrays=arrays, time_key=time_key)
             break
     raise SpectrumFormatError(
         "has no spectrum: no 1-D image with CTYPE1, no table with wavelength and FLUX columns, "
         "no FLUX+WAVE image extensions", path=path, status="not a spectrum")
 
 
-def _load_wcs_1d(hdul, hdu, primary, path: str, *, medium: str | None, arrays: bool):
+def _load_wcs_1d(hdul, hdu, primary, path: str, *, medium: str | None, arrays: bool,
+               time_key: str | None = None):
     get = _header_getter(hdu.header, primary)
     notes: list[str] = []
     shape = [int(hdu.header.get(f"NAXIS{k}", 0)) for k in range(1, int(hdu.header["NAXIS"]) + 1)]
@@ -338,7 +344,7 @@ def _load_wcs_1d(hdul, hdu, primary, path: str, *, medium: str | None, arrays: b
     file_medium = medium or wcs_medium
     if medium is None and _ctype_base(hdu.header) == "LINEAR":
         notes.append(_IRAF_MEDIUM_NOTE)
-    obs = _observation(get, path, "wcs-1d", file_medium, notes)
+    obs = _observation(get, path, "wcs-1d", file_medium, notes, time_key)
     if not arrays:
         return obs, []
     data = np.asarray(hdu.data, dtype=float).ravel()
@@ -359,7 +365,8 @@ def _ctype_base(header) -> str:
 _BAND_KINDS = (("sigma", "std"), ("variance", "var"))
 
 
-def _load_multispec(hdul, hdu, primary, path: str, *, medium: str | None, arrays: bool):
+def _load_multispec(hdul, hdu, primary, path: str, *, medium: str | None, arrays: bool,
+               time_key: str | None = None):
     """IRAF multispec image: one order per image line; in the 3-D form band 1 is the spectrum and
     the band whose ``BANDIDk`` starts with ``sigma`` (or ``variance``) its uncertainty."""
     get = _header_getter(hdu.header, primary)
@@ -376,7 +383,7 @@ def _load_multispec(hdul, hdu, primary, path: str, *, medium: str | None, arrays
     file_medium = medium or "vacuum"
     if medium is None:
         notes.append(_IRAF_MEDIUM_NOTE)
-    obs = _observation(get, path, "multispec", file_medium, notes)
+    obs = _observation(get, path, "multispec", file_medium, notes, time_key)
     if not arrays:
         return obs, []
     cube = np.asarray(hdu.data, dtype=float).reshape(n_bands, n_lines, n_pix)
@@ -405,11 +412,12 @@ def _load_multispec(hdul, hdu, primary, path: str, *, medium: str | None, arrays
     return replace(obs, notes=tuple(notes)), orders
 
 
-def _load_fits_table(hdu, cols, primary, path: str, *, medium: str | None, arrays: bool):
+def _load_fits_table(hdu, cols, primary, path: str, *, medium: str | None, arrays: bool,
+               time_key: str | None = None):
     get = _header_getter(primary, hdu.header)
     notes: list[str] = []
     file_medium = medium or _medium_from_ctype(get("CTYPE1"))
-    obs = _observation(get, path, "table", file_medium, notes)
+    obs = _observation(get, path, "table", file_medium, notes, time_key)
     if not arrays:
         return obs, []
     data = hdu.data
@@ -434,7 +442,8 @@ def _load_fits_table(hdu, cols, primary, path: str, *, medium: str | None, array
 
 # --------------------------------------------------------------------------- text
 
-def _load_text(text: str, path: str, *, medium: str | None, arrays: bool):
+def _load_text(text: str, path: str, *, medium: str | None, arrays: bool,
+               time_key: str | None = None):
     header: dict[str, str] = {}
     rows: list[str] = []
     text_medium = None
@@ -471,7 +480,7 @@ def _load_text(text: str, path: str, *, medium: str | None, arrays: bool):
     file_medium = medium or text_medium or "vacuum"
     notes: list[str] = []
     get = _header_getter(header)
-    obs = _observation(get, path, "text", file_medium, notes)
+    obs = _observation(get, path, "text", file_medium, notes, time_key)
     if not arrays:
         return obs, []
     try:
@@ -499,10 +508,11 @@ def _load_text(text: str, path: str, *, medium: str | None, arrays: bool):
 
 # --------------------------------------------------------------------------- shared
 
-def _observation(get, path: str, layout: str, medium: str, notes: list) -> Observation:
+def _observation(get, path: str, layout: str, medium: str, notes: list,
+                 time_key: str | None = None) -> Observation:
     if medium not in ("air", "vacuum"):
         raise MetadataError(f"medium {medium!r} is neither air nor vacuum", path=path)
-    mjd, scale, source, exptime = read_time(get, path)
+    mjd, scale, source, exptime = read_time(get, path, flux_time_key=time_key)
     ra, dec, frame, equinox = read_target(get, path)
     site = read_site(get, path)
     spec_frame, frame_note = read_spec_frame(get, path)

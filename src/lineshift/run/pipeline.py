@@ -86,6 +86,7 @@ class MeasureSettings:
     activity: bool = False                        # activity indices (lineshift.measure.activity)
     mount_wilson_calibration: tuple[float, float] | None = None   # S_MW = a + b S_instrument
     b_minus_v: float | None = None                # for log R'HK
+    flux_time_key: str | None = None              # header keyword of a flux-weighted mid-exposure time
 
     def __post_init__(self):
         if self.method not in ENGINES:
@@ -231,7 +232,8 @@ def survey(paths: list[str], settings: MeasureSettings) -> list[Observation | Li
     out: list = []
     for path in paths:
         try:
-            out.append(settings.overrides.apply(read_observation(path, medium=settings.medium)))
+            out.append(settings.overrides.apply(read_observation(path, medium=settings.medium,
+                                                                       flux_time_key=settings.flux_time_key)))
         except LineshiftError as exc:
             exc.path = exc.path or path
             out.append(exc)
@@ -293,7 +295,7 @@ def measure_task(task: Task, ctx: Context) -> dict:
     s = ctx.settings
     obs = None
     try:
-        spectrum = load_spectrum(task.path, medium=s.medium)
+        spectrum = load_spectrum(task.path, medium=s.medium, flux_time_key=s.flux_time_key)
         obs = s.overrides.apply(spectrum.obs)
         orders = prepare_spectrum(spectrum, degree=s.continuum_degree)
         lo, hi = spectrum.wavelength_range
@@ -416,7 +418,8 @@ def _run_template(tasks: list[Task], first: dict[int, dict], ctx: Context, *, wo
     ranges: dict[int, tuple[float, float, float]] = {}   # per file, once: they do not change between passes
     for t in tasks:
         if rows[t.index].get("status") == "ok":
-            sp = load_spectrum(t.path, medium=ctx.settings.medium)
+            sp = load_spectrum(t.path, medium=ctx.settings.medium,
+                                   flux_time_key=ctx.settings.flux_time_key)
             a, b = sp.wavelength_range
             step = float(np.median(np.concatenate([C_MS * np.diff(o.wave) / o.wave[1:] for o in sp.orders])))
             ranges[t.index] = (a, b, step)
@@ -430,7 +433,8 @@ def _run_template(tasks: list[Task], first: dict[int, dict], ctx: Context, *, wo
         steps = [ranges[t.index][2] for t in use]
         acc = TemplateAccumulator(log_grid(lo * (1 - 1e-4), hi * (1 + 1e-4), np.median(steps) / 2), bands=bands)
         for t in use:
-            acc.add(prepare_spectrum(load_spectrum(t.path, medium=ctx.settings.medium),
+            acc.add(prepare_spectrum(load_spectrum(t.path, medium=ctx.settings.medium,
+                                   flux_time_key=ctx.settings.flux_time_key),
                                      degree=ctx.settings.continuum_degree), factor[t.index])
         state = TemplateState.from_accumulator(acc)
         new = _fit_against(use, first, {t.index: rows[t.index]["rv"] for t in use}, ctx, state, factor,
