@@ -2,21 +2,24 @@
 
 The layout is detected from the file's content, not its name (``shared/interface.md``):
 
-``wcs-1d``       FITS 1-D image with a spectral WCS (FITS WCS Paper III, Greisen et al. 2006):
-                 CTYPE1 ``WAVE``, ``AWAV``, ``WAVE-LOG``, ``AWAV-LOG``; CUNIT1; CRVAL1/CRPIX1 with
-                 CDELT1 or CD1_1.  Uncertainty from an image extension ``ERR``/``ERROR``/``SIGMA``/
+``wcs-1d``       FITS 1-D image with a spectral WCS (FITS WCS Paper III, Greisen et al. 2006),
+                 evaluated by astropy.wcs (:mod:`.wcs`): CTYPE1 ``WAVE``, ``AWAV``, with ``-LOG``
+                 or ``-TAB``, and IRAF ``LINEAR``.  Uncertainty from an image extension ``ERR``/``ERROR``/``SIGMA``/
                  ``UNCERT`` (standard deviation), ``VAR``/``VARIANCE`` or ``IVAR``.
 ``table``        FITS binary table with wavelength / flux / uncertainty columns.  Array-valued
                  columns give one order per row.
 ``multi-order``  FITS image extensions ``FLUX`` and ``WAVE`` (orders x pixels), ``ERR`` (or
                  ``VAR``/``IVAR``), optional ``BLAZE``; metadata in the primary header.
+``multispec``    IRAF multispec image (``WAT2_nnn`` dispersion functions, :mod:`.wcs`): one order
+                 per image line; in the 3-D form the ``sigma`` band (``BANDIDn``) is the uncertainty.
 ``text``         CSV or whitespace table with a header row naming the columns; ``# KEY = value``
                  comment lines are read as header keywords, ``# medium: air`` marks air
                  wavelengths; an optional ``order`` column splits orders.
 
-gzip-compressed files are recognised by their magic bytes.  We compute WCS wavelengths ourselves
-(specutils reads ``AWAV`` like ``WAVE`` and leaves no air flag) and check them against
-``astropy.wcs`` in the tests.  Air wavelengths are converted to vacuum on load (:mod:`.airvac`).
+gzip-compressed files are recognised by their magic bytes.  astropy.wcs gives the wavelengths in
+the file's medium; the air/vacuum decision is ours (``AWAV*`` is air; specutils reads ``AWAV`` like
+``WAVE`` and leaves no air flag), and air wavelengths are converted to vacuum on load
+(:mod:`.airvac`, Morton 2000).
 """
 
 from __future__ import annotations
