@@ -109,3 +109,27 @@ def test_topocent_and_absent_are_topocentric(tmp_path):
         path = str(tmp_path / f"x{value}.fits")
         hdu.writeto(path)
         assert read_observation(path).spec_frame == "topocentric"
+
+
+def test_mask_builder_places_tellurics_with_the_observations_berv(pair, monkeypatch):
+    # building a mask from a barycentric file: its telluric bands are where the observatory saw them,
+    # so the 'BERV' range given to the line finder is the same as for the topocentric copy
+    from lineshift.run import mask_builder
+    from lineshift.run.pipeline import MeasureSettings
+
+    topo, bary, _, berv = pair
+    seen = {}
+    real = mask_builder.find_lines
+
+    def spy(*args, **kwargs):
+        seen.setdefault(spy.name, kwargs["berv_range"])
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(mask_builder, "find_lines", spy)
+    build = mask_builder.MaskBuildSettings(iterations=0)
+    for name, path in (("topo", topo), ("bary", bary)):
+        spy.name = name
+        mask_builder.build_mask([path], MeasureSettings(), build)
+    # first pass co-adds at rv = 0: the range is the observation's BERV itself (astropy, in the fixture)
+    assert seen["topo"] == pytest.approx((berv, berv), abs=0.01)
+    assert seen["bary"] == pytest.approx((berv, berv), abs=0.01)
