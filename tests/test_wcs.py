@@ -367,3 +367,28 @@ def test_multispec_echelle_measured_end_to_end(tmp_path):
     assert abs(rv - truth) < 4 * err                       # injection-recovery: the velocity put in
     assert abs(rv - mo["rv"].to_value(u.m / u.s)) < 0.5 * err
     assert abs(ms["berv"].to_value(u.m / u.s) - exp.truth["berv"]) < 0.01
+
+
+@pytest.mark.filterwarnings("ignore:Flux unit was not provided")
+def test_multispec_agrees_with_specutils_iraf_reader(tmp_path):
+    # outside reference: specutils' IRAF reader (astropy.modeling Chebyshev1D / Legendre1D on the
+    # same header); it reads one function of weight 1 and zero point 0, and linear lines
+    from specutils import SpectrumCollection
+
+    n = 600
+    specs = [f"{k} {k} 2 5465.0 0.095 {n} 0.0 0.0 0.0 1.0 0.0 {ft} {len(c)} 1.0 {float(n)} {_fmt(c)}"
+             for k, (ft, c) in enumerate([(1, [5512.3, 47.1, -0.62, 0.013]),
+                                          (2, [5602.0, 45.0, -0.5, 0.02, 1e-3])], 1)]
+    specs.append(f"3 3 0 5700.0 0.05 {n} 0.0 0.0 0.0")
+    h, _ = _multispec_header(specs, n)
+    hdu = fits.PrimaryHDU(np.ones((3, n), dtype=np.float32))
+    for card in h.cards:
+        if not card.keyword.startswith("NAXIS"):
+            hdu.header[card.keyword] = card.value
+    hdu.header.update({"WCSDIM": 2, "CD1_1": 1.0, "CD2_2": 1.0})
+    path = str(tmp_path / "ms_specutils.fits")
+    hdu.writeto(path)
+    ref = SpectrumCollection.read(path, format="iraf")
+    sp = load_spectrum(path)
+    for k in range(3):
+        assert_allclose(sp.orders[k].wave, ref.spectral_axis[k].to_value(u.AA), rtol=1e-14)
