@@ -53,3 +53,31 @@ def test_ciddor_vs_morton_differ_by_metres_per_second_only():
 def test_far_ultraviolet_is_refused():
     with pytest.raises(SpectrumFormatError, match="2000"):
         airvac.air_to_vacuum(np.array([1500.0]))
+
+
+# Morton 2003 (ApJS 149, 205), vacuum wavelengths (from memory): Na I D2 5891.5833, D1 5897.5581;
+# Ca II K 3934.777, H 3969.591.  Air values (NIST ASD, from memory): 5889.951, 5895.924, 3933.663,
+# 3968.469.  The published vacuum values are the outside reference, not a second run of our formula.
+MORTON_2003_VACUUM = {"NaI_D2": (5889.951, 5891.5833), "NaI_D1": (5895.924, 5897.5581),
+                      "CaII_K": (3933.663, 3934.777), "CaII_H": (3968.469, 3969.591)}
+
+
+@pytest.mark.parametrize("line", list(MORTON_2003_VACUUM))
+def test_lab_lines_reach_the_published_vacuum_wavelengths(line):
+    air, vacuum = MORTON_2003_VACUUM[line]
+    # 1 mA: the last digit of the published air and vacuum values (about 50-80 m/s here)
+    assert airvac.air_to_vacuum(np.array([air]))[0] == pytest.approx(vacuum, abs=1e-3)
+    assert airvac.vacuum_to_air(np.array([vacuum]))[0] == pytest.approx(air, abs=1e-3)
+
+
+def test_activity_band_centres_in_vacuum_match_morton_2003():
+    # the bands the activity indices use, after our conversion, against the published vacuum values;
+    # allowed: half a last digit of the centre as given in air (0.01 A for Na I D, 0.001 A for Ca II)
+    # plus the 1 mA of the published values
+    from lineshift.measure.activity import BANDS_AIR, vacuum_bands
+
+    given = {b.name: b.centre for group in BANDS_AIR.values() for b in group}
+    bands = {b.name: b.centre for group in vacuum_bands(airvac.air_to_vacuum).values() for b in group}
+    for name, (_, vacuum) in MORTON_2003_VACUUM.items():
+        decimals = len(repr(given[name]).split(".")[1])
+        assert bands[name] == pytest.approx(vacuum, abs=0.5 * 10.0 ** -decimals + 1e-3), name

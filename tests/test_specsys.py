@@ -51,7 +51,8 @@ def test_barycentric_file_measured_once(pair):
     t_row, b_row = (table[table["file"] == p][0] for p in (topo, bary))
     assert t_row["status"] == "ok" and b_row["status"] == "ok"
     assert abs(t_row["berv"].to_value(u.m / u.s) - berv) < 0.01     # topocentric: corrected as before
-    assert b_row["berv"].to_value(u.m / u.s) == 0.0                   # barycentric: nothing applied
+    # barycentric: nothing applied, but the berv column holds the observation's BERV (astropy above)
+    assert abs(b_row["berv"].to_value(u.m / u.s) - berv) < 0.01
     assert "already barycentric" in b_row["notes"]
     assert f"{berv:+.3f}" in b_row["notes"]
     # the same photons give the same barycentric velocity (a second correction would be off by |BERV|,
@@ -60,7 +61,33 @@ def test_barycentric_file_measured_once(pair):
     print(f"bary-file minus topo-file rv: {diff:.3f} m/s (rv_err {t_row['rv_err']:.3f}, BERV {berv:.1f} m/s)")
     assert abs(berv) > 1000
     assert abs(diff) < 0.5
+    # rv_topo is the observatory-frame velocity for both: (1 + rv/c) = (1 + rv_topo/c)(1 + berv/c)
+    # (Wright & Eastman 2014), not the barycentric value
+    topo_diff = (b_row["rv_topo"] - t_row["rv_topo"]).to_value(u.m / u.s)
+    assert abs(topo_diff) < 0.5
+    rv, rv_topo = b_row["rv"].to_value(u.m / u.s), b_row["rv_topo"].to_value(u.m / u.s)
+    assert (1 + rv / C_MS) == pytest.approx((1 + rv_topo / C_MS) * (1 + berv / C_MS), rel=1e-14)
+    assert abs(rv - rv_topo) > 1000
     assert b_row["bjd_tdb"] == t_row["bjd_tdb"]
+
+
+def test_telluric_rejection_uses_the_observations_berv(pair):
+    # a barycentric file's telluric lines still sit at its observatory-frame position: the mask lines
+    # dropped for it are those dropped for the same observation written topocentric
+    from lineshift.io.linelists import read_mask
+    from lineshift.run.pipeline import BatchReport, MeasureSettings, measure_files
+
+    topo, bary, mask, berv = pair
+    line_mask = read_mask(mask)
+    settings = MeasureSettings(systemic_velocity=14_000.0)
+    reports = {}
+    for name, path in (("topo", topo), ("bary", bary)):
+        reports[name] = BatchReport()
+        rows = measure_files([path], line_mask, settings, report=reports[name])
+        assert rows[0]["status"] == "ok"
+    print(reports["bary"].mask_note)
+    assert f"BERV {berv / 1e3:+.2f}..{berv / 1e3:+.2f} km/s" in reports["bary"].mask_note
+    assert reports["bary"].n_lines_mask == reports["topo"].n_lines_mask < len(line_mask)
 
 
 @pytest.mark.parametrize("specsys", ["LSRK", "SOURCE", "GEOCENTR", "NOWHERE"])
@@ -82,3 +109,27 @@ def test_topocent_and_absent_are_topocentric(tmp_path):
         path = str(tmp_path / f"x{value}.fits")
         hdu.writeto(path)
         assert read_observation(path).spec_frame == "topocentric"
+
+
+def test_mask_builder_places_tellurics_with_the_observations_berv(pair, monkeypatch):
+    # building a mask from a barycentric file: its telluric bands are where the observatory saw them,
+    # so the 'BERV' range given to the line finder is the same as for the topocentric copy
+    from lineshift.run import mask_builder
+    from lineshift.run.pipeline import MeasureSettings
+
+    topo, bary, _, berv = pair
+    seen = {}
+    real = mask_builder.find_lines
+
+    def spy(*args, **kwargs):
+        seen.setdefault(spy.name, kwargs["berv_range"])
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(mask_builder, "find_lines", spy)
+    build = mask_builder.MaskBuildSettings(iterations=0)
+    for name, path in (("topo", topo), ("bary", bary)):
+        spy.name = name
+        mask_builder.build_mask([path], MeasureSettings(), build)
+    # first pass co-adds at rv = 0: the range is the observation's BERV itself (astropy, in the fixture)
+    assert seen["topo"] == pytest.approx((berv, berv), abs=0.01)
+    assert seen["bary"] == pytest.approx((berv, berv), abs=0.01)

@@ -26,7 +26,7 @@ class Observation:
     path : str
         The input path as given.
     layout : str
-        One of ``wcs-1d``, ``table``, ``multi-order``, ``text``.
+        One of ``wcs-1d``, ``table``, ``multi-order``, ``text``, ``multispec``.
     object : str
         Target name (OBJECT keyword or config); may be empty.
     mjd_mid : float or None

@@ -8,8 +8,9 @@
   Siverd & Gaudi 2010, PASP 122, 935).
 * A file whose wavelengths are already barycentric (``Observation.spec_frame == "barycentric"``,
   from ``SPECSYS = 'BARYCENT'``) gets no second correction: its result has ``berv = 0`` (the
-  velocity composed with the measured shift, so ``rv`` = ``rv_topo`` for it), the BJD_TDB is
-  computed as for any file, and the BERV astropy gives for the instant is quoted in a note.
+  velocity composed with the measured shift) and ``berv_obs`` the BERV astropy gives for the
+  instant (quoted in a note too), from which the pipeline derives the observatory-frame velocity
+  and places the telluric bands; the BJD_TDB is computed as for any file.
 * Proper motion, parallax and the catalogue epoch come from the config.  Given all of them (and a
   radial velocity) astropy's correction includes the secular change of the space motion itself;
   nothing is corrected twice.
@@ -54,11 +55,21 @@ class Target:
 
 @dataclass(frozen=True)
 class BarycentricResult:
-    """BERV (m/s) and BJD_TDB (days) of one observation, with any accuracy notes."""
+    """BERV (m/s) and BJD_TDB (days) of one observation, with any accuracy notes.
+
+    ``berv`` is the velocity to compose with the shift measured on the file's wavelengths (0 for a
+    file that is already barycentric); ``berv_obs`` is the BERV of the observation itself (the same
+    for a topocentric file): the ``berv`` column, telluric positions and ``rv_topo`` use it.
+    """
 
     berv: float
     bjd_tdb: float
     notes: tuple[str, ...] = ()
+    berv_obs: float | None = None
+
+    @property
+    def observed_berv(self) -> float:
+        return self.berv if self.berv_obs is None else self.berv_obs
 
 
 def compose_velocity(rv_topo, berv):
@@ -234,7 +245,7 @@ def _store(idx, bjd, berv, status, results, degraded, observations) -> None:
             notes = (*notes, f"wavelengths already barycentric: no BERV applied (BERV at mid-exposure "
                              f"{applied:+.3f} m/s)")
             applied = 0.0
-        results[i] = BarycentricResult(applied, float(bjd[j]), notes)
+        results[i] = BarycentricResult(applied, float(bjd[j]), notes, float(berv[j]))
 
 
 def _iers_status(t) -> list[str]:

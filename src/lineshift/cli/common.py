@@ -62,6 +62,9 @@ SHARED = {
     "--no-telluric": dict(action="store_true", help="keep mask lines that telluric bands can reach"),
     "--ephemeris": dict(metavar="PATH", help="local JPL .bsp ephemeris for the barycentric correction "
                                              "(default: astropy's builtin)"),
+    "--flux-time-key": dict(metavar="KEYWORD",
+                            help="header keyword of a flux-weighted mid-exposure time (exposure meter; MJD, JD or "
+                                 "ISO date in TIMESYS), used before the other time keywords where a file has it"),
     "-q": dict(action="store_true", help="no progress or summary on stderr"),
     "--debug": dict(action="store_true", help="show tracebacks of unexpected errors"),
 }
@@ -150,6 +153,7 @@ def settings_from(args, cfg):
         mount_wilson_calibration=mc.get("mount_wilson_calibration"),
         b_minus_v=getattr(args, "b_minus_v", None) if getattr(args, "b_minus_v", None) is not None
         else t.get("b_minus_v"),
+        flux_time_key=getattr(args, "flux_time_key", None) or mc.get("flux_time_key"),
     )
 
 

@@ -21,7 +21,7 @@ def add_parser(sub) -> None:
     p.add_argument("--save-mask", metavar="CSV", help="write the mask built from the inputs here")
     p.add_argument("-o", "--output", metavar="TABLE",
                    help="output table (.csv, .ecsv, .fits, .parquet); stdout if absent")
-    add_shared(p, "--config", "--ra", "--dec", "--object", "--site", "--medium")
+    add_shared(p, "--config", "--ra", "--dec", "--object", "--site", "--medium", "--flux-time-key")
     p.add_argument("--velocity-range", metavar="LO,HI", help="barycentric search range, m/s (default -300000,300000)")
     p.add_argument("--velocity-step", type=float, metavar="M_S", help="fine CCF step, m/s (default one pixel)")
     p.add_argument("--box-width", type=float, metavar="M_S", help="mask box full width, m/s (default one pixel)")

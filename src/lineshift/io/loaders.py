@@ -2,21 +2,24 @@
 
 The layout is detected from the file's content, not its name (``shared/interface.md``):
 
-``wcs-1d``       FITS 1-D image with a spectral WCS (FITS WCS Paper III, Greisen et al. 2006):
-                 CTYPE1 ``WAVE``, ``AWAV``, ``WAVE-LOG``, ``AWAV-LOG``; CUNIT1; CRVAL1/CRPIX1 with
-                 CDELT1 or CD1_1.  Uncertainty from an image extension ``ERR``/``ERROR``/``SIGMA``/
+``wcs-1d``       FITS 1-D image with a spectral WCS (FITS WCS Paper III, Greisen et al. 2006),
+                 evaluated by astropy.wcs (:mod:`.wcs`): CTYPE1 ``WAVE``, ``AWAV``, with ``-LOG``
+                 or ``-TAB``, and IRAF ``LINEAR``.  Uncertainty from an image extension ``ERR``/``ERROR``/``SIGMA``/
                  ``UNCERT`` (standard deviation), ``VAR``/``VARIANCE`` or ``IVAR``.
 ``table``        FITS binary table with wavelength / flux / uncertainty columns.  Array-valued
                  columns give one order per row.
 ``multi-order``  FITS image extensions ``FLUX`` and ``WAVE`` (orders x pixels), ``ERR`` (or
                  ``VAR``/``IVAR``), optional ``BLAZE``; metadata in the primary header.
+``multispec``    IRAF multispec image (``WAT2_nnn`` dispersion functions, :mod:`.wcs`): one order
+                 per image line; in the 3-D form the ``sigma`` band (``BANDIDn``) is the uncertainty.
 ``text``         CSV or whitespace table with a header row naming the columns; ``# KEY = value``
                  comment lines are read as header keywords, ``# medium: air`` marks air
                  wavelengths; an optional ``order`` column splits orders.
 
-gzip-compressed files are recognised by their magic bytes.  We compute WCS wavelengths ourselves
-(specutils reads ``AWAV`` like ``WAVE`` and leaves no air flag) and check them against
-``astropy.wcs`` in the tests.  Air wavelengths are converted to vacuum on load (:mod:`.airvac`).
+gzip-compressed files are recognised by their magic bytes.  astropy.wcs gives the wavelengths in
+the file's medium; the air/vacuum decision is ours (``AWAV*`` is air; specutils reads ``AWAV`` like
+``WAVE`` and leaves no air flag), and air wavelengths are converted to vacuum on load
+(:mod:`.airvac`, Morton 2000).
 """
 
 from __future__ import annotations
@@ -34,21 +37,16 @@ import numpy as np
 from lineshift.errors import LineshiftError, MetadataError, SpectrumFormatError
 from lineshift.io import airvac
 from lineshift.io.metadata import read_site, read_spec_frame, read_target, read_time
+from lineshift.io.wcs import angstrom_factor, is_multispec, multispec_orders, wcs_wavelengths
 from lineshift.model import Observation, Order, Spectrum
 
-__all__ = ["load_spectrum", "read_observation"]
+__all__ = ["load_spectrum", "read_observation", "wcs_wavelengths"]
 
 WAVE_NAMES = ("WAVE", "WAVELENGTH", "LAMBDA", "LAM")
 FLUX_NAMES = ("FLUX",)
 STD_NAMES = ("ERR", "ERROR", "SIGMA", "UNCERT")
 VAR_NAMES = ("VAR", "VARIANCE")
 IVAR_NAMES = ("IVAR",)
-_UNIT_TO_ANGSTROM = {
-    "angstrom": 1.0, "angstroms": 1.0, "a": 1.0, "aa": 1.0, "0.1nm": 1.0,
-    "nm": 10.0, "nanometer": 10.0, "nanometers": 10.0,
-    "um": 1.0e4, "micron": 1.0e4, "microns": 1.0e4, "micrometer": 1.0e4,
-    "m": 1.0e10, "meter": 1.0e10, "cm": 1.0e8, "mm": 1.0e7,
-}
 _POISSON_NOTE = "no uncertainty given: Poisson variance from the counts assumed"
 
 
@@ -162,23 +160,17 @@ def _header_getter(*headers) -> Callable[[str], object]:
 
 
 def _wave_factor(unit, path: str, what: str) -> float:
-    if unit is None or not str(unit).strip():
-        return 1.0
-    key = str(unit).strip().lower()
-    if key not in _UNIT_TO_ANGSTROM:
-        raise SpectrumFormatError(f"{what} = {unit!r} is not a wavelength unit (Angstrom, nm, um, m)",
-                                  path=path, status="bad wavelengths")
-    return _UNIT_TO_ANGSTROM[key]
+    return angstrom_factor(unit, path, what)
 
 
 # --------------------------------------------------------------------------- public API
 
-def read_observation(path: str, *, medium: str | None = None) -> Observation:
+def read_observation(path: str, *, medium: str | None = None, flux_time_key: str | None = None) -> Observation:
     """Read only the observation record of a file (cheap: no arrays are validated)."""
-    return _load(path, medium=medium, arrays=False)[0]
+    return _load(path, medium=medium, arrays=False, time_key=flux_time_key)[0]
 
 
-def load_spectrum(path: str, *, medium: str | None = None) -> Spectrum:
+def load_spectrum(path: str, *, medium: str | None = None, flux_time_key: str | None = None) -> Spectrum:
     """Load a spectrum file of any supported layout.
 
     Parameters
@@ -187,6 +179,9 @@ def load_spectrum(path: str, *, medium: str | None = None) -> Spectrum:
         The file.
     medium : {'air', 'vacuum'} or None
         Override the medium of the file's wavelengths (config / ``--medium``).
+    flux_time_key : str or None
+        Header keyword holding a flux-weighted mid-exposure time (an exposure meter's), used
+        before the other time rules when the file has it (config / ``--flux-time-key``).
 
     Returns
     -------
@@ -200,17 +195,18 @@ def load_spectrum(path: str, *, medium: str | None = None) -> Spectrum:
     MetadataError
         A metadata keyword is present but malformed (missing metadata is not an error here).
     """
-    obs, orders = _load(path, medium=medium, arrays=True)
+    obs, orders = _load(path, medium=medium, arrays=True, time_key=flux_time_key)
     return Spectrum(obs, tuple(orders))
 
 
-def _load(path: str, *, medium: str | None, arrays: bool):
+def _load(path: str, *, medium: str | None, arrays: bool,
+               time_key: str | None = None):
     path = os.fspath(path)
     raw = _read_bytes(path)
     if _is_fits(raw):
         hdul, fits_notes = _open_fits(raw, path, read_data=arrays)
         try:
-            obs, orders = _load_fits(hdul, path, medium=medium, arrays=arrays)
+            obs, orders = _load_fits(hdul, path, medium=medium, arrays=arrays, time_key=time_key)
             if fits_notes:
                 obs = replace(obs, notes=(*fits_notes, *obs.notes))
             return obs, orders
@@ -225,7 +221,7 @@ def _load(path: str, *, medium: str | None, arrays: bool):
     except UnicodeDecodeError:
         raise SpectrumFormatError("is neither FITS nor a text table", path=path) from None
     try:
-        return _load_text(text, path, medium=medium, arrays=arrays)
+        return _load_text(text, path, medium=medium, arrays=arrays, time_key=time_key)
     except LineshiftError:
         raise
     except Exception as exc:  # a surprise inside a damaged text file is still a format error
@@ -290,7 +286,8 @@ def _medium_from_ctype(ctype: str | None) -> str:
     return "air" if ctype and str(ctype).strip().upper().startswith("AWAV") else "vacuum"
 
 
-def _load_fits(hdul, path: str, *, medium: str | None, arrays: bool):
+def _load_fits(hdul, path: str, *, medium: str | None, arrays: bool,
+               time_key: str | None = None):
     from astropy.io import fits
 
     primary = hdul[0].header
@@ -300,7 +297,7 @@ def _load_fits(hdul, path: str, *, medium: str | None, arrays: bool):
         get = _header_getter(primary, flux_ext.header)
         file_medium = medium or _medium_from_ctype(get("CTYPE1"))
         notes: list[str] = []
-        obs = _observation(get, path, "multi-order", file_medium, notes)
+        obs = _observation(get, path, "multi-order", file_medium, notes, time_key)
         if not arrays:
             return obs, []
         flux = np.atleast_2d(np.asarray(flux_ext.data, dtype=float))
@@ -324,78 +321,33 @@ def _load_fits(hdul, path: str, *, medium: str | None, arrays: bool):
         if isinstance(hdu, fits.BinTableHDU) and _has_data(hdu):
             cols = {c.name.upper(): c for c in hdu.columns}
             if any(n in cols for n in WAVE_NAMES) and "FLUX" in cols:
-                return _load_fits_table(hdu, cols, primary, path, medium=medium, arrays=arrays)
+                return _load_fits_table(hdu, cols, primary, path, medium=medium, arrays=arrays, time_key=time_key)
 
     for hdu in hdul:
         if isinstance(hdu, fits.PrimaryHDU | fits.ImageHDU) and _has_data(hdu):
+            if is_multispec(hdu.header):
+                return _load_multispec(hdul, hdu, primary, path, medium=medium, arrays=arrays, time_key=time_key)
             if hdu.header.get("CTYPE1") is not None:
-                return _load_wcs_1d(hdul, hdu, primary, path, medium=medium, arrays=arrays)
+                return _load_wcs_1d(hdul, hdu, primary, path, medium=medium, arrays=arrays, time_key=time_key)
             break
     raise SpectrumFormatError(
         "has no spectrum: no 1-D image with CTYPE1, no table with wavelength and FLUX columns, "
         "no FLUX+WAVE image extensions", path=path, status="not a spectrum")
 
 
-def wcs_wavelengths(header, n: int, path: str = "") -> tuple[np.ndarray, str]:
-    """Pixel-centre wavelengths (Angstrom, in the header's medium) of a 1-D spectral WCS.
-
-    Linear: ``lambda = CRVAL1 + CDELT1 (p - CRPIX1)``; ``-LOG``: ``lambda = CRVAL1 exp(CDELT1 (p -
-    CRPIX1) / CRVAL1)`` (Greisen et al. 2006, FITS WCS Paper III, sect. 3.2), p = 1..n.  The older
-    convention ``DC-FLAG = 1`` (CRVAL1, CDELT1 in log10 Angstrom) is also read.  ``CD1_1`` wins over
-    ``CDELT1``; ``PC1_1`` multiplies ``CDELT1`` (FITS WCS Paper I, sect. 2.1.2).
-    Returns the wavelengths and the medium (``air`` for ``AWAV*``).
-    """
-    ctype = str(header.get("CTYPE1", "")).strip().upper()
-    base, _, algo = ctype.partition("-")
-    algo = algo.strip("-")
-    if base not in ("WAVE", "AWAV", "LINEAR") or algo not in ("", "LOG"):
-        raise SpectrumFormatError(
-            f"CTYPE1 = {ctype!r} is not a wavelength axis (WAVE, AWAV, WAVE-LOG, AWAV-LOG)",
-            path=path, status="bad wavelengths")
-    try:
-        crval = float(header["CRVAL1"])
-        crpix = float(header.get("CRPIX1", 1.0))
-        # FITS WCS Paper I (Greisen & Calabretta 2002, sect. 2.1.2): CDi_j, when present, replaces
-        # CDELTi and PCi_j; otherwise the scale is CDELTi * PCi_j (PC1_1 defaults to 1)
-        if header.get("CD1_1") is not None:
-            delt = float(header["CD1_1"])
-        elif header.get("CDELT1") is not None:
-            delt = float(header["CDELT1"]) * float(header.get("PC1_1", 1.0))
-        else:
-            raise KeyError("CDELT1")
-    except KeyError as exc:
-        raise SpectrumFormatError(f"spectral WCS lacks {exc.args[0]}", path=path, status="bad wavelengths") from None
-    except (TypeError, ValueError):
-        raise SpectrumFormatError("spectral WCS keywords are not numbers", path=path,
-                                  status="bad wavelengths") from None
-    if not (np.isfinite(crval) and np.isfinite(delt) and np.isfinite(crpix)):
-        raise SpectrumFormatError("spectral WCS keywords are not finite", path=path, status="bad wavelengths")
-    if delt == 0:
-        raise SpectrumFormatError("zero dispersion (CDELT1 = 0)", path=path, status="bad wavelengths")
-    if delt < 0:
-        raise SpectrumFormatError(
-            "reversed dispersion (CDELT1 < 0): wavelengths must increase with pixel", path=path,
-            status="bad wavelengths")
-    pix = np.arange(1, n + 1, dtype=float) - crpix
-    if int(header.get("DC-FLAG", 0) or 0) == 1:
-        wave = 10.0 ** (crval + delt * pix)
-        factor = 1.0
-    else:
-        factor = _wave_factor(header.get("CUNIT1"), path, "CUNIT1")
-        wave = crval * np.exp(delt * pix / crval) if algo == "LOG" else crval + delt * pix
-    return wave * factor, ("air" if base == "AWAV" else "vacuum")
-
-
-def _load_wcs_1d(hdul, hdu, primary, path: str, *, medium: str | None, arrays: bool):
+def _load_wcs_1d(hdul, hdu, primary, path: str, *, medium: str | None, arrays: bool,
+               time_key: str | None = None):
     get = _header_getter(hdu.header, primary)
     notes: list[str] = []
     shape = [int(hdu.header.get(f"NAXIS{k}", 0)) for k in range(1, int(hdu.header["NAXIS"]) + 1)]
     if shape[0] < 2 or any(n != 1 for n in shape[1:]):
         raise SpectrumFormatError(f"image with CTYPE1 has shape {tuple(shape[::-1])}, expected 1-D along axis 1",
                                   path=path)
-    wave, wcs_medium = wcs_wavelengths(hdu.header, shape[0], path)
+    wave, wcs_medium = wcs_wavelengths(hdu.header, shape[0], path, hdul=hdul, notes=notes)
     file_medium = medium or wcs_medium
-    obs = _observation(get, path, "wcs-1d", file_medium, notes)
+    if medium is None and _ctype_base(hdu.header) == "LINEAR":
+        notes.append(_IRAF_MEDIUM_NOTE)
+    obs = _observation(get, path, "wcs-1d", file_medium, notes, time_key)
     if not arrays:
         return obs, []
     data = np.asarray(hdu.data, dtype=float).ravel()
@@ -404,11 +356,71 @@ def _load_wcs_1d(hdul, hdu, primary, path: str, *, medium: str | None, arrays: b
     return replace(obs, notes=tuple(notes)), orders
 
 
-def _load_fits_table(hdu, cols, primary, path: str, *, medium: str | None, arrays: bool):
+_IRAF_MEDIUM_NOTE = ("IRAF dispersion has no air/vacuum flag: vacuum assumed (IRAF's arc line lists are "
+                     "mostly in air: give --medium air if so)")
+
+
+def _ctype_base(header) -> str:
+    return str(header.get("CTYPE1", "") or "").strip().upper().partition("-")[0]
+
+
+#: BANDID text (IRAF apextract) -> our uncertainty kind; the first band is the spectrum.
+_BAND_KINDS = (("sigma", "std"), ("variance", "var"))
+
+
+def _load_multispec(hdul, hdu, primary, path: str, *, medium: str | None, arrays: bool,
+               time_key: str | None = None):
+    """IRAF multispec image: one order per image line; in the 3-D form band 1 is the spectrum and
+    the band whose ``BANDIDk`` starts with ``sigma`` (or ``variance``) its uncertainty."""
+    get = _header_getter(hdu.header, primary)
+    notes: list[str] = []
+    naxis = int(hdu.header["NAXIS"])
+    shape = [int(hdu.header.get(f"NAXIS{k}", 0)) for k in range(1, naxis + 1)]
+    if naxis > 3:
+        raise SpectrumFormatError(f"multispec image has {naxis} axes (at most 3: pixels, lines, bands)", path=path)
+    n_pix = shape[0]
+    n_lines = shape[1] if naxis > 1 else 1
+    n_bands = shape[2] if naxis > 2 else 1
+    wat_orders, wcs_notes = multispec_orders(hdu.header, n_pix, n_lines, path)
+    notes.extend(wcs_notes)
+    file_medium = medium or "vacuum"
+    if medium is None:
+        notes.append(_IRAF_MEDIUM_NOTE)
+    obs = _observation(get, path, "multispec", file_medium, notes, time_key)
+    if not arrays:
+        return obs, []
+    cube = np.asarray(hdu.data, dtype=float).reshape(n_bands, n_lines, n_pix)
+    flux = cube[0]
+    err_band = None
+    for band in range(2, n_bands + 1):
+        text = str(hdu.header.get(f"BANDID{band}", "") or "").strip().lower()
+        for word, kind in _BAND_KINDS:
+            if text.startswith(word):
+                err_band = (band, kind)
+                break
+        if err_band is not None:
+            break
+    if err_band is not None:
+        var = _to_variance(cube[err_band[0] - 1], err_band[1])
+        notes.append(f"uncertainty from band {err_band[0]} ({hdu.header.get(f'BANDID{err_band[0]}')!s}".strip()
+                     + ")")
+    else:
+        var = _uncertainty_from_ext(hdul, flux, path, notes)
+    parts = []
+    for o in wat_orders:
+        i, nw = o.line - 1, o.wave.size
+        parts.append((o.wave, flux[i, :nw], var[i, :nw], None))
+    orders = _build_orders(parts, file_medium, path, notes)
+    orders = [replace(order, index=o.line - 1) for order, o in zip(orders, wat_orders, strict=True)]
+    return replace(obs, notes=tuple(notes)), orders
+
+
+def _load_fits_table(hdu, cols, primary, path: str, *, medium: str | None, arrays: bool,
+               time_key: str | None = None):
     get = _header_getter(primary, hdu.header)
     notes: list[str] = []
     file_medium = medium or _medium_from_ctype(get("CTYPE1"))
-    obs = _observation(get, path, "table", file_medium, notes)
+    obs = _observation(get, path, "table", file_medium, notes, time_key)
     if not arrays:
         return obs, []
     data = hdu.data
@@ -433,7 +445,8 @@ def _load_fits_table(hdu, cols, primary, path: str, *, medium: str | None, array
 
 # --------------------------------------------------------------------------- text
 
-def _load_text(text: str, path: str, *, medium: str | None, arrays: bool):
+def _load_text(text: str, path: str, *, medium: str | None, arrays: bool,
+               time_key: str | None = None):
     header: dict[str, str] = {}
     rows: list[str] = []
     text_medium = None
@@ -470,7 +483,7 @@ def _load_text(text: str, path: str, *, medium: str | None, arrays: bool):
     file_medium = medium or text_medium or "vacuum"
     notes: list[str] = []
     get = _header_getter(header)
-    obs = _observation(get, path, "text", file_medium, notes)
+    obs = _observation(get, path, "text", file_medium, notes, time_key)
     if not arrays:
         return obs, []
     try:
@@ -498,10 +511,11 @@ def _load_text(text: str, path: str, *, medium: str | None, arrays: bool):
 
 # --------------------------------------------------------------------------- shared
 
-def _observation(get, path: str, layout: str, medium: str, notes: list) -> Observation:
+def _observation(get, path: str, layout: str, medium: str, notes: list,
+                 time_key: str | None = None) -> Observation:
     if medium not in ("air", "vacuum"):
         raise MetadataError(f"medium {medium!r} is neither air nor vacuum", path=path)
-    mjd, scale, source, exptime = read_time(get, path)
+    mjd, scale, source, exptime = read_time(get, path, flux_time_key=time_key)
     ra, dec, frame, equinox = read_target(get, path)
     site = read_site(get, path)
     spec_frame, frame_note = read_spec_frame(get, path)

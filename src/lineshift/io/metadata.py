@@ -2,7 +2,8 @@
 
 Rules (``shared/interface.md``), first found wins:
 
-* time: ``DATE-AVG`` / ``MJD-AVG`` (already mid-exposure); ``DATE-BEG`` + ``DATE-END`` (or
+* time: a configured flux-weighted mid-exposure keyword (exposure meter; ``--flux-time-key``) when
+  present; ``DATE-AVG`` / ``MJD-AVG`` (already mid-exposure); ``DATE-BEG`` + ``DATE-END`` (or
   ``MJD-BEG`` + ``MJD-END``); ``DATE-OBS`` or ``MJD-OBS`` plus half of ``EXPTIME`` / ``XPOSURE``.
   Scale from ``TIMESYS`` (default UTC); every scale of the FITS standard 4.0 (sect. 9.2.1,
   table 30) is handled or refused with its reason: UTC, TAI, TT, TDB, TCG, TCB, UT1 as astropy
@@ -106,8 +107,15 @@ def _iso_to_mjd(value, key: str, scale: str, path: str | None) -> float:
         raise MetadataError(f"keyword {key} = {value!r} is not an ISO-8601 date", path=path) from None
 
 
-def read_time(get: Getter, path: str | None = None) -> tuple[float | None, str, str, float | None]:
+def read_time(get: Getter, path: str | None = None, *, flux_time_key: str | None = None
+              ) -> tuple[float | None, str, str, float | None]:
     """Mid-exposure time from header keywords.
+
+    ``flux_time_key`` names a keyword with a flux-weighted mid-exposure time (an exposure meter's
+    photon-weighted centre, which is the instant the barycentric correction belongs to for an
+    exposure through changing transparency).  When the file has it, it wins over every other rule;
+    its value is an MJD, a JD (a number above 2 400 000.5, converted) or an ISO-8601 date, in the
+    TIMESYS scale.  When it is configured but absent, the usual rules apply and ``source`` says so.
 
     Returns
     -------
@@ -121,13 +129,45 @@ def read_time(get: Getter, path: str | None = None) -> tuple[float | None, str, 
         Exposure time in seconds, if given.
     """
     scale, offset, note = time_scale(get("TIMESYS"), path)
-    out = _read_time(get, path, scale)
+    out = _flux_weighted(get, path, scale, flux_time_key) if flux_time_key else None
+    if out is None:
+        out = _read_time(get, path, scale)
+        if flux_time_key:
+            out = (out[0], out[1], f"{out[2]} ({flux_time_key} absent: no flux-weighted time)", out[3])
     if out[0] is None:
         return out
     mjd, _, source, exptime = out
     if offset:
         mjd += offset / 86400.0
     return mjd, scale, f"{source} ({note})" if note else source, exptime
+
+
+#: JD - MJD (Explanatory Supplement; MJD = JD - 2400000.5).
+_MJD_ZERO_JD = 2_400_000.5
+
+
+def _flux_weighted(get: Getter, path: str | None, scale: str, key: str):
+    """The configured flux-weighted mid-exposure keyword, or None when the file lacks it."""
+    value = get(key.strip().upper()) if get(key) is None else get(key)
+    if value is None:
+        return None
+    exptime = None
+    for k in ("EXPTIME", "XPOSURE"):
+        if get(k) is not None:
+            exptime = _num(get(k), k, path)
+            break
+    if isinstance(value, str) and not re.fullmatch(r"\s*[+-]?[\d.]+([eE][+-]?\d+)?\s*", value):
+        mjd = _iso_to_mjd(value, key, scale, path)
+        kind = "ISO date"
+    else:
+        mjd = _num(value, key, path)
+        kind = "MJD"
+        if mjd > _MJD_ZERO_JD:
+            mjd -= _MJD_ZERO_JD
+            kind = "JD"
+    if not 15_020.0 < mjd < 100_000.0:   # 1900 to 2132: a value outside is not a date of observation
+        raise MetadataError(f"keyword {key} = {value!r} is not a date of observation", path=path)
+    return mjd, scale, f"{key} (flux-weighted mid-exposure, {kind})", exptime
 
 
 def time_scale(value, path: str | None = None) -> tuple[str, float, str]:

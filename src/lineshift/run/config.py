@@ -32,6 +32,7 @@ Example (every key optional)::
     ephemeris = "/path/to/de421.bsp"         # or "builtin"
     activity = true           # activity indices (S-index, H-alpha, Na I D) in the table
     mount_wilson_calibration = [0.0, 1.0]    # S_MW = a + b S_instrument, this instrument's coefficients
+    flux_time_key = "MJD-FLUX"   # header keyword of a flux-weighted mid-exposure time (exposure meter)
 
 Unknown sections or keys, and values of the wrong type, are a :class:`ConfigError` (exit 2).
 Nothing read from a config is evaluated or unpickled.
@@ -55,7 +56,7 @@ SCHEMA: dict[str, dict[str, tuple]] = {
     "measure": {"mask": (str,), "method": (str,), "medium": (str,), "velocity_range": (list,),
                 "velocity_step": _NUM, "box_width": _NUM, "systemic_velocity": _NUM,
                 "telluric_bands": (str, bool), "continuum_degree": (int,), "ephemeris": (str,),
-                "activity": (bool,), "mount_wilson_calibration": (list,)},
+                "activity": (bool,), "mount_wilson_calibration": (list,), "flux_time_key": (str,)},
 }
 
 
@@ -216,6 +217,10 @@ def check_settings(settings) -> None:
             raise ConfigError(f"systemic velocity {v:g} m/s is not below the speed of light")
     if not 0 <= int(settings.continuum_degree) <= 12:
         raise ConfigError("continuum degree must be 0..12")
+    key = settings.flux_time_key
+    if key is not None and (not isinstance(key, str) or not key.strip() or "=" in key or "'" in key
+                            or not key.isascii() or not key.isprintable()):
+        raise ConfigError(f"flux-weighted time keyword {key!r} is not a FITS keyword name")
     t = settings.target
     for name in ("pm_ra_cosdec", "pm_dec", "parallax", "radial_velocity", "epoch"):
         value = getattr(t, name)

@@ -209,7 +209,8 @@ def build_mask(paths: list[str], settings: MeasureSettings, build: MaskBuildSett
     if not use:
         raise MeasurementError("no usable input spectrum", status="no usable input")
     upaths = [p for p, _ in use]
-    bervs = np.array([b.berv for _, b in use])
+    bervs = np.array([b.berv for _, b in use])                 # composed with the file's wavelengths
+    bervs_obs = np.array([b.observed_berv for _, b in use])    # of the observation: telluric positions
     bands = (np.zeros((0, 2)) if settings.telluric_bands is False
              else read_telluric_bands(settings.telluric_bands or None))
     measure_settings = replace(settings, telluric_bands=False, keep_ccf=False)
@@ -247,10 +248,11 @@ def build_mask(paths: list[str], settings: MeasureSettings, build: MaskBuildSett
 
         A template line at lambda_t appears at lambda_t (1 + rv_i/c) / (1 + berv_i/c) in spectrum i;
         ``reject_telluric_lines`` with rv_star = 0 and BERV b covers lambda_t / (1 + b/c), so
-        b_i = c ((1 + berv_i/c) / (1 + rv_i/c) - 1).
+        b_i = c ((1 + berv_i/c) / (1 + rv_i/c) - 1), with the observation's BERV also for a file
+        already barycentric (its tellurics sit where the observatory saw them).
         """
         r = np.where(np.isfinite(rv), rv, 0.0)
-        b = C_MS * ((1 + bervs / C_MS) / (1 + r / C_MS) - 1)
+        b = C_MS * ((1 + bervs_obs / C_MS) / (1 + r / C_MS) - 1)
         return float(b.min()), float(b.max())
 
     while True:

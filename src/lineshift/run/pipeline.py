@@ -89,6 +89,7 @@ class MeasureSettings:
     activity: bool = False                        # activity indices (lineshift.measure.activity)
     mount_wilson_calibration: tuple[float, float] | None = None   # S_MW = a + b S_instrument
     b_minus_v: float | None = None                # for log R'HK
+    flux_time_key: str | None = None              # header keyword of a flux-weighted mid-exposure time
 
     def __post_init__(self):
         if self.method not in ENGINES:
@@ -113,6 +114,37 @@ class Task:
     delta0: float | None = None      # template engine: starting ln(1 + rv_topo/c) in the template frame
     factor: float | None = None      # template engine: the factor this spectrum entered the template with
     fwhm: float | None = None        # lines engine: first-pass FWHM (m/s), sets the per-line windows
+    berv_obs: float | None = None    # BERV of the observation; differs from ``berv`` (0) for a barycentric file
+
+    @property
+    def observed_berv(self) -> float:
+        """The BERV of the observation instant (``berv`` column, telluric bands, ``rv_topo``)."""
+        return self.berv if self.berv_obs is None else self.berv_obs
+
+
+def frame_velocities(task: Task, v_file: float) -> tuple[float, float]:
+    """Barycentric and observatory-frame velocity (m/s) from a shift measured on the file's wavelengths.
+
+    ``rv`` composes ``v_file`` with the BERV still to apply (``task.berv``, 0 for a file already
+    barycentric); ``rv_topo`` is the velocity in the observatory frame, ``(1 + rv/c) / (1 + BERV/c)``
+    with the observation's BERV (Wright & Eastman 2014 composition), equal to ``v_file`` for a
+    topocentric file.
+    """
+    rv = float(compose_velocity(v_file, task.berv))
+    b = task.observed_berv
+    if b == task.berv:
+        return rv, float(v_file)
+    return rv, float(C_MS * ((1 + rv / C_MS) / (1 + b / C_MS) - 1))
+
+
+def _orders_to_topo(orders, task: Task) -> list[dict]:
+    """Per-order rows in the observatory frame (a barycentric file's shifts moved by its BERV)."""
+    out = [dict(o) for o in orders]
+    if task.observed_berv != task.berv:
+        for o in out:
+            if o.get("rv") is not None and np.isfinite(o["rv"]):
+                o["rv"] = frame_velocities(task, float(o["rv"]))[1]
+    return out
 
 
 @dataclass(frozen=True)
@@ -204,7 +236,8 @@ def survey(paths: list[str], settings: MeasureSettings) -> list[Observation | Li
     out: list = []
     for path in paths:
         try:
-            out.append(settings.overrides.apply(read_observation(path, medium=settings.medium)))
+            out.append(settings.overrides.apply(read_observation(path, medium=settings.medium,
+                                                                       flux_time_key=settings.flux_time_key)))
         except LineshiftError as exc:
             exc.path = exc.path or path
             out.append(exc)
@@ -266,7 +299,7 @@ def measure_task(task: Task, ctx: Context) -> dict:
     s = ctx.settings
     obs = None
     try:
-        spectrum = load_spectrum(task.path, medium=s.medium)
+        spectrum = load_spectrum(task.path, medium=s.medium, flux_time_key=s.flux_time_key)
         obs = s.overrides.apply(spectrum.obs)
         orders = prepare_spectrum(spectrum, degree=s.continuum_degree)
         lo, hi = spectrum.wavelength_range
@@ -288,30 +321,31 @@ def measure_task(task: Task, ctx: Context) -> dict:
     except (MemoryError, UnicodeError, OSError) as exc:
         err = _failure(exc, task.path)
         row = _empty_row(task.path, obs, err.status, str(err), s)
-        row.update(bjd_tdb=task.bjd_tdb, berv=task.berv, _error=str(err))
+        row.update(bjd_tdb=task.bjd_tdb, berv=task.observed_berv, _error=str(err))
         return _clean(row)
     except LineshiftError as exc:
         exc.path = exc.path or task.path
         row = _empty_row(task.path, obs, exc.status, str(exc), s)
-        row.update(bjd_tdb=task.bjd_tdb, berv=task.berv, _error=str(exc))
+        row.update(bjd_tdb=task.bjd_tdb, berv=task.observed_berv, _error=str(exc))
         return row
     except Exception as exc:  # a bug must not stop the batch; --debug re-raises it
         if DEBUG:
             raise
         message = f"{task.path}: unexpected error ({type(exc).__name__}: {exc}); rerun with --debug"
         row = _empty_row(task.path, obs, "internal error", message, s)
-        row.update(bjd_tdb=task.bjd_tdb, berv=task.berv, _error=message)
+        row.update(bjd_tdb=task.bjd_tdb, berv=task.observed_berv, _error=message)
         return row
-    rv = float(compose_velocity(res.rv, task.berv))
+    rv, rv_topo = frame_velocities(task, res.rv)
     notes = tuple(obs.notes) + task.notes
     row = _empty_row(task.path, obs, "ok", "; ".join(notes), s)
     row.update(
-        bjd_tdb=task.bjd_tdb, rv=rv, rv_err=res.rv_err * (1 + task.berv / C_MS), berv=task.berv,
-        rv_topo=res.rv, fwhm=res.fwhm, contrast=res.contrast, snr=res.snr, n_lines=res.n_lines,
+        bjd_tdb=task.bjd_tdb, rv=rv, rv_err=res.rv_err * (1 + task.berv / C_MS), berv=task.observed_berv,
+        rv_topo=rv_topo, fwhm=res.fwhm, contrast=res.contrast, snr=res.snr, n_lines=res.n_lines,
         fwhm_err=res.fwhm_err, contrast_err=res.contrast_err, n_orders=res.n_orders,
         bisector_span=res.bis_span, bisector_span_err=res.bis_span_err, rv_chromatic_slope=res.chromatic_slope,
         rv_chromatic_slope_err=res.chromatic_slope_err)
-    row["_orders"] = [dict(o) for o in res.orders]
+    row["_orders"] = _orders_to_topo(res.orders, task)
+    row["_v_file"] = float(res.rv)
     _note_rejected(row, n_rej)
     if s.keep_ccf:
         row["_ccf"] = (res.velocity, res.ccf, res.model, res.bisector)
@@ -320,6 +354,7 @@ def measure_task(task: Task, ctx: Context) -> dict:
 
 def _with_activity(row: dict, spectrum, s: MeasureSettings) -> dict:
     """Add the activity indices (``--activity``) to a measured row; bands placed at its ``rv_topo``."""
+    v_file = row.pop("_v_file", row.get("rv_topo"))   # the shift on the file's own wavelengths
     if not s.activity:
         return row
     from lineshift.measure.activity import measure_activity, vacuum_bands
@@ -327,7 +362,7 @@ def _with_activity(row: dict, spectrum, s: MeasureSettings) -> dict:
     tell = None if s.telluric_bands is False else read_telluric_bands(s.telluric_bands or None)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)
-        res = measure_activity(spectrum.orders, float(row["rv_topo"]), vacuum_bands(airvac.air_to_vacuum),
+        res = measure_activity(spectrum.orders, float(v_file), vacuum_bands(airvac.air_to_vacuum),
                                telluric_bands=tell, calibration=s.mount_wilson_calibration, bv=s.b_minus_v)
     row.update(res.as_row())
     if res.notes:
@@ -347,10 +382,12 @@ def _template_row(task: Task, obs: Observation, orders, ctx: Context) -> dict:
     notes = tuple(obs.notes) + task.notes + ((f"{len(flagged)} order(s) flagged (poor fit or rejected)",)
                                              if flagged else ())
     row = _empty_row(task.path, obs, "ok", "; ".join(notes), ctx.settings)
-    row.update(bjd_tdb=task.bjd_tdb, berv=task.berv, rv=float(compose_velocity(res.rv, task.berv)),
-               rv_err=res.rv_err * (1 + task.berv / C_MS), rv_topo=res.rv, snr=res.snr, n_orders=res.n_orders,
+    rv, rv_topo = frame_velocities(task, res.rv)
+    row.update(bjd_tdb=task.bjd_tdb, berv=task.observed_berv, rv=rv,
+               rv_err=res.rv_err * (1 + task.berv / C_MS), rv_topo=rv_topo, snr=res.snr, n_orders=res.n_orders,
                method="template")
-    row["_orders"] = [dict(o) for o in res.orders]
+    row["_orders"] = _orders_to_topo(res.orders, task)
+    row["_v_file"] = float(res.rv)
     return row
 
 
@@ -371,9 +408,9 @@ def _lines_row(task: Task, obs: Observation, orders, ctx: Context) -> dict:
     lines = []
     for line in res.lines:
         line = dict(line)
-        line["rv_topo"] = line.pop("rv")
+        v_file = line.pop("rv")
         line["rv_topo_err"] = line.pop("rv_err")
-        line["rv"] = float(compose_velocity(line["rv_topo"], task.berv)) if np.isfinite(line["rv_topo"]) else np.nan
+        line["rv"], line["rv_topo"] = frame_velocities(task, v_file) if np.isfinite(v_file) else (np.nan, np.nan)
         line["rv_err"] = line["rv_topo_err"] * scale
         lines.append(line)
     outliers = sum(1 for line in lines if line["outlier_probability"] > 0.5)
@@ -381,10 +418,10 @@ def _lines_row(task: Task, obs: Observation, orders, ctx: Context) -> dict:
         (f"{outliers} of {res.n_lines} lines more likely outliers than not (line-by-line mixture, "
          f"outlier fraction {res.outlier_fraction:.3f}, width {res.outlier_width:.0f} m/s)",) if outliers else ())
     row = _empty_row(task.path, obs, "ok", "; ".join(notes), ctx.settings)
-    row.update(bjd_tdb=task.bjd_tdb, berv=task.berv, rv=float(compose_velocity(res.rv, task.berv)),
-               rv_err=res.rv_err * scale, rv_topo=res.rv, snr=res.snr, n_orders=res.n_orders, n_lines=res.n_lines,
-               method="lines")
-    row["_orders"] = [dict(o) for o in res.orders]
+    rv, rv_topo = frame_velocities(task, res.rv)
+    row.update(bjd_tdb=task.bjd_tdb, berv=task.observed_berv, rv=rv, rv_err=res.rv_err * scale, rv_topo=rv_topo,
+               snr=res.snr, n_orders=res.n_orders, n_lines=res.n_lines, method="lines")
+    row["_orders"] = _orders_to_topo(res.orders, task)
     row["_lines"] = lines
     return row
 
@@ -422,7 +459,8 @@ def _run_template(tasks: list[Task], first: dict[int, dict], ctx: Context, *, wo
     ranges: dict[int, tuple[float, float, float]] = {}   # per file, once: they do not change between passes
     for t in tasks:
         if rows[t.index].get("status") == "ok":
-            sp = load_spectrum(t.path, medium=ctx.settings.medium)
+            sp = load_spectrum(t.path, medium=ctx.settings.medium,
+                                   flux_time_key=ctx.settings.flux_time_key)
             a, b = sp.wavelength_range
             step = float(np.median(np.concatenate([C_MS * np.diff(o.wave) / o.wave[1:] for o in sp.orders])))
             ranges[t.index] = (a, b, step)
@@ -436,7 +474,8 @@ def _run_template(tasks: list[Task], first: dict[int, dict], ctx: Context, *, wo
         steps = [ranges[t.index][2] for t in use]
         acc = TemplateAccumulator(log_grid(lo * (1 - 1e-4), hi * (1 + 1e-4), np.median(steps) / 2), bands=bands)
         for t in use:
-            acc.add(prepare_spectrum(load_spectrum(t.path, medium=ctx.settings.medium),
+            acc.add(prepare_spectrum(load_spectrum(t.path, medium=ctx.settings.medium,
+                                   flux_time_key=ctx.settings.flux_time_key),
                                      degree=ctx.settings.continuum_degree), factor[t.index])
         state = TemplateState.from_accumulator(acc)
         new = _fit_against(use, first, {t.index: rows[t.index]["rv"] for t in use}, ctx, state, factor,
@@ -456,13 +495,15 @@ def _two_component_row(task: Task, obs: Observation, orders, ctx: Context) -> di
     res = measure_two(orders, ctx.mask, s.search, berv=task.berv, path=task.path)
     row = _empty_row(task.path, obs, "ok", "; ".join(tuple(obs.notes) + task.notes), s)
     scale = 1 + task.berv / C_MS
+    (rv1, topo1), (rv2, topo2) = frame_velocities(task, res.rv[0]), frame_velocities(task, res.rv[1])
     row.update(
-        bjd_tdb=task.bjd_tdb, berv=task.berv, rv=float(compose_velocity(res.rv[0], task.berv)),
-        rv_err=res.rv_err[0] * scale, rv_topo=res.rv[0], fwhm=res.fwhm[0], contrast=res.contrast[0],
+        bjd_tdb=task.bjd_tdb, berv=task.observed_berv, rv=rv1,
+        rv_err=res.rv_err[0] * scale, rv_topo=topo1, fwhm=res.fwhm[0], contrast=res.contrast[0],
         fwhm_err=res.fwhm_err[0], contrast_err=res.contrast_err[0], snr=res.snr, n_lines=res.n_lines,
-        n_orders=res.n_orders, rv2=float(compose_velocity(res.rv[1], task.berv)), rv2_err=res.rv_err[1] * scale,
-        rv2_topo=res.rv[1], fwhm2=res.fwhm[1], fwhm2_err=res.fwhm_err[1], contrast2=res.contrast[1],
+        n_orders=res.n_orders, rv2=rv2, rv2_err=res.rv_err[1] * scale,
+        rv2_topo=topo2, fwhm2=res.fwhm[1], fwhm2_err=res.fwhm_err[1], contrast2=res.contrast[1],
         contrast2_err=res.contrast_err[1], flux_ratio=res.flux_ratio)
+    row["_v_file"] = float(res.rv[0])
     if s.keep_ccf:
         row["_ccf"] = (res.velocity, res.ccf, res.model, None)
     return row
@@ -593,12 +634,13 @@ def measure_files(paths: list[str], mask: LineMask, settings: MeasureSettings, *
         if isinstance(b, BarycentricResult):
             # a cluster's workers do not share our working directory: ship absolute paths
             shipped = os.path.abspath(paths[i]) if scheduler else paths[i]
-            tasks.append(Task(i, shipped, b.berv, b.bjd_tdb, b.notes, hashes[i]))
+            tasks.append(Task(i, shipped, b.berv, b.bjd_tdb, b.notes, hashes[i], berv_obs=b.observed_berv))
         else:
             obs = observations[i]
             emit(i, {**_empty_row(paths[i], obs, b.status, str(b), settings), "_error": str(b)})
 
-    bervs = np.array([t.berv for t in tasks])
+    # telluric bands move with the observation's BERV, whatever frame the file's wavelengths are in
+    bervs = np.array([t.observed_berv for t in tasks])
 
     def estimate_systemic() -> float | None:
         plain = Context(mask, replace(settings, keep_ccf=False))
