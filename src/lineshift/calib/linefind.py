@@ -1,9 +1,9 @@
 """Absorption lines of a co-added template: find, fit, reject, weight.
 
-Finding: local minima of the template deeper than ``min_depth`` (and than 5 sigma of the template
-noise).  Fitting: each line's core (+-``core_fwhm`` FWHM around its minimum) with a Gaussian on a
-constant, all lines at once by batched Gauss-Newton with the template's variances; the centre error
-is the fit's (sqrt of the covariance diagonal).
+Finding: local minima of the template (smoothed by half a line's sigma) deeper than ``min_depth``
+(and than 5 sigma of the template noise).  Fitting: each line's core (+-``core_fwhm`` FWHM around
+its minimum) with a Gaussian on a constant, all lines at once by batched Gauss-Newton with the
+template's variances; the centre error is the fit's (sqrt of the covariance diagonal).
 
 Rejections, each counted by reason:
   ``edge``      the line's window touches an order edge, a bad pixel, or a point without coverage;
@@ -11,7 +11,9 @@ Rejections, each counted by reason:
   ``shallow``   the fitted depth is below ``min_depth`` (the raw minimum was not);
   ``telluric``  a telluric band reaches the line for some BERV of the inputs;
   ``blend``     another minimum within ``blend_fraction`` x FWHM of the line (both are rejected), or
-                a line wider than ``max_width_ratio`` x the median FWHM (an unresolved blend);
+                a line wider than ``max_width_ratio`` x the median FWHM of lines of its depth (an
+                unresolved blend), or than 1 + 3 x the robust spread of that ratio when the star's
+                lines differ more among themselves;
   ``centre``    the centre error exceeds ``max_centre_error`` (m/s).
 
 Weights (velocity information, in the spirit of the quality factor of Bouchy, Pepe & Queloz 2001):
@@ -28,10 +30,10 @@ import numpy as np
 from lineshift.linefit import batched_fit, gaussian_points
 from lineshift.measure.coadd import Template
 from lineshift.measure.peak import FWHM_PER_SIGMA
-from lineshift.measure.prepare import reject_telluric_lines
+from lineshift.measure.prepare import PreparedOrder, reject_telluric_lines
 from lineshift.model import C_MS, LineMask
 
-__all__ = ["FoundLines", "LineSettings", "expected_error_per_snr", "find_lines"]
+__all__ = ["FoundLines", "LineSettings", "expected_error_per_snr", "find_lines", "follow_continuum"]
 
 REASONS = ("fit", "shallow", "blend", "edge", "telluric", "centre")
 
@@ -73,6 +75,105 @@ class FoundLines:
         return LineMask(self.wavelength[k], self.weight[k], (), source, provenance)
 
 
+_SPLINE_CACHE: dict[tuple[int, int], tuple[np.ndarray, np.ndarray]] = {}
+
+
+def _spline_design(n: int, n_intervals: int) -> tuple[np.ndarray, np.ndarray]:
+    """Cubic B-spline basis on pixels 0..n-1 with ``n_intervals`` equal knot intervals (dense, n x m),
+    and the second-difference penalty matrix D^T D of its coefficients."""
+    key = (n, n_intervals)
+    if key not in _SPLINE_CACHE:
+        from scipy.interpolate import BSpline
+
+        if len(_SPLINE_CACHE) > 16:
+            _SPLINE_CACHE.clear()
+        inner = np.linspace(0.0, n - 1.0, n_intervals + 1)
+        t = np.concatenate(([inner[0]] * 3, inner, [inner[-1]] * 3))
+        B = BSpline.design_matrix(np.arange(n, dtype=float), t, 3).toarray()
+        D = np.diff(np.eye(B.shape[1]), 2, axis=0)
+        _SPLINE_CACHE[key] = (B, D.T @ D)
+    return _SPLINE_CACHE[key]
+
+
+def follow_continuum(orders: list[PreparedOrder], *, knot_pixels: int = 128, clip_low: float = 2.0,
+                     clip_high: float = 3.0, max_iter: int = 10) -> list[PreparedOrder]:
+    """Re-normalise prepared orders by a smooth upper envelope that can follow a steep blaze.
+
+    A low-degree polynomial continuum cannot follow a blaze that falls to a few per cent at the
+    order ends when the file gives none; the normalised flux then sinks towards the ends, and a
+    co-added template shows broad false dips there.  This fits the residual continuum of each
+    normalised order with a cubic B-spline (knots every ``knot_pixels`` pixels, a light
+    second-difference penalty so sparse stretches stay smooth: P-splines, Eilers & Marx 1996,
+    Statist. Sci. 11, 89) with iterative asymmetric sigma clipping (lines below, spikes above:
+    common practice in continuum normalisation), and divides it out.  Variances scale with the
+    square of the correction, photon weights with the correction (photon noise: the weight is
+    proportional to the continuum counts).  Pixels where the correction is below 5 % are dropped.
+    """
+    out: list[PreparedOrder] = []
+    for o in orders:
+        n = o.flux.size
+        n_int = max(1, round((n - 1) / knot_pixels))
+        if n < 4 * n_int + 8:
+            out.append(o)
+            continue
+        B, P = _spline_design(n, n_int)
+        g = o.good & np.isfinite(o.flux) & np.isfinite(o.var)
+        y = np.where(g, o.flux, 0.0)
+        v = np.where(g, o.var, 0.0)
+        used = g.copy()
+        fit = np.ones(n)
+        for _ in range(max_iter):
+            if used.sum() < B.shape[1] + 2:
+                break
+            Bw = B[used]
+            A = Bw.T @ Bw
+            A = A + 1e-3 * np.trace(A) / A.shape[0] * P + 1e-12 * np.trace(A) * np.eye(A.shape[0])
+            fit = B @ np.linalg.solve(A, Bw.T @ y[used])
+            resid = y - fit
+            scatter2 = max(float(np.mean(resid[used] ** 2 - v[used])), 0.0)
+            sigma = np.sqrt(v + scatter2)
+            new = g & (resid > -clip_low * sigma) & (resid < clip_high * sigma)
+            changed = np.count_nonzero(new != used)
+            used = new
+            if changed <= max(1, n // 1000):
+                break
+        ok = g & np.isfinite(fit) & (fit > 0.05)
+        r = np.where(ok, fit, 1.0)
+        out.append(PreparedOrder(o.wave, o.edges, np.where(ok, o.flux / r, 0.0), np.where(ok, o.var / r**2, 0.0),
+                                 np.where(ok, o.weight * r, 0.0), ok, o.index))
+    return out
+
+
+def _width_trend(depth: np.ndarray, fwhm: np.ndarray, use: np.ndarray) -> np.ndarray:
+    """Typical FWHM of a line of each depth: a running median of the usable lines' FWHM ordered by
+    depth (windows of a fifth of them, at least 11), interpolated at every line's depth.
+
+    Strong lines are wider than weak ones (saturated cores, damping wings: the curve of growth,
+    Gray ch. 16), so an unresolved blend shows as a width excess over lines of the same depth, not
+    over all lines.  With fewer than 11 usable lines the overall median is used."""
+    d, f = depth[use], fwhm[use]
+    if d.size < 11:
+        return np.full(depth.size, np.median(f))
+    o = np.argsort(d)
+    d, f = d[o], f[o]
+    half = max(5, d.size // 10)
+    med = np.array([np.median(f[max(0, i - half):i + half + 1]) for i in range(d.size)])
+    return np.interp(depth, d, med)
+
+
+def _smoothed(flux: np.ndarray, sigma_points: float) -> np.ndarray:
+    """Gaussian-smoothed flux (NaN stays NaN; gaps do not leak into their neighbours' values)."""
+    from scipy.ndimage import gaussian_filter1d
+
+    if sigma_points < 0.5:
+        return flux
+    ok = np.isfinite(flux)
+    num = gaussian_filter1d(np.where(ok, flux, 0.0), sigma_points, mode="nearest")
+    den = gaussian_filter1d(ok.astype(float), sigma_points, mode="nearest")
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(ok & (den > 0.5), num / den, np.nan)
+
+
 def _local_minima(flux: np.ndarray) -> np.ndarray:
     f = np.where(np.isfinite(flux), flux, np.inf)
     return np.flatnonzero((f[1:-1] < f[:-2]) & (f[1:-1] <= f[2:])) + 1
@@ -98,11 +199,16 @@ def find_lines(template: Template, settings: LineSettings, *, fwhm_guess: float,
         for the telluric test.
     """
     flux, var = template.flux, template.var
-    minima = _local_minima(flux)
-    depth0 = 1.0 - flux[minima]
+    # minima of the template smoothed by a Gaussian of half a line's sigma: noise can no longer
+    # split one line's core into two minima (which the blend test would reject), and broadens a
+    # line by only sqrt(1.25)
+    smooth = _smoothed(flux, 0.5 * fwhm_guess / FWHM_PER_SIGMA / template.step)
+    minima = _local_minima(smooth)
+    depth0 = 1.0 - smooth[minima]
     noise = np.sqrt(np.where(np.isfinite(var[minima]), var[minima], np.inf))
     cand = minima[(depth0 > settings.min_depth) & (depth0 > settings.min_significance * noise)]
-    weak = minima[depth0 > 0.5 * settings.min_depth]  # neighbours that can still blend
+    # neighbours that can still blend: half the depth limit, but clear of the noise (3 sigma)
+    weak = minima[(depth0 > 0.5 * settings.min_depth) & (depth0 > 3.0 * noise)]
     half = max(2, int(np.ceil(settings.core_fwhm * fwhm_guess / template.step)))
     k = np.arange(-half, half + 1)
     n = template.wave.size
@@ -149,7 +255,11 @@ def find_lines(template: Template, settings: LineSettings, *, fwhm_guess: float,
     blend = (hi - lo) > 1
     ok_w = reason == ""
     if ok_w.any():
-        blend |= fwhm > settings.max_width_ratio * np.median(fwhm[ok_w])
+        # wider than lines of the same depth by more than max_width_ratio, or by more than 3x the
+        # robust spread of the widths when the star's lines differ that much among themselves
+        rel = fwhm / _width_trend(depth, fwhm, ok_w)
+        spread = 1.4826 * np.median(np.abs(rel[ok_w] - np.median(rel[ok_w])))
+        blend |= rel > max(settings.max_width_ratio, 1.0 + 3.0 * spread)
     reason[(reason == "") & blend] = "blend"
     reason[(reason == "") & ~(mu_err <= settings.max_centre_error)] = "centre"
     kept = reason == ""
