@@ -14,7 +14,9 @@ Rejections, each counted by reason:
                 a line wider than ``max_width_ratio`` x the median FWHM of lines of its depth (an
                 unresolved blend), or than 1 + 3 x the robust spread of that ratio when the star's
                 lines differ more among themselves;
-  ``centre``    the centre error exceeds ``max_centre_error`` (m/s).
+  ``centre``    the centre error exceeds ``max_centre_error`` (m/s);
+  ``absent``, ``outside``  only when re-measuring given lines (:func:`measure_lines`);
+  ``inconsistent`` set by the mask builder when refining a starting mask.
 
 Weights (velocity information, in the spirit of the quality factor of Bouchy, Pepe & Queloz 2001):
 a line's photon-limited velocity information grows with its depth and its sharpness, so the weight
@@ -33,9 +35,10 @@ from lineshift.measure.peak import FWHM_PER_SIGMA
 from lineshift.measure.prepare import PreparedOrder, reject_telluric_lines
 from lineshift.model import C_MS, LineMask
 
-__all__ = ["FoundLines", "LineSettings", "expected_error_per_snr", "find_lines", "follow_continuum"]
+__all__ = ["FoundLines", "LineSettings", "expected_error_per_snr", "find_lines", "follow_continuum",
+           "measure_lines"]
 
-REASONS = ("fit", "shallow", "blend", "edge", "telluric", "centre")
+REASONS = ("fit", "shallow", "blend", "edge", "telluric", "centre", "absent", "outside", "inconsistent")
 
 
 @dataclass(frozen=True)
@@ -75,12 +78,13 @@ class FoundLines:
         return LineMask(self.wavelength[k], self.weight[k], (), source, provenance)
 
 
-_SPLINE_CACHE: dict[tuple[int, int], tuple[np.ndarray, np.ndarray]] = {}
+_SPLINE_CACHE: dict[tuple[int, int], tuple[np.ndarray, np.ndarray, np.ndarray]] = {}
 
 
-def _spline_design(n: int, n_intervals: int) -> tuple[np.ndarray, np.ndarray]:
-    """Cubic B-spline basis on pixels 0..n-1 with ``n_intervals`` equal knot intervals (dense, n x m),
-    and the second-difference penalty matrix D^T D of its coefficients."""
+def _spline_design(n: int, n_intervals: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Cubic B-spline basis on pixels 0..n-1 with ``n_intervals`` equal knot intervals, as the four
+    non-zero basis indices and values per pixel (n x 4 each), and the second-difference penalty
+    matrix D^T D of the coefficients."""
     key = (n, n_intervals)
     if key not in _SPLINE_CACHE:
         from scipy.interpolate import BSpline
@@ -90,8 +94,11 @@ def _spline_design(n: int, n_intervals: int) -> tuple[np.ndarray, np.ndarray]:
         inner = np.linspace(0.0, n - 1.0, n_intervals + 1)
         t = np.concatenate(([inner[0]] * 3, inner, [inner[-1]] * 3))
         B = BSpline.design_matrix(np.arange(n, dtype=float), t, 3).toarray()
-        D = np.diff(np.eye(B.shape[1]), 2, axis=0)
-        _SPLINE_CACHE[key] = (B, D.T @ D)
+        m = B.shape[1]
+        idx = np.clip(np.argmax(B > 0, axis=1), 0, m - 4)[:, None] + np.arange(4)[None, :]
+        vals = np.take_along_axis(B, idx, axis=1)
+        D = np.diff(np.eye(m), 2, axis=0)
+        _SPLINE_CACHE[key] = (idx, vals, D.T @ D)
     return _SPLINE_CACHE[key]
 
 
@@ -116,19 +123,25 @@ def follow_continuum(orders: list[PreparedOrder], *, knot_pixels: int = 128, cli
         if n < 4 * n_int + 8:
             out.append(o)
             continue
-        B, P = _spline_design(n, n_int)
+        idx, vals, P = _spline_design(n, n_int)
+        m = P.shape[0]
+        # normal equations by bincount over each pixel's four basis functions (no BLAS call: a
+        # threaded BLAS is slow on matrices this small when the cores are shared)
+        pair = (idx[:, :, None] * m + idx[:, None, :]).reshape(n, 16)
+        vv = (vals[:, :, None] * vals[:, None, :]).reshape(n, 16)
         g = o.good & np.isfinite(o.flux) & np.isfinite(o.var)
         y = np.where(g, o.flux, 0.0)
         v = np.where(g, o.var, 0.0)
         used = g.copy()
         fit = np.ones(n)
         for _ in range(max_iter):
-            if used.sum() < B.shape[1] + 2:
+            if used.sum() < m + 2:
                 break
-            Bw = B[used]
-            A = Bw.T @ Bw
-            A = A + 1e-3 * np.trace(A) / A.shape[0] * P + 1e-12 * np.trace(A) * np.eye(A.shape[0])
-            fit = B @ np.linalg.solve(A, Bw.T @ y[used])
+            A = np.bincount(pair[used].ravel(), vv[used].ravel(), minlength=m * m).reshape(m, m)
+            b = np.bincount(idx[used].ravel(), (vals[used] * y[used, None]).ravel(), minlength=m)
+            tr = np.trace(A)
+            coef = np.linalg.solve(A + 1e-3 * tr / m * P + 1e-12 * tr * np.eye(m), b)
+            fit = np.sum(vals * coef[idx], axis=1)
             resid = y - fit
             scatter2 = max(float(np.mean(resid[used] ** 2 - v[used])), 0.0)
             sigma = np.sqrt(v + scatter2)
@@ -198,17 +211,58 @@ def find_lines(template: Template, settings: LineSettings, *, fwhm_guess: float,
         Barycentric velocity of the template frame relative to the laboratory frame (approximate),
         for the telluric test.
     """
-    flux, var = template.flux, template.var
-    # minima of the template smoothed by a Gaussian of half a line's sigma: noise can no longer
-    # split one line's core into two minima (which the blend test would reject), and broadens a
-    # line by only sqrt(1.25)
-    smooth = _smoothed(flux, 0.5 * fwhm_guess / FWHM_PER_SIGMA / template.step)
-    minima = _local_minima(smooth)
-    depth0 = 1.0 - smooth[minima]
-    noise = np.sqrt(np.where(np.isfinite(var[minima]), var[minima], np.inf))
+    _, minima, depth0, noise = _minima(template, fwhm_guess)
     cand = minima[(depth0 > settings.min_depth) & (depth0 > settings.min_significance * noise)]
     # neighbours that can still blend: half the depth limit, but clear of the noise (3 sigma)
     weak = minima[(depth0 > 0.5 * settings.min_depth) & (depth0 > 3.0 * noise)]
+    return _fit_lines(template, cand, weak, settings, fwhm_guess, bands, berv_range, rv_star)
+
+
+def _minima(template: Template, fwhm_guess: float):
+    """Minima of the template smoothed by a Gaussian of half a line's sigma (noise can no longer
+    split one line's core into two minima, which the blend test would reject; a line broadens by
+    only sqrt(1.25)), with their depths and the template noise there."""
+    smooth = _smoothed(template.flux, 0.5 * fwhm_guess / FWHM_PER_SIGMA / template.step)
+    minima = _local_minima(smooth)
+    depth0 = 1.0 - smooth[minima]
+    var = template.var[minima]
+    noise = np.sqrt(np.where(np.isfinite(var), var, np.inf))
+    return smooth, minima, depth0, noise
+
+
+def measure_lines(template: Template, wavelength: np.ndarray, settings: LineSettings, *, fwhm_guess: float,
+                  bands: np.ndarray | None = None, berv_range: tuple[float, float] = (0.0, 0.0),
+                  rv_star: float = 0.0) -> FoundLines:
+    """Re-measure given lines (a starting mask, template frame) on the template.
+
+    Each line is fitted in a window centred on its given wavelength, exactly as :func:`find_lines`
+    fits the minima it finds, and judged by the same tests, with two more reasons:
+    ``outside`` (the template does not cover the line at all) and ``absent`` (no line of the star
+    there: the fit failed, the dip at the given position is shallower than ``min_significance``
+    times the template noise, or the fitted centre left the given position by more than a quarter
+    of the line width, i.e. it found a neighbour; of two given lines that land on the same
+    template line, the farther one).
+    """
+    wavelength = np.asarray(wavelength, dtype=float)
+    n = template.wave.size
+    lnw = np.log(template.wave)
+    u = np.log(wavelength)
+    pos = (u - lnw[0]) / (lnw[1] - lnw[0]) if n > 1 else np.zeros(wavelength.size)
+    cand = np.clip(np.rint(pos).astype(np.intp), 0, n - 1)
+    covered = (pos >= 0) & (pos <= n - 1)
+    covered[covered] = np.isfinite(template.flux[cand[covered]])
+    _, minima, depth0, noise = _minima(template, fwhm_guess)
+    weak = minima[(depth0 > 0.5 * settings.min_depth) & (depth0 > 3.0 * noise)]
+    out = _fit_lines(template, cand, weak, settings, fwhm_guess, bands, berv_range, rv_star,
+                     start=wavelength, covered=covered)
+    return out
+
+
+def _fit_lines(template, cand, weak, settings, fwhm_guess, bands, berv_range, rv_star, *, start=None,
+               covered=None) -> FoundLines:
+    """Fit, judge and weight lines at template indices ``cand`` (see :func:`find_lines`); with
+    ``start`` (given wavelengths) also the ``outside`` and ``absent`` tests of :func:`measure_lines`."""
+    flux, var = template.flux, template.var
     half = max(2, int(np.ceil(settings.core_fwhm * fwhm_guess / template.step)))
     k = np.arange(-half, half + 1)
     n = template.wave.size
@@ -221,7 +275,8 @@ def find_lines(template: Template, settings: LineSettings, *, fwhm_guess: float,
     y = np.where(good, y, 1.0)
     x = k * template.step
     sigma0 = fwhm_guess / FWHM_PER_SIGMA
-    p0 = np.column_stack((np.ones(cand.size), 1.0 - flux[cand], np.zeros(cand.size), np.full(cand.size, sigma0)))
+    a0 = np.where(np.isfinite(flux[cand]), 1.0 - flux[cand], 0.1) if cand.size else np.zeros(0)
+    p0 = np.column_stack((np.ones(cand.size), a0, np.zeros(cand.size), np.full(cand.size, sigma0)))
     if cand.size:
         p, cov, _, ok = batched_fit(gaussian_points(x), p0, y, w, positive=(3,))
     else:
@@ -237,6 +292,19 @@ def find_lines(template: Template, settings: LineSettings, *, fwhm_guess: float,
     fitbad = ~ok | (a <= 0) | (c0 <= 0) | (np.abs(mu) > x[-1]) | (s < 0.25 * sigma0)
     edge = ~np.all(good | ~inside, axis=1) | ~np.all(inside, axis=1)
     reason[edge] = "edge"  # a fit to a window that is not fully covered means nothing
+    if start is not None:
+        reason[~covered] = "outside"
+        moved = np.abs(C_MS * (lam / np.where(start > 0, start, 1.0) - 1)) > 0.25 * fwhm_guess
+        # the dip at the given position, as find_lines asks of a minimum: deeper than
+        # min_significance x the template noise (the core fit alone cannot tell the depth's error:
+        # its window does not reach the continuum)
+        smooth = _smoothed(flux, 0.5 * sigma0 / template.step)
+        with np.errstate(invalid="ignore"):
+            dip = 1.0 - smooth[cand]
+            faint = ~(dip > settings.min_significance * np.sqrt(var[cand]))
+        absent = fitbad | faint | moved
+        reason[(reason == "") & absent] = "absent"
+        lam = np.where(reason == "absent", start, lam)
     reason[(reason == "") & fitbad] = "fit"
     reason[(reason == "") & (depth < settings.min_depth)] = "shallow"
     if bands is not None and bands.size and cand.size:
@@ -262,6 +330,14 @@ def find_lines(template: Template, settings: LineSettings, *, fwhm_guess: float,
         blend |= rel > max(settings.max_width_ratio, 1.0 + 3.0 * spread)
     reason[(reason == "") & blend] = "blend"
     reason[(reason == "") & ~(mu_err <= settings.max_centre_error)] = "centre"
+    if start is not None:   # two given lines on one template line: the one given nearer it stays
+        kept = np.flatnonzero(reason == "")
+        kept = kept[np.argsort(lam[kept])]
+        off = np.abs(np.log(lam / start))
+        close = np.flatnonzero(np.diff(np.log(lam[kept])) < 0.25 * fwhm_guess / C_MS)
+        for i in close:
+            a_, b_ = kept[i], kept[i + 1]
+            reason[b_ if off[b_] > off[a_] else a_] = "absent"
     kept = reason == ""
     weight = np.zeros(cand.size)
     if kept.any():
