@@ -144,8 +144,10 @@ def test_refining_a_mismatched_start_mask(refined, capfd):
     m = kept & real
     e_start = C * (changes.wavelength_start.to_numpy()[m] / truth[m] - 1)
     e_new = C * (changes.wavelength.to_numpy()[m] / truth[m] - 1)
-    assert np.sqrt(np.mean(e_new**2)) < 0.8 * np.sqrt(np.mean(e_start**2)), (e_new.std(), e_start.std())
-    assert np.median(np.abs(e_new)) < np.median(np.abs(e_start))
+    # (measured today: rms 37.6 -> 28.8 m/s, median |error| 25.9 -> 14.8 m/s; the rms keeps the lines
+    # that an unseen weak neighbour pulls, the median shows the typical line)
+    assert np.sqrt(np.mean(e_new**2)) < 0.9 * np.sqrt(np.mean(e_start**2)), (e_new.std(), e_start.std())
+    assert np.median(np.abs(e_new)) < 0.75 * np.median(np.abs(e_start))
     # weights from the data: they follow the lines' true depths (the start's were random)
     depth = fwd.line_depths(LINES)[np.searchsorted(LINES.wave, truth[m])]
     assert spearmanr(changes.weight.to_numpy()[m], depth).statistic > 0.5

@@ -411,13 +411,14 @@ def build_mask(paths: list[str], settings: MeasureSettings, build: MaskBuildSett
         return rv, err, fwhm
 
     if start_mask is not None:
-        rv, _, fwhm = velocities_with(start_mask)
-        fwhm_guess = float(np.nanmedian(fwhm)) / np.sqrt(2) if np.isfinite(fwhm).any() else None
+        rv, _, _ = velocities_with(start_mask)
         notes.append(f"first-pass velocities from the starting mask {start_mask.source}")
     else:
         rv = np.zeros(len(upaths))
-        fwhm_guess = None
         notes.append("first pass: co-added in the barycentric frame")
+    # line width for the fit windows: first from the template's minima, then the median fitted
+    # FWHM of the kept lines (the template's own lines, whatever their broadening)
+    fwhm_guess = None
     lo, hi, dv_pix = _ranges(upaths)
     n_iter = 0       # co-adds made (progress count)
     n_measured = 0   # velocity re-measurements against the template's mask: what --iterations bounds
@@ -447,6 +448,8 @@ def build_mask(paths: list[str], settings: MeasureSettings, build: MaskBuildSett
             fwhm_guess = _estimate_fwhm(template)
         found = find_lines(template, build.lines, fwhm_guess=fwhm_guess, bands=bands,
                            berv_range=topo_range(rv), rv_star=0.0)
+        if found.kept.sum() >= 10:
+            fwhm_guess = float(np.median(found.fwhm[found.kept]))
         if found.kept.sum() < 3:
             raise MeasurementError(f"only {int(found.kept.sum())} usable line(s) found in the co-added template",
                                    status="no lines")
@@ -456,9 +459,8 @@ def build_mask(paths: list[str], settings: MeasureSettings, build: MaskBuildSett
         if n_iter > build.iterations:
             break
         mask = found.mask("provisional")
-        new_rv, new_err, fwhm = velocities_with(mask)
+        new_rv, new_err, _ = velocities_with(mask)
         n_measured += 1
-        fwhm_guess = float(np.nanmedian(fwhm)) / np.sqrt(2) if np.isfinite(fwhm).any() else fwhm_guess
         change = np.nanmax(np.abs(new_rv - rv)) if np.isfinite(new_rv).any() else np.inf
         tol = 0.1 * np.nanmedian(new_err) if np.isfinite(new_err).any() else 0.0
         rv = new_rv
