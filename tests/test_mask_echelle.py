@@ -206,3 +206,17 @@ def test_refine_positions_combines_by_inverse_variance():
     # a perfect start: nothing to learn from noisier measurements, positions stay
     shift, _, _, s = refine_positions(rng.normal(0, err), np.zeros(n), err)
     assert s < 5.0 and np.max(np.abs(shift)) < 10.0
+
+
+def test_start_mask_usage_errors(echelle_dir, tmp_path, capfd):
+    far = tmp_path / "far.csv"       # a mask nowhere near the spectra's range
+    pd.DataFrame({"wavelength": [9100.0, 9200.0, 9300.0, 9400.0], "weight": 1.0}).to_csv(far, index=False)
+    assert main(["mask", str(echelle_dir), "-o", str(tmp_path / "m.csv"), "--start-mask", str(far)]) == 1
+    err = capfd.readouterr().err
+    assert "cannot build a mask" in err and "starting mask" in err and "Traceback" not in err
+    assert not (tmp_path / "m.csv").exists()
+    blocked = tmp_path / "file"
+    blocked.write_text("")
+    assert main(["mask", str(echelle_dir), "-o", str(tmp_path / "m.csv"), "--start-mask", str(far),
+                 "--changes", str(blocked / "c.csv")]) == 2
+    assert "--changes" in capfd.readouterr().err

@@ -70,6 +70,13 @@ def run(args) -> int:
         raise ConfigError("--changes only applies with --start-mask")
     if args.changes and os.path.abspath(args.changes) == os.path.abspath(args.output):
         raise ConfigError("--changes and --output name the same file")
+    if args.changes and os.path.abspath(args.changes) in {os.path.abspath(p) for p in paths}:
+        raise ConfigError(f"--changes {args.changes!r} is one of the inputs: refusing to overwrite it")
+    from lineshift.cli.measure import check_writable
+
+    for what, target in (("output", args.output), ("--changes", args.changes)):
+        if target:
+            check_writable(os.path.dirname(os.path.abspath(target)), what, target)
     start = read_mask(args.start_mask) if args.start_mask else None
     anchor = None
     if args.lab_lines and not args.anchor:

@@ -412,6 +412,9 @@ def build_mask(paths: list[str], settings: MeasureSettings, build: MaskBuildSett
 
     if start_mask is not None:
         rv, _, _ = velocities_with(start_mask)
+        if not np.isfinite(rv).any():
+            raise MeasurementError(f"no spectrum gives a velocity with the starting mask {start_mask.source}",
+                                   status="no velocity")
         notes.append(f"first-pass velocities from the starting mask {start_mask.source}")
     else:
         rv = np.zeros(len(upaths))
