@@ -186,10 +186,11 @@ def test_mask_command_usage(tmp_path, sample_set, capfd, drawn):
     assert main(["mask", *files, "-o", str(tmp_path / "m.csv"), "--start-mask", mask, "--plot",
                  str(tmp_path / "t.png")]) == 0
     err = capfd.readouterr().err
-    assert "expected photon-limited error" in err and "zero point is relative" in err
+    assert "expected photon-limited error" in err and "zero point is the starting mask's" in err
     built = read_mask(str(tmp_path / "m.csv"))
     assert len(built) > 10
-    assert any("starting mask" in line for line in built.provenance)
+    assert any(line.startswith("Refined from the starting mask") for line in built.provenance)
+    assert main(["mask", *files, "-o", str(tmp_path / "z.csv"), "--changes", str(tmp_path / "c.csv")]) == 2
     fig = check_plot(drawn, tmp_path / "t.png", min_points=0, axes_with_data=5)    # overview + 4 zooms
     kept_marks = sum(1 for ax in fig.axes[1:] for line in ax.lines if line.get_color() == "tab:red")
     assert 0 < kept_marks <= len(built)                      # kept lines marked in the zooms, no more than kept

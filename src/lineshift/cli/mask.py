@@ -16,7 +16,13 @@ def add_parser(sub) -> None:
     p.add_argument("spectra", nargs="+", metavar="SPECTRUM", help="spectrum files, directories or globs")
     p.add_argument("-o", "--output", metavar="MASK", required=True, help="mask CSV to write")
     p.add_argument("--start-mask", metavar="CSV",
-                   help="measure first-pass velocities with this mask (default: a mask found in the plain co-add)")
+                   help="refine this mask instead of finding lines afresh: first-pass velocities with it, its "
+                        "lines re-measured on the co-add (positions, weights), lines the star lacks dropped; "
+                        "the changes are printed and written in the mask's header (default: lines found in the "
+                        "co-add)")
+    p.add_argument("--changes", metavar="CSV",
+                   help="with --start-mask: also write a per-line table of what changed (start and new "
+                        "wavelength, shift, weight, kept / moved / dropped and why)")
     p.add_argument("--anchor", action="store_true",
                    help="shift the mask to laboratory wavelengths (absolute zero point) with the --lab-lines list; "
                         "without it the zero point is relative")
@@ -42,7 +48,7 @@ def run(args) -> int:
     from lineshift.calib.linefind import LineSettings
     from lineshift.io.linelists import DEFAULT_LAB_LINES, read_mask
     from lineshift.run.config import load_config
-    from lineshift.run.mask_builder import MaskBuildSettings, build_mask, write_mask_file
+    from lineshift.run.mask_builder import MaskBuildSettings, build_mask, write_changes_file, write_mask_file
     from lineshift.run.pipeline import expand_inputs
 
     cfg = load_config(args.config) if args.config else {"target": {}, "site": {}, "measure": {}}
@@ -60,6 +66,17 @@ def run(args) -> int:
         raise ConfigError(f"no spectrum files in {', '.join(args.spectra)}")
     if os.path.abspath(args.output) in {os.path.abspath(p) for p in paths}:
         raise ConfigError(f"output {args.output!r} is one of the inputs: refusing to overwrite it")
+    if args.changes and not args.start_mask:
+        raise ConfigError("--changes only applies with --start-mask")
+    if args.changes and os.path.abspath(args.changes) == os.path.abspath(args.output):
+        raise ConfigError("--changes and --output name the same file")
+    if args.changes and os.path.abspath(args.changes) in {os.path.abspath(p) for p in paths}:
+        raise ConfigError(f"--changes {args.changes!r} is one of the inputs: refusing to overwrite it")
+    from lineshift.cli.measure import check_writable
+
+    for what, target in (("output", args.output), ("--changes", args.changes)):
+        if target:
+            check_writable(os.path.dirname(os.path.abspath(target)), what, target)
     start = read_mask(args.start_mask) if args.start_mask else None
     anchor = None
     if args.lab_lines and not args.anchor:
@@ -83,6 +100,8 @@ def run(args) -> int:
     for _path, reason in res.failures:
         print(f"lineshift: {reason}", file=sys.stderr)
     write_mask_file(res.mask, args.output)
+    if args.changes and res.refinement is not None:
+        write_changes_file(res.refinement, args.changes, res.mask.provenance)
     if args.plot:
         from lineshift.plots.figures import plot_template
 
@@ -92,9 +111,13 @@ def run(args) -> int:
         print(f"lineshift: mask of {c['kept']} lines written to {args.output} from {len(res.paths)} spectra; "
               f"rejected {c['blend']} blend, {c['edge']} edge/bad pixel, {c['telluric']} telluric, "
               f"{c['centre']} centre error, {c['shallow']} shallow, {c['fit']} fit", file=sys.stderr)
+        if res.refinement is not None:
+            print(f"lineshift: refined {args.start_mask}: {res.refinement.summary()}", file=sys.stderr)
         print(f"lineshift: expected photon-limited error {res.error_per_snr:.0f} m/s per unit SNR "
               f"({res.error_per_snr / 100:.2f} m/s at SNR 100)", file=sys.stderr)
-        if res.anchor is None:
+        if res.anchor is None and res.refinement is not None:
+            print("lineshift: zero point is the starting mask's", file=sys.stderr)
+        elif res.anchor is None:
             print("lineshift: zero point is relative (the co-added template's frame)", file=sys.stderr)
         else:
             a = res.anchor
