@@ -115,12 +115,12 @@ def with_tellurics(counts: list, trans: list) -> list:
     return [c * t for c, t in zip(counts, trans, strict=True)]
 
 
-def year_dates(n: int, seed: int, *, start: str = "2026-01-10T04:00:00") -> list[str]:
+def year_dates(n: int, seed: int, *, start: str = "2025-01-10T04:00:00") -> list[str]:
     """``n`` observing dates spread over a year (random nights, ISO UTC), in time order."""
     from astropy.time import Time, TimeDelta
 
     rng = np.random.default_rng(seed + 8000)
-    days = np.sort(rng.uniform(0.0, 365.0, n))
+    days = np.sort(rng.integers(0, 365, n) + rng.uniform(0.0, 0.3, n))   # nights, a few hours long
     t0 = Time(start, scale="utc")
     return [(t0 + TimeDelta(float(d) * 86400.0, format="sec")).isot for d in days]
 
