@@ -282,6 +282,29 @@ def _to_variance(arr: np.ndarray, kind: str) -> np.ndarray:
         return np.where(arr > 0, 1.0 / arr, np.nan)
 
 
+def _saturated(get, flux: np.ndarray, var: np.ndarray, path: str, notes: list) -> np.ndarray:
+    """Variance made NaN (a bad pixel) where the flux reaches the header's ``SATURATE`` level.
+
+    ``SATURATE`` is the detector's saturation level in the flux's unit (common practice for CCD
+    headers); preparation then masks these pixels with their neighbours (:mod:`lineshift.measure.badpixels`).
+    """
+    level = get("SATURATE")
+    if level is None:
+        return var
+    try:
+        level = float(level)
+    except (TypeError, ValueError):
+        raise MetadataError(f"SATURATE = {level!r} is not a number", path=path) from None
+    if not math.isfinite(level) or level <= 0:
+        raise MetadataError(f"SATURATE = {level!r} is not a positive number", path=path)
+    with np.errstate(invalid="ignore"):
+        hit = flux >= level
+    if hit.any():
+        notes.append(f"{int(hit.sum())} pixel(s) at or above SATURATE = {level:g} masked")
+        var = np.where(hit, np.nan, var)
+    return var
+
+
 def _medium_from_ctype(ctype: str | None) -> str:
     return "air" if ctype and str(ctype).strip().upper().startswith("AWAV") else "vacuum"
 
@@ -307,6 +330,7 @@ def _load_fits(hdul, path: str, *, medium: str | None, arrays: bool,
         wave = wave * _wave_factor(wave_ext.header.get("BUNIT") or wave_ext.header.get("CUNIT1"),
                                    path, "WAVE unit")
         var = np.atleast_2d(_uncertainty_from_ext(hdul, flux, path, notes))
+        var = _saturated(get, flux, var, path, notes)
         blaze_ext = _find_ext(hdul, ("BLAZE",))
         blaze = None
         if blaze_ext is not None:
@@ -351,7 +375,7 @@ def _load_wcs_1d(hdul, hdu, primary, path: str, *, medium: str | None, arrays: b
     if not arrays:
         return obs, []
     data = np.asarray(hdu.data, dtype=float).ravel()
-    var = _uncertainty_from_ext(hdul, data, path, notes)
+    var = _saturated(get, data, _uncertainty_from_ext(hdul, data, path, notes), path, notes)
     orders = _build_orders([(wave, data, var, None)], file_medium, path, notes)
     return replace(obs, notes=tuple(notes)), orders
 
@@ -435,6 +459,7 @@ def _load_fits_table(hdu, cols, primary, path: str, *, medium: str | None, array
     var = _variance(find, flux, notes)
     if wave.shape != flux.shape or var.shape != flux.shape:
         raise SpectrumFormatError("wavelength, flux and uncertainty columns differ in shape", path=path)
+    var = _saturated(get, flux, var, path, notes)
     if wave.ndim == 1:
         parts = [(wave, flux, var, None)]
     else:  # one order per row

@@ -175,19 +175,31 @@ class CorrelationData:
 
 
 def select_lines(order: PreparedOrder, mask: LineMask, v_lo: float, v_hi: float,
-                 box_width: float) -> np.ndarray:
-    """Indices of mask lines whose box stays inside the order's good pixels for all v in [v_lo, v_hi]."""
+                 box_width: float, *, clear_of_bad: bool = False) -> np.ndarray:
+    """Indices of mask lines whose box stays inside the order's good pixels for all v in [v_lo, v_hi].
+
+    With ``clear_of_bad`` a line is also dropped when its box meets a bad pixel *inside* the order
+    anywhere on the grid: a pixel of zero weight under a box removes part of that line at some
+    velocities and not at others, which reshapes the CCF around the line and moves its centre
+    (a missing core pixel near the dip is the worst case).  The fine grid is narrow, so few lines go.
+    """
     good = np.flatnonzero(order.good)
     lam_min = order.edges[good[0]]
     lam_max = order.edges[good[-1] + 1]
     half = 0.5 * box_width
     lo = mask.wavelength * (1 + (v_lo - half) / C_MS)
     hi = mask.wavelength * (1 + (v_hi + half) / C_MS)
-    return np.flatnonzero((lo >= lam_min) & (hi <= lam_max))
+    inside = (lo >= lam_min) & (hi <= lam_max)
+    if clear_of_bad and not order.good[good[0]: good[-1] + 1].all():
+        nbad = np.concatenate(([0], np.cumsum(~order.good)))
+        pa = np.clip(np.searchsorted(order.edges, lo, side="right") - 1, 0, order.good.size)
+        pb = np.clip(np.searchsorted(order.edges, hi, side="left"), 0, order.good.size)
+        inside &= nbad[pb] - nbad[pa] == 0
+    return np.flatnonzero(inside)
 
 
 def correlate(orders: list[PreparedOrder], mask: LineMask, velocity: np.ndarray, box_width: float,
-              *, lines: np.ndarray | None = None) -> CorrelationData:
+              *, lines: np.ndarray | None = None, clear_of_bad: bool = False) -> CorrelationData:
     """CCF of prepared orders with a mask on a velocity grid (m/s, observatory frame).
 
     Parameters
@@ -200,6 +212,9 @@ def correlate(orders: list[PreparedOrder], mask: LineMask, velocity: np.ndarray,
         Full width of each mask box in velocity.
     lines : ndarray of int, optional
         Restrict to these mask lines (e.g. the strongest, for a coarse search).
+    clear_of_bad : bool
+        Use only lines whose boxes meet no bad pixel over the whole grid (:func:`select_lines`); for
+        the fine grid the velocity is measured on (a coarse search only locates the dip).
     """
     velocity = np.asarray(velocity, dtype=float)
     m = velocity.size
@@ -207,7 +222,7 @@ def correlate(orders: list[PreparedOrder], mask: LineMask, velocity: np.ndarray,
     lam_lines = mask.wavelength
     terms = []
     for order in orders:
-        idx = select_lines(order, mask, velocity[0], velocity[-1], box_width)
+        idx = select_lines(order, mask, velocity[0], velocity[-1], box_width, clear_of_bad=clear_of_bad)
         if lines is not None:
             idx = np.intersect1d(idx, lines, assume_unique=True)
         if idx.size == 0:

@@ -151,7 +151,7 @@ def measure_mask(orders: list[PreparedOrder], mask: LineMask, settings: SearchSe
         half = max(settings.window_fwhm * fwhm, 8 * step)
         n = int(np.ceil(half / step))
         grid = centre + step * np.arange(-n, n + 1)
-        data = correlate(orders, mask, grid, box)
+        data = correlate(orders, mask, grid, box, clear_of_bad=True)
         if not data.terms:
             raise MeasurementError("no mask line falls on the spectrum", path=path,
                                    status="outside mask range")

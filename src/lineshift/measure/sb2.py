@@ -106,7 +106,7 @@ def measure_two(orders: list[PreparedOrder], mask: LineMask, settings: SearchSet
     step = settings.velocity_step or dv_pix
     width = settings.window_fwhm * fwhm1
     fine = np.arange(min(v1, v2) - width, max(v1, v2) + width + step / 2, step)
-    data = correlate(orders, mask, fine, box)
+    data = correlate(orders, mask, fine, box, clear_of_bad=True)
     ccf = data.ccf
     c0 = float(np.median(np.concatenate((ccf[:3], ccf[-3:]))))
     s0 = fwhm1 / FWHM_PER_SIGMA

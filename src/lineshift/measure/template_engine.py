@@ -38,6 +38,7 @@ from scipy.ndimage import spline_filter1d
 from lineshift.errors import MeasurementError
 from lineshift.measure.coadd import TemplateAccumulator, bspline
 from lineshift.measure.prepare import PreparedOrder
+from lineshift.measure.tellurics import drop_bands
 from lineshift.model import C_MS
 
 __all__ = ["TemplateSettings", "TemplateState", "measure_template"]
@@ -127,6 +128,8 @@ def measure_template(orders: list[PreparedOrder], state: TemplateState, settings
     if not orders:
         raise MeasurementError("no usable order (too few valid pixels)", path=path, status="no valid pixels")
     flux_t, var_t, ok_t = state.without(orders, factor)
+    # this spectrum's telluric pixels (listed bands and lines found in the batch), in its own frame
+    orders = [drop_bands(o, state.bands) for o in orders]
     coef = spline_filter1d(flux_t, order=3, mode="mirror")
     ok_t = ok_t & np.isfinite(var_t)
     var_t = np.where(ok_t, var_t, 0.0)
