@@ -373,7 +373,7 @@ def _run_template(tasks: list[Task], first: dict[int, dict], ctx: Context, *, wo
 
     Returns the rows, the last template and the co-adding factor of each spectrum in it."""
     from lineshift.measure.coadd import TemplateAccumulator, log_grid
-    from lineshift.measure.template_engine import TemplateState
+    from lineshift.measure.template_engine import TemplateState, template_smoothing
 
     rows = dict(first)
     bands = np.zeros((0, 2)) if ctx.settings.telluric_bands is False else read_telluric_bands(
@@ -393,11 +393,14 @@ def _run_template(tasks: list[Task], first: dict[int, dict], ctx: Context, *, wo
         lo = min(ranges[t.index][0] * factor[t.index] for t in use)
         hi = max(ranges[t.index][1] * factor[t.index] for t in use)
         steps = [ranges[t.index][2] for t in use]
-        acc = TemplateAccumulator(log_grid(lo * (1 - 1e-4), hi * (1 + 1e-4), np.median(steps) / 2), bands=bands)
+        acc = TemplateAccumulator(log_grid(lo * (1 - 1e-4), hi * (1 + 1e-4), np.median(steps) / 2), bands=bands,
+                                  per_order=True)
         for t in use:
             acc.add(prepare_spectrum(load_spectrum(t.path, medium=ctx.settings.medium),
                                      degree=ctx.settings.continuum_degree), factor[t.index])
-        state = TemplateState.from_accumulator(acc)
+        fwhm = np.array([first[t.index].get("fwhm") or np.nan for t in use], float)   # mask-pass CCF widths
+        fwhm = fwhm[np.isfinite(fwhm)]
+        state = TemplateState.from_accumulator(acc, template_smoothing(float(np.median(fwhm)) if fwhm.size else 0.0))
         new = _fit_against(use, first, {t.index: rows[t.index]["rv"] for t in use}, ctx, state, factor,
                            workers=workers, scheduler=scheduler)
         moved = [abs(new[i]["rv"] - rows[i]["rv"]) / new[i]["rv_err"] for i in new
