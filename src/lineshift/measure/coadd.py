@@ -24,7 +24,7 @@ Shared by ``lineshift mask`` (line finding, one template) and the template-match
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 from scipy.ndimage import spline_filter1d
@@ -32,7 +32,7 @@ from scipy.ndimage import spline_filter1d
 from lineshift.measure.prepare import PreparedOrder
 from lineshift.model import C_MS
 
-__all__ = ["Template", "TemplateAccumulator", "bspline", "log_grid"]
+__all__ = ["Template", "TemplateAccumulator", "bspline", "log_grid", "on_common_continuum"]
 
 _BAD_REACH = 4  # pixels around a bad one that the spline prefilter's tail reaches (decays 0.27x per pixel)
 
@@ -99,6 +99,36 @@ class Template:
     def correlation_factor(self) -> float:
         """Error inflation for fits that treat the oversampled template points as independent."""
         return float(np.sqrt(max(self.pixel_step / self.step, 1.0))) if self.pixel_step else 1.0
+
+
+def on_common_continuum(orders: list[PreparedOrder], reference: dict[int, np.ndarray] | None) -> list[PreparedOrder]:
+    """The orders normalised by a continuum common to every spectrum instead of each one's own.
+
+    Each spectrum's continuum fit carries its own noise, largest in relative terms where the counts
+    are low (the ends of an order under a steep blaze).  Between two spectra each normalised by its
+    own fit, that noise is a ratio of polynomials that the template fit's low-order polynomial
+    cannot absorb, and broad lines (a fast rotator) turn it into velocity.  Dividing every spectrum
+    of an order by the same ``reference[index]`` (counts per pixel, e.g. one spectrum's continuum)
+    leaves between spectra only their true ratio of counts, which is smooth.  Flux and variance are
+    scaled by ``r = continuum / reference``, the photon weight by ``1 / r^2``.  Orders without a
+    reference of their length (or without a continuum) are returned as they are.
+    """
+    if not reference:
+        return orders
+    out = []
+    for o in orders:
+        ref = reference.get(int(o.index))
+        if ref is None or o.continuum is None or ref.size != o.flux.size:
+            out.append(o)
+            continue
+        with np.errstate(invalid="ignore", divide="ignore"):
+            r = o.continuum / ref
+        if not np.all(np.isfinite(r[o.good]) & (r[o.good] > 0)):
+            out.append(o)
+            continue
+        r = np.where(o.good, r, 1.0)
+        out.append(replace(o, flux=o.flux * r, var=o.var * r * r, weight=o.weight / (r * r), continuum=ref))
+    return out
 
 
 def log_grid(lo: float, hi: float, step: float) -> np.ndarray:

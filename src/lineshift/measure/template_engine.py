@@ -38,7 +38,7 @@ import numpy as np
 from scipy.ndimage import gaussian_filter1d, spline_filter1d
 
 from lineshift.errors import MeasurementError
-from lineshift.measure.coadd import TemplateAccumulator, bspline
+from lineshift.measure.coadd import TemplateAccumulator, bspline, on_common_continuum
 from lineshift.measure.prepare import PreparedOrder
 from lineshift.model import C_MS
 
@@ -93,6 +93,7 @@ class TemplateState:
     segments: np.ndarray | None = None
     smooth: float = 0.0        # Gaussian sigma (m/s) the template is smoothed with before the fit
     pixel_step: float = 0.0    # median detector pixel width of the inputs in velocity (m/s)
+    continua: dict | None = None   # order index -> common continuum (counts) the inputs were normalised by
 
     def __post_init__(self):
         if self.segments is None:
@@ -100,7 +101,8 @@ class TemplateState:
         self.segments = np.asarray(self.segments, dtype=np.int64).reshape(-1, 4)
 
     @classmethod
-    def from_accumulator(cls, acc: TemplateAccumulator, smooth: float = 0.0) -> TemplateState:
+    def from_accumulator(cls, acc: TemplateAccumulator, smooth: float = 0.0,
+                         continua: dict | None = None) -> TemplateState:
         rows, off = [], 0
         keys = sorted(acc.segments)
         for k in keys:
@@ -111,20 +113,21 @@ class TemplateState:
         return cls(float(acc.lng[0]), float(acc.lng[1] - acc.lng[0]),
                    *(np.concatenate([getattr(g, name) for g in segs]) for name in ("sw", "swf", "sw2v", "flagged")),
                    acc.bands, acc.edge_margin, acc.n_spectra, np.array(rows, dtype=np.int64), smooth,
-                   float(np.median(acc._pixel_steps)) if acc._pixel_steps else 0.0)
+                   float(np.median(acc._pixel_steps)) if acc._pixel_steps else 0.0, continua)
 
     def to_arrays(self) -> dict[str, np.ndarray]:
         """Plain arrays (for the results store): the inverse of :meth:`from_arrays`."""
         return {"lng0": np.array(self.lng0), "dlng": np.array(self.dlng), "sw": self.sw, "swf": self.swf,
                 "sw2v": self.sw2v, "flagged": self.flagged, "bands": np.asarray(self.bands, float),
                 "edge_margin": np.array(self.edge_margin), "n_spectra": np.array(self.n_spectra),
-                "segments": self.segments, "smooth": np.array(self.smooth), "pixel_step": np.array(self.pixel_step)}
+                "segments": self.segments, "smooth": np.array(self.smooth), "pixel_step": np.array(self.pixel_step),
+                **_pack_continua(self.continua)}
 
     @classmethod
     def from_arrays(cls, a: dict[str, np.ndarray]) -> TemplateState:
         return cls(float(a["lng0"]), float(a["dlng"]), a["sw"], a["swf"], a["sw2v"], a["flagged"].astype(bool),
                    a["bands"].reshape(-1, 2), int(a["edge_margin"]), int(a["n_spectra"]), a.get("segments"),
-                   float(a.get("smooth", 0.0)), float(a.get("pixel_step", 0.0)))
+                   float(a.get("smooth", 0.0)), float(a.get("pixel_step", 0.0)), _unpack_continua(a))
 
     def segment(self, index: int) -> tuple[int, int, int] | None:
         """(first grid index, offset in the arrays, length) of the template for order ``index``."""
@@ -201,6 +204,23 @@ class TemplateState:
         return coef
 
 
+def _pack_continua(continua: dict | None) -> dict[str, np.ndarray]:
+    if not continua:
+        return {}
+    keys = sorted(continua)
+    return {"continua_index": np.array(keys, dtype=np.int64),
+            "continua_length": np.array([continua[k].size for k in keys], dtype=np.int64),
+            "continua": np.concatenate([continua[k] for k in keys])}
+
+
+def _unpack_continua(a: dict[str, np.ndarray]) -> dict | None:
+    if "continua" not in a:
+        return None
+    ends = np.cumsum(a["continua_length"])
+    return {int(k): a["continua"][e - n:e] for k, n, e in zip(a["continua_index"], a["continua_length"], ends,
+                                                              strict=True)}
+
+
 @dataclass(frozen=True)
 class TemplateResult:
     rv: float
@@ -221,6 +241,7 @@ def measure_template(orders: list[PreparedOrder], state: TemplateState, settings
     """
     if not orders:
         raise MeasurementError("no usable order (too few valid pixels)", path=path, status="no valid pixels")
+    orders = on_common_continuum(orders, state.continua)
     flux_t, var_t, ok_t = state.smoothed(*state.without(orders, factor))
     coef = state.prefilter(flux_t)
     ok_t = ok_t & np.isfinite(var_t)
