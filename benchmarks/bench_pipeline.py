@@ -77,7 +77,7 @@ def _case(density: float, tmp: str, repeats: int, batch: int) -> dict:
     rng = np.random.default_rng(11)
     factor = (1 + berv / 299792458.0) / (1 + exp.truth["rv_true"] / 299792458.0)
     w = ins.wavelengths()
-    acc = TemplateAccumulator(log_grid(w.min() * 0.999, w.max() * 1.001, ins.pixel_velocity / 2))
+    acc = TemplateAccumulator(log_grid(w.min() * 0.999, w.max() * 1.001, ins.pixel_velocity / 2), per_order=True)
     copies = []
     for _ in range(8):
         flux = exp.flux + rng.normal(size=exp.flux.shape) * np.sqrt(np.maximum(exp.flux, 1.0))

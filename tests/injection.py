@@ -71,7 +71,7 @@ def recover_template(star: sim.Star, instrument: sim.Instrument, *, n_velocities
     spectrum fitted against the template without itself, iterated.
     """
     from lineshift.measure.coadd import TemplateAccumulator, log_grid
-    from lineshift.measure.template_engine import TemplateSettings, TemplateState, measure_template
+    from lineshift.measure.template_engine import TemplateSettings, TemplateState, measure_template, template_smoothing
     from lineshift.model import C_MS
 
     rng = np.random.default_rng(seed)
@@ -101,10 +101,10 @@ def recover_template(star: sim.Star, instrument: sim.Instrument, *, n_velocities
     step = instrument.pixel_velocity / 2
     for _ in range(iterations):
         factors = 1 / (1 + v / C_MS)   # topocentric velocities: lambda_template = lambda_obs / (1 + v/c)
-        acc = TemplateAccumulator(log_grid(lo * factors.min(), hi * factors.max(), step))
+        acc = TemplateAccumulator(log_grid(lo * factors.min(), hi * factors.max(), step), per_order=True)
         for p, f in zip(prepared, factors, strict=True):
             acc.add(p, f)
-        state = TemplateState.from_accumulator(acc)
+        state = TemplateState.from_accumulator(acc, template_smoothing(float(np.median([r.fwhm for r in mres]))))
         tres = [measure_template(p, state, TemplateSettings(), delta0=-np.log(f), factor=f)
                 for p, f in zip(prepared, factors, strict=True)]
         v = np.array([r.rv for r in tres])

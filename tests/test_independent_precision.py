@@ -50,6 +50,7 @@ def _run(tmp, setup, layout, n, seed, methods=("mask", "template")):
         rows = measure_files(paths, _mask(), MeasureSettings(method=m))
         assert all(r["status"] == "ok" for r in rows)
         out[m] = (np.array([r["rv"] for r in rows]), np.array([r["rv_err"] for r in rows]))
+        out[m + " orders"] = [r.get("_orders", []) for r in rows]
     return out
 
 
@@ -69,6 +70,15 @@ def _ratio_ok(res, m, target):
 def _pull(res, m):
     rv, err = res[m]
     return float(np.std((rv - rv.mean()) / err, ddof=1))
+
+
+def _pull_paired(res, m):
+    """Pull std with the efficient estimator as control variate: the true scatter of rv is
+    sqrt(bound^2 + var(rv - rv_eff)) (the two terms are uncorrelated, see the module docstring), so
+    only the small var(rv - rv_eff) is estimated from the draws; divided by the rms quoted error."""
+    rv, err = res[m]
+    d = rv - res["eff"]
+    return float(np.sqrt(res["bound"] ** 2 + np.var(d, ddof=1)) / np.sqrt(np.mean(err**2)))
 
 
 def _tol(n):
@@ -158,10 +168,33 @@ def test_echelle_template_precision(echelle):
     assert abs(_pull(echelle, "template") - 1.0) <= _tol(echelle["n"])
 
 
-@pytest.mark.xfail(strict=True, reason="template zero point +19 m/s on overlapping blazed orders "
-                   "(continuum errors of neighbouring orders mix in the co-added template)")
 def test_echelle_template_zero_point(echelle):
+    # a template per order: continuum errors of overlapping neighbour orders no longer mix (was +19 m/s)
     assert abs(echelle["template"][0].mean() - RV) < 10.0
+
+
+def test_echelle_template_orders_fit_to_the_noise(echelle):
+    # issue target: reduced chi-square 0.9-1.2 in every order (the median over the spectra: each value
+    # rests on ~2000 pixels, so its own noise is sqrt(2 / 2000) = 0.03; common practice)
+    chi2 = {}
+    for orders in echelle["template orders"]:
+        for o in orders:
+            chi2.setdefault(o["order"], []).append(o["chi2_red"])
+    assert len(chi2) == 36
+    med = np.array([np.median(v) for v in chi2.values()])
+    assert np.all((med > 0.9) & (med < 1.2)), med
+
+
+@pytest.mark.parametrize(("case", "method"), [("single", "mask"), ("single", "template"), ("echelle", "mask"),
+                                          ("echelle", "template"), ("rotator", "mask"), ("rotator", "template")])
+def test_pulls_with_the_efficient_estimator_as_control_variate(case, method, request):
+    # issue target 0.95-1.05.  The control variate leaves only var(rv - rv_eff) to the draws: its
+    # relative error 1/sqrt(2 (N - 1)) moves the pull by (ratio^2 - 1) / 2 * sqrt(2 / (N - 1));
+    # allowed: the target band plus 2.5 of those (common practice)
+    res = request.getfixturevalue(case)
+    r = _ratio(res, method)
+    sigma = (r**2 - 1) / 2 * np.sqrt(2 / (res["n"] - 1))
+    assert abs(_pull_paired(res, method) - 1.0) <= 0.05 + 2.5 * sigma
 
 
 def test_rotator_mask_scatter(rotator):
@@ -169,7 +202,10 @@ def test_rotator_mask_scatter(rotator):
     assert abs(_pull(rotator, "mask") - 1.0) <= _tol(rotator["n"])
 
 
-@pytest.mark.xfail(strict=True, reason="fast-rotator mask zero point +45 m/s, not yet traced")
+@pytest.mark.xfail(strict=True, reason="fast-rotator mask zero point +45 m/s: blends make the rotation-broadened CCF "
+                   "asymmetric (mask weights are unbroadened depths, not the lines' broadened strengths; lines "
+                   "shallower than 0.1 are not in the mask): +140 m/s on a noise-free file without blaze, whatever "
+                   "the fit window (docs/precision.md)")
 def test_rotator_mask_zero_point(rotator):
     assert abs(rotator["mask"][0].mean() - RV) < 10.0
 
@@ -181,10 +217,17 @@ def test_report_values(single, echelle, rotator, capsys):
             for m in ("mask", "template"):
                 if m in r:
                     print(name, m, r["n"], f"ratio {_ratio(r, m):.3f} pull {_pull(r, m):.3f} "
+                          f"paired pull {_pull_paired(r, m):.3f} "
                           f"zp {r[m][0].mean() - RV:+.2f} bound {r['bound']:.2f}")
 
 
-@pytest.mark.xfail(strict=True, reason="template engine on a 20 km/s rotator: order velocities scatter by ~1 km/s "
-                   "at reduced chi-square ~1; cause not yet traced")
 def test_rotator_template(rotator):
+    # every order normalised by one common continuum (spectra no longer differ by their own continuum
+    # noise) and a template smoothed by 0.15 of the line sigma (no noise-induced local minima)
     assert _ratio_ok(rotator, "template", 1.10)
+
+
+@pytest.mark.xfail(strict=True, reason="the template engine's frame is that of the mask pass's mean velocity, so it "
+                   "inherits the mask engine's fast-rotator zero point (blends; docs/precision.md)")
+def test_rotator_template_zero_point(rotator):
+    assert abs(rotator["template"][0].mean() - RV) < 10.0

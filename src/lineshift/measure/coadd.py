@@ -10,12 +10,21 @@ template keeps its own variance, the number of contributions per point, and flag
 an order edge or touched by a bad pixel, so later stages can avoid them.  Points that fall in a
 telluric band in a spectrum's own (observatory) frame get no weight from that spectrum.
 
-Shared by ``lineshift mask`` (line finding) and the template-matching engine.
+With ``per_order=True`` each order index gets a template of its own, co-added only from that same
+order of every spectrum (kept as segments of the grid).  Where echelle orders overlap, the same
+stellar lines sit in two orders whose continuum estimates differ (a steep blaze that the file does
+not give leaves each order's normalisation wrong by a smooth, order-specific amount, the same in
+every spectrum); a template mixing both orders there carries the mean of two continuum errors that
+no order's own smooth polynomial can follow, so the fit of either order against it is biased.  Per
+order, spectrum and template share their order's continuum error, and the multiplicative
+polynomial of the template fit absorbs it.
+
+Shared by ``lineshift mask`` (line finding, one template) and the template-matching engine (per order).
 """
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 from scipy.ndimage import spline_filter1d
@@ -23,7 +32,7 @@ from scipy.ndimage import spline_filter1d
 from lineshift.measure.prepare import PreparedOrder
 from lineshift.model import C_MS
 
-__all__ = ["Template", "TemplateAccumulator", "bspline", "log_grid"]
+__all__ = ["Template", "TemplateAccumulator", "bspline", "log_grid", "on_common_continuum"]
 
 _BAD_REACH = 4  # pixels around a bad one that the spline prefilter's tail reaches (decays 0.27x per pixel)
 
@@ -92,35 +101,119 @@ class Template:
         return float(np.sqrt(max(self.pixel_step / self.step, 1.0))) if self.pixel_step else 1.0
 
 
+def on_common_continuum(orders: list[PreparedOrder], reference: dict[int, np.ndarray] | None) -> list[PreparedOrder]:
+    """The orders normalised by a continuum common to every spectrum instead of each one's own.
+
+    Each spectrum's continuum fit carries its own noise, largest in relative terms where the counts
+    are low (the ends of an order under a steep blaze).  Between two spectra each normalised by its
+    own fit, that noise is a ratio of polynomials that the template fit's low-order polynomial
+    cannot absorb, and broad lines (a fast rotator) turn it into velocity.  Dividing every spectrum
+    of an order by the same ``reference[index]`` (counts per pixel, e.g. one spectrum's continuum)
+    leaves between spectra only their true ratio of counts, which is smooth.  Flux and variance are
+    scaled by ``r = continuum / reference``, the photon weight by ``1 / r^2``.  Orders without a
+    reference of their length (or without a continuum) are returned as they are.
+    """
+    if not reference:
+        return orders
+    out = []
+    for o in orders:
+        ref = reference.get(int(o.index))
+        if ref is None or o.continuum is None or ref.size != o.flux.size:
+            out.append(o)
+            continue
+        with np.errstate(invalid="ignore", divide="ignore"):
+            r = o.continuum / ref
+        if not np.all(np.isfinite(r[o.good]) & (r[o.good] > 0)):
+            out.append(o)
+            continue
+        r = np.where(o.good, r, 1.0)
+        out.append(replace(o, flux=o.flux * r, var=o.var * r * r, weight=o.weight / (r * r), continuum=ref))
+    return out
+
+
 def log_grid(lo: float, hi: float, step: float) -> np.ndarray:
     """Wavelengths from ``lo`` to ``hi`` (Angstrom) uniform in ln(lambda) with ``step`` m/s."""
     du = np.log1p(step / C_MS)
     return np.exp(np.arange(np.log(lo), np.log(hi), du))
 
 
+class _Segment:
+    """Sums over a contiguous part of the grid, from ``start``; grows to take what is added."""
+
+    def __init__(self, start: int, stop: int):
+        self.start = start
+        n = stop - start
+        self.sw, self.swf, self.sw2v = np.zeros(n), np.zeros(n), np.zeros(n)
+        self.count = np.zeros(n, dtype=np.int64)
+        self.flagged = np.zeros(n, dtype=bool)
+
+    def cover(self, i0: int, i1: int) -> None:
+        lo = min(i0, self.start) - self.start
+        hi = max(i1, self.start + self.sw.size) - self.start
+        if lo < 0 or hi > self.sw.size:
+            pad = (-lo, hi - self.sw.size)
+            for name in ("sw", "swf", "sw2v", "count", "flagged"):
+                setattr(self, name, np.pad(getattr(self, name), pad))
+            self.start += lo
+
+
 class TemplateAccumulator:
     """Accumulates orders onto a fixed grid; :meth:`result` gives the :class:`Template`.
 
-    Streaming: one spectrum at a time is enough (memory is that of the grid).
+    Streaming: one spectrum at a time is enough (memory is that of the grid).  With ``per_order``
+    the sums are kept per order index (:attr:`segments`, each covering only that order's part of the
+    grid) so that each order has a template of its own; :meth:`result` still gives their co-add.
     """
 
-    def __init__(self, grid: np.ndarray, *, edge_margin: int = 8, bands: np.ndarray | None = None):
+    def __init__(self, grid: np.ndarray, *, edge_margin: int = 8, bands: np.ndarray | None = None,
+                 per_order: bool = False):
         self.grid = grid
         self.lng = np.log(grid)
         self.step = float(C_MS * np.expm1(self.lng[1] - self.lng[0]))
-        self.sw = np.zeros(grid.size)
-        self.swf = np.zeros(grid.size)
-        self.sw2v = np.zeros(grid.size)
-        self.count = np.zeros(grid.size, dtype=np.int64)
-        self.flagged = np.zeros(grid.size, dtype=bool)
+        self.per_order = per_order
+        self.segments: dict[int, _Segment] = {}
+        if not per_order:
+            self.segments[-1] = _Segment(0, grid.size)
         self.edge_margin = edge_margin
         self.bands = bands if bands is not None else np.zeros((0, 2))
         self.n_spectra = 0
         self._pixel_steps: list[float] = []
 
+    def _sums(self) -> _Segment:
+        """All segments summed onto the whole grid."""
+        if not self.per_order:
+            return self.segments[-1]
+        total = _Segment(0, self.grid.size)
+        for seg in self.segments.values():
+            sl = slice(seg.start, seg.start + seg.sw.size)
+            for name in ("sw", "swf", "sw2v", "count"):
+                getattr(total, name)[sl] += getattr(seg, name)
+            total.flagged[sl] |= seg.flagged
+        return total
+
+    @property
+    def sw(self) -> np.ndarray:
+        return self._sums().sw
+
+    @property
+    def swf(self) -> np.ndarray:
+        return self._sums().swf
+
+    @property
+    def sw2v(self) -> np.ndarray:
+        return self._sums().sw2v
+
+    @property
+    def count(self) -> np.ndarray:
+        return self._sums().count
+
+    @property
+    def flagged(self) -> np.ndarray:
+        return self._sums().flagged
+
     def contributions(self, orders: list[PreparedOrder], factor: float):
-        """Per order: (slice of the grid, weight, weight x flux, weight^2 x variance, flags) that
-        :meth:`add` would accumulate for this spectrum.  Used to remove a spectrum from a template."""
+        """Per order: (order index, slice of the grid, weight, weight x flux, weight^2 x variance, flags)
+        that :meth:`add` would accumulate for this spectrum.  Used to remove a spectrum from a template."""
         lnf = np.log(factor)
         for o in orders:
             u = np.log(o.wave) + lnf
@@ -154,24 +247,33 @@ class TemplateAccumulator:
                         inband |= (lam_obs >= lo) & (lam_obs <= hi)
                     w = np.where(inband, 0.0, w)
             near_edge = (j < self.edge_margin) | (j > o.flux.size - 2 - self.edge_margin)
-            yield slice(i0, i1), w, w * f, w * w * v, near_edge | ~ok
+            yield o.index, slice(i0, i1), w, w * f, w * w * v, near_edge | ~ok
 
     def add(self, orders: list[PreparedOrder], factor: float) -> None:
         """Add one spectrum's orders, shifted by ``lambda_rest = lambda_obs * factor``."""
         self.n_spectra += 1
         for o in orders:
             self._pixel_steps.append(float(np.median(C_MS * np.diff(o.wave) / o.wave[1:])))
-        for sl, w, wf, w2v, flags in self.contributions(orders, factor):
-            self.sw[sl] += w
-            self.swf[sl] += wf
-            self.sw2v[sl] += w2v
-            self.count[sl] += (w > 0).astype(np.int64)
-            self.flagged[sl] |= flags
+        for index, sl, w, wf, w2v, flags in self.contributions(orders, factor):
+            if self.per_order:
+                seg = self.segments.get(index)
+                if seg is None:
+                    seg = self.segments[index] = _Segment(sl.start, sl.stop)
+                seg.cover(sl.start, sl.stop)
+                sl = slice(sl.start - seg.start, sl.stop - seg.start)
+            else:
+                seg = self.segments[-1]
+            seg.sw[sl] += w
+            seg.swf[sl] += wf
+            seg.sw2v[sl] += w2v
+            seg.count[sl] += (w > 0).astype(np.int64)
+            seg.flagged[sl] |= flags
 
     def result(self) -> Template:
+        s = self._sums()
         with np.errstate(invalid="ignore", divide="ignore"):
-            flux = np.where(self.sw > 0, self.swf / self.sw, np.nan)
-            var = np.where(self.sw > 0, self.sw2v / self.sw**2, np.nan)
+            flux = np.where(s.sw > 0, s.swf / s.sw, np.nan)
+            var = np.where(s.sw > 0, s.sw2v / s.sw**2, np.nan)
         pixel = float(np.median(self._pixel_steps)) if self._pixel_steps else 0.0
-        return Template(self.grid, flux, var, self.count.copy(), self.flagged.copy(), self.step, self.n_spectra,
+        return Template(self.grid, flux, var, s.count.copy(), s.flagged.copy(), self.step, self.n_spectra,
                         pixel)

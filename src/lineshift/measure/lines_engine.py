@@ -49,11 +49,11 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.ndimage import spline_filter1d
 
 from lineshift.errors import MeasurementError
-from lineshift.measure.coadd import bspline
+from lineshift.measure.coadd import bspline, on_common_continuum
 from lineshift.measure.prepare import PreparedOrder
+from lineshift.measure.tellurics import drop_bands
 from lineshift.model import C_MS, LineMask
 
 __all__ = ["LinesResult", "LinesSettings", "combine_lines", "measure_lines"]
@@ -220,11 +220,12 @@ def measure_lines(orders: list[PreparedOrder], state, mask: LineMask, settings: 
     s = settings or LinesSettings()
     if not orders:
         raise MeasurementError("no usable order (too few valid pixels)", path=path, status="no valid pixels")
-    flux_t, var_t, ok_t = state.without(orders, factor)
-    coef = spline_filter1d(flux_t, order=3, mode="mirror")
+    orders = on_common_continuum(orders, state.continua)
+    flux_t, var_t, ok_t = state.smoothed(*state.without(orders, factor))
+    orders = [drop_bands(o, state.bands) for o in orders]   # telluric pixels, in this spectrum's frame
+    coef = state.prefilter(flux_t)
     ok_t = ok_t & np.isfinite(var_t)
     var_t = np.where(ok_t, var_t, 0.0)
-    n_t = coef.size
     lnl = np.log(mask.wavelength)
     species = mask.species if mask.species else ("",) * len(mask)
     half = np.log1p(s.half_window / C_MS)
@@ -240,9 +241,13 @@ def measure_lines(orders: list[PreparedOrder], state, mask: LineMask, settings: 
         for o in orders:
             n = o.flux.size
             u = np.log(o.wave)
-            xi = (u - delta - state.lng0) / state.dlng
-            inside = (xi > 2) & (xi < n_t - 3)
-            xi = np.clip(xi, 2, n_t - 3)
+            seg = state.segment(o.index)   # (first grid index, offset in the arrays, length) of its template
+            if seg is None:
+                continue
+            start, off_t, n_seg = seg
+            xi = (u - delta - state.lng0) / state.dlng + (off_t - start)
+            inside = (xi > off_t + 2) & (xi < off_t + n_seg - 3)
+            xi = np.clip(xi, off_t + 2, off_t + n_seg - 3)
             T, dT = bspline(coef, xi)
             i0 = np.floor(xi).astype(np.intp)
             fr = xi - i0
@@ -299,7 +304,12 @@ def measure_lines(orders: list[PreparedOrder], state, mask: LineMask, settings: 
     v_cur, off, off_err, f, S, p, dv, ev, has, sgr, sgg, srr, npx, per_order = combined
     pout = np.full(len(mask), np.nan)
     pout[has] = p
-    depth = 1.0 - bspline(coef, np.clip((lnl - state.lng0) / state.dlng, 2, n_t - 3))[0]
+    depth = np.full(len(mask), np.nan)   # from the first template segment that covers the line
+    g = (lnl - state.lng0) / state.dlng
+    for _, start, off_t, n_seg in state.segments:
+        cover = np.isnan(depth) & (g > start + 2) & (g < start + n_seg - 3)
+        if cover.any():
+            depth[cover] = 1.0 - bspline(coef, g[cover] - start + off_t)[0]
     lines = []
     for k in np.flatnonzero(npx > 0):
         chi2 = (srr[k] - sgr[k] ** 2 / sgg[k]) / max(npx[k] - 1, 1) if has[k] else np.nan

@@ -45,6 +45,7 @@ class PreparedOrder:
     weight : ndarray, photon weight ``q`` per pixel, 0 at bad pixels
     good : ndarray of bool, usable pixels
     index : int, order index in the file
+    continuum : ndarray or None, the continuum ``flux`` was divided by (counts; every pixel)
     """
 
     wave: np.ndarray
@@ -54,6 +55,7 @@ class PreparedOrder:
     weight: np.ndarray
     good: np.ndarray
     index: int
+    continuum: np.ndarray | None = None
 
 
 def pixel_edges(wave: np.ndarray) -> np.ndarray:
@@ -191,7 +193,8 @@ def _prepare_block(orders: list[Order], degree: int) -> list[PreparedOrder | Non
     floor = 0.25 * mv
     q = np.where(good, c**2 / np.maximum(vcont, floor[:, None]), 0.0)
     usable = (good.sum(axis=1) >= max(32, 4 * (degree + 1))) & (used.sum(axis=1) * stride >= 10)
-    return [PreparedOrder(o.wave, pixel_edges(o.wave), fn[k], vn[k], q[k], good[k], o.index) if usable[k] else None
+    return [PreparedOrder(o.wave, pixel_edges(o.wave), fn[k], vn[k], q[k], good[k], o.index, cont[k]) if usable[k]
+            else None
             for k, o in enumerate(orders)]
 
 

@@ -298,7 +298,7 @@ class _CleanAccumulator(TemplateAccumulator):
         for o in orders:
             self._pixel_steps.append(float(np.median(C_MS * np.diff(o.wave) / o.wave[1:])))
         fw, fwf, fw2v, fcount = self._fallback
-        for sl, w, wf, w2v, flags in self.contributions(orders, factor):
+        for _, sl, w, wf, w2v, flags in self.contributions(orders, factor):
             keep = ~flags
             self.sw[sl] += w * keep
             self.swf[sl] += wf * keep

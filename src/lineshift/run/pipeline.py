@@ -450,8 +450,8 @@ def _run_template(tasks: list[Task], first: dict[int, dict], ctx: Context, *, wo
     the template without itself, repeat until the velocities move by less than a tenth of their errors.
 
     Returns the rows, the last template and the co-adding factor of each spectrum in it."""
-    from lineshift.measure.coadd import TemplateAccumulator, log_grid
-    from lineshift.measure.template_engine import TemplateState
+    from lineshift.measure.coadd import TemplateAccumulator, log_grid, on_common_continuum
+    from lineshift.measure.template_engine import TemplateState, template_smoothing
 
     rows = dict(first)
     bands = np.zeros((0, 2)) if ctx.settings.telluric_bands is False else read_telluric_bands(
@@ -464,20 +464,29 @@ def _run_template(tasks: list[Task], first: dict[int, dict], ctx: Context, *, wo
             a, b = sp.wavelength_range
             step = float(np.median(np.concatenate([C_MS * np.diff(o.wave) / o.wave[1:] for o in sp.orders])))
             ranges[t.index] = (a, b, step)
+    continua = None   # every spectrum of an order is normalised by one spectrum's continuum (coadd.py)
     for _ in range(max_iter):
         use = [t for t in tasks if rows[t.index].get("status") == "ok" and t.index in ranges]
         if len(use) < 2:
             raise MeasurementError("the template engine needs at least two spectra with a first-pass velocity")
+        if continua is None:
+            continua = {o.index: o.continuum for o in prepare_spectrum(
+                load_spectrum(use[0].path, medium=ctx.settings.medium), degree=ctx.settings.continuum_degree)}
         factor = {t.index: (1 + t.berv / C_MS) / (1 + rows[t.index]["rv"] / C_MS) for t in use}
         lo = min(ranges[t.index][0] * factor[t.index] for t in use)
         hi = max(ranges[t.index][1] * factor[t.index] for t in use)
         steps = [ranges[t.index][2] for t in use]
-        acc = TemplateAccumulator(log_grid(lo * (1 - 1e-4), hi * (1 + 1e-4), np.median(steps) / 2), bands=bands)
+        acc = TemplateAccumulator(log_grid(lo * (1 - 1e-4), hi * (1 + 1e-4), np.median(steps) / 2), bands=bands,
+                                  per_order=True)
         for t in use:
-            acc.add(prepare_spectrum(load_spectrum(t.path, medium=ctx.settings.medium,
-                                   flux_time_key=ctx.settings.flux_time_key),
-                                     degree=ctx.settings.continuum_degree), factor[t.index])
-        state = TemplateState.from_accumulator(acc)
+            acc.add(on_common_continuum(prepare_spectrum(load_spectrum(t.path, medium=ctx.settings.medium,
+                                                                        flux_time_key=ctx.settings.flux_time_key),
+                                                         degree=ctx.settings.continuum_degree), continua),
+                    factor[t.index])
+        fwhm = np.array([first[t.index].get("fwhm") or np.nan for t in use], float)   # mask-pass CCF widths
+        fwhm = fwhm[np.isfinite(fwhm)]
+        state = TemplateState.from_accumulator(acc, template_smoothing(float(np.median(fwhm)) if fwhm.size else 0.0),
+                                               continua)
         new = _fit_against(use, first, {t.index: rows[t.index]["rv"] for t in use}, ctx, state, factor,
                            workers=workers, scheduler=scheduler)
         moved = [abs(new[i]["rv"] - rows[i]["rv"]) / new[i]["rv_err"] for i in new
