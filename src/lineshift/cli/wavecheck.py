@@ -93,6 +93,10 @@ def run(args) -> int:
                 bervs[p] = b.berv
                 bjds[p] = b.bjd_tdb
     all_lines, all_orders, drift_rows, failures = [], [], [], 0
+    if args.plots:
+        from lineshift.cli.measure import unique_plot_names
+
+        plot_stems = unique_plot_names(paths)  # unique per input, undecodable bytes as \xNN
     for path in paths:
         try:
             sp = load_spectrum(path, medium=args.medium)
@@ -126,11 +130,14 @@ def run(args) -> int:
                   f"{summ['rms']:.2f} m/s; "
                   f"orders off zero and off the global offset: {text}", file=sys.stderr)
         if args.plots:
-            from lineshift.plots.figures import _stem, plot_order_offsets, plot_residuals
+            from lineshift.plots.figures import plot_order_offsets, plot_residuals
+            from lineshift.run.pipeline import printable
 
             os.makedirs(args.plots, exist_ok=True)
-            plot_residuals(lines, os.path.join(args.plots, f"{_stem(path)}_residuals.png"), os.path.basename(path))
-            plot_order_offsets(orders, os.path.join(args.plots, f"{_stem(path)}_orders.png"), os.path.basename(path))
+            stem = plot_stems[printable(path)]
+            title = printable(os.path.basename(path))
+            plot_residuals(lines, os.path.join(args.plots, f"{stem}_residuals.png"), title)
+            plot_order_offsets(orders, os.path.join(args.plots, f"{stem}_orders.png"), title)
     meta = {"SOFTWARE": f"lineshift {__version__}", "RESIDUAL": "c (lambda_measured - lambda_lab) / lambda_lab, m/s",
             "FRAME": ("barycentric" if args.barycentric
                       else "the file's wavelength solution (no barycentric correction)"),
@@ -147,7 +154,7 @@ def run(args) -> int:
     if args.drift:
         drift = pd.DataFrame(drift_rows, columns=DRIFT_COLUMNS).sort_values("mjd_mid", kind="stable")
         rate = None
-        use = drift[np.isfinite(drift.mjd_mid) & np.isfinite(drift.offset_err)]
+        use = drift[np.isfinite(drift.mjd_mid.astype(float)) & np.isfinite(drift.offset_err.astype(float))]
         if len(use) >= 3 and np.ptp(use.mjd_mid) > 0:
             rate = fit_drift(use.mjd_mid.to_numpy(), use.offset.to_numpy(), use.offset_err.to_numpy())
             meta["DRIFT"] = f"{rate[0]:+.3f} +- {rate[1]:.3f} m/s per hour"

@@ -218,12 +218,17 @@ def _load(path: str, *, medium: str | None, arrays: bool):
             raise
         except Exception as exc:  # any surprise inside a damaged header is still a format error
             raise SpectrumFormatError(f"could not be interpreted ({_short(exc)})", path=path) from None
+    if raw[:2] in (b"\xff\xfe", b"\xfe\xff"):
+        raise SpectrumFormatError("is UTF-16 text; text tables are read as UTF-8 (or ASCII): convert it",
+                                  path=path, status="not a spectrum")
+    if b"\x00" in raw[:65536]:
+        raise SpectrumFormatError("is neither FITS nor a text table", path=path)
     try:
-        if b"\x00" in raw[:65536]:
-            raise UnicodeDecodeError("utf-8", raw[:1], 0, 1, "binary content")
         text = raw.decode("utf-8")
-    except UnicodeDecodeError:
-        raise SpectrumFormatError("is neither FITS nor a text table", path=path) from None
+    except UnicodeDecodeError as exc:
+        raise SpectrumFormatError(f"is neither FITS nor UTF-8 text (byte 0x{raw[exc.start]:02x} at offset "
+                                  f"{exc.start}); text tables are read as UTF-8 (or ASCII)",
+                                  path=path) from None
     try:
         return _load_text(text, path, medium=medium, arrays=arrays)
     except LineshiftError:
@@ -390,6 +395,9 @@ def _load_wcs_1d(hdul, hdu, primary, path: str, *, medium: str | None, arrays: b
     get = _header_getter(hdu.header, primary)
     notes: list[str] = []
     shape = [int(hdu.header.get(f"NAXIS{k}", 0)) for k in range(1, int(hdu.header["NAXIS"]) + 1)]
+    if shape[0] < 2 and all(n == 1 for n in shape[1:]):
+        raise SpectrumFormatError(f"image holds {shape[0]} pixel(s) along the dispersion axis; a spectrum "
+                                  "needs at least 2", path=path, status="no valid pixels")
     if shape[0] < 2 or any(n != 1 for n in shape[1:]):
         raise SpectrumFormatError(f"image with CTYPE1 has shape {tuple(shape[::-1])}, expected 1-D along axis 1",
                                   path=path)
