@@ -53,7 +53,7 @@ def run(args) -> int:
     from lineshift.calib.wavecheck import WavecheckSettings, check_spectrum, file_summary, fit_drift
     from lineshift.io.linelists import read_lab_lines
     from lineshift.io.loaders import load_spectrum
-    from lineshift.io.table import table_format, write_frame
+    from lineshift.io.table import printable, table_format, write_frame
     from lineshift.run.config import load_config
     from lineshift.run.pipeline import expand_inputs
 
@@ -112,10 +112,11 @@ def run(args) -> int:
             failures += 1
             print(f"lineshift: {path}: no line of {args.lines} falls on the spectrum", file=sys.stderr)
             continue
+        lines, orders = _printable_rows(lines), _printable_rows(orders)  # names of any bytes, as \xNN
         all_lines += lines
         all_orders += orders
         summ = file_summary(orders, settings)
-        drift_rows.append({"file": path, "bjd_tdb": bjds.get(path, np.nan),
+        drift_rows.append({"file": printable(path), "bjd_tdb": bjds.get(path, np.nan),
                            "mjd_mid": sp.obs.mjd_mid if sp.obs.mjd_mid is not None else np.nan,
                            "time_scale": sp.obs.time_scale, "offset": summ["offset"],
                            "offset_err": summ["offset_err"], "rms": summ["rms"], "n_orders": summ["n_orders"],
@@ -131,7 +132,6 @@ def run(args) -> int:
                   f"orders off zero and off the global offset: {text}", file=sys.stderr)
         if args.plots:
             from lineshift.plots.figures import plot_order_offsets, plot_residuals
-            from lineshift.run.pipeline import printable
 
             os.makedirs(args.plots, exist_ok=True)
             stem = plot_stems[printable(path)]
@@ -167,3 +167,9 @@ def run(args) -> int:
 
             plot_drift(use.to_dict("records"), rate, os.path.join(args.plots, "drift.png"))
     return 1 if failures else 0
+
+
+def _printable_rows(rows: list[dict]) -> list[dict]:
+    from lineshift.io.table import printable
+
+    return [{k: printable(v) if isinstance(v, str) else v for k, v in r.items()} for r in rows]

@@ -32,7 +32,7 @@ from lineshift.errors import ConfigError, LineshiftError, MeasurementError, Spec
 from lineshift.io import airvac
 from lineshift.io.linelists import read_telluric_bands
 from lineshift.io.loaders import load_spectrum, read_observation
-from lineshift.io.table import COLUMNS, EXTRA_COLUMNS, SB2_COLUMNS
+from lineshift.io.table import COLUMNS, EXTRA_COLUMNS, SB2_COLUMNS, printable
 from lineshift.measure.mask_engine import SearchSettings, measure_mask
 from lineshift.measure.prepare import prepare_spectrum, reject_telluric_lines
 from lineshift.model import C_MS, LineMask, Observation
@@ -152,20 +152,6 @@ def _empty_row(path: str, obs: Observation | None, status: str, message: str, se
         row.update(mjd_mid=obs.mjd_mid, time_scale=obs.time_scale, time_source=obs.time_source,
                    layout=obs.layout, medium=obs.medium)
     return row
-
-
-def printable(text: str) -> str:
-    """``text`` with any undecodable file-name bytes (surrogate escapes) written as ``\\xNN``.
-
-    File names are bytes on POSIX; Python decodes the ones that are not UTF-8 with surrogate
-    escapes, which no table format or SQLite can encode.  This is the documented form of such a
-    name in every output.
-    """
-    try:
-        text.encode("utf-8")
-    except UnicodeEncodeError:
-        return text.encode("utf-8", "surrogateescape").decode("utf-8", "backslashreplace")
-    return text
 
 
 def _clean(row: dict) -> dict:
