@@ -178,7 +178,7 @@ def cluster_failure(row: dict) -> bool:
     The survey has already read every task's file here, so "unreadable" on a worker is the
     cluster's fault (file not shared, worker lost), not the file's: such rows are never stored.
     """
-    return row.get("status") in ("unreadable", "internal error")
+    return row.get("status") in ("unreadable", "internal error", "cluster error")
 
 
 def survey(paths: list[str], settings: MeasureSettings) -> list[Observation | LineshiftError]:
@@ -297,6 +297,20 @@ def measure_task(task: Task, ctx: Context) -> dict:
     if s.keep_ccf:
         row["_ccf"] = (res.velocity, res.ccf, res.model, res.bisector)
     return _with_activity(row, spectrum, s)
+
+
+def _lost_on_cluster(task: Task, ctx: Context, exc: BaseException) -> dict:
+    """The row of a task the Dask cluster lost (worker died, connection closed): never stored."""
+    if DEBUG:
+        raise exc
+    message = (f"{task.path}: lost on the cluster ({type(exc).__name__}: {exc}); not stored, a later run "
+               "measures it")
+    row = _empty_row(task.path, None, "cluster error", message, ctx.settings)
+    row.update(bjd_tdb=task.bjd_tdb, berv=task.berv, _error=message)
+    return _clean(row)
+
+
+measure_task.on_lost = _lost_on_cluster  # used by run/executors.py on a Dask cluster
 
 
 def _with_activity(row: dict, spectrum, s: MeasureSettings) -> dict:
@@ -578,7 +592,7 @@ def measure_files(paths: list[str], mask: LineMask, settings: MeasureSettings, *
         final = _template_rows(tasks, todo, ctx, store, stored_template, report, workers=workers,
                                scheduler=scheduler)
         for t in todo:
-            if store is not None:
+            if store is not None and not (scheduler and cluster_failure(final[t.index])):
                 store.put(t.input_hash, report.settings_hash, final[t.index])
             emit(t.index, final[t.index])
     else:
