@@ -108,3 +108,50 @@ def test_no_python_warning_text_reaches_the_user(sample_set, tmp_path):
         assert code in (0, 1), (argv[0], code, text[-2000:])
         assert not RAW.search(text), (argv[0], [x for x in text.splitlines() if RAW.search(x)][:5])
         assert "unexpected error" not in text, (argv[0], text[-2000:])
+
+
+@pytest.mark.parametrize("given_mask", [True, False])
+def test_every_hostile_kind_in_one_batch_leaves_the_good_rows_identical(sample_set, tmp_path, capfd, monkeypatch,
+                                                                         given_mask):
+    # without --mask the mask is built from the inputs: the hostile ones must not change it
+    import shutil
+
+    from lineshift.io import loaders
+
+    monkeypatch.setattr(loaders, "MAX_INPUT_BYTES", BOMB_LIMIT)
+    directory, mask, rows = sample_set
+    good1d, _ = _good_1d(sample_set)
+    clean, mixed = tmp_path / "clean", tmp_path / "mixed"
+    clean.mkdir()
+    mixed.mkdir()
+    for r in rows:
+        shutil.copy(os.path.join(directory, r["file"]), clean)
+        shutil.copy(os.path.join(directory, r["file"]), mixed)
+    expected = {}
+    for kind in KINDS:
+        path = os.fsdecode(build(kind, str(mixed), good1d))
+        expected[os.path.basename(path)] = KINDS[kind]
+    expected["link_loop_b.fits"] = KINDS["link_loop"]
+    use = ["--mask", mask] if given_mask else []
+    assert main(["measure", str(clean), *use, "-o", str(tmp_path / "clean.csv"), "-q"]) == 0
+    assert main(["measure", str(mixed), *use, "-o", str(tmp_path / "mixed.csv"), "-q"]) == 1
+    err = capfd.readouterr().err
+    assert "unexpected error" not in err and not RAW.search(err)
+    a = pd.read_csv(tmp_path / "clean.csv", comment="#", keep_default_na=False, dtype=str)
+    b = pd.read_csv(tmp_path / "mixed.csv", comment="#", keep_default_na=False, dtype=str)
+    assert len(b) == len(a) + len(expected)
+
+    def provenance(name):  # the same mask and the same telluric rejection, bad files at the front or not
+        with open(tmp_path / name) as fh:
+            return [line for line in fh if line.startswith(("# MASK", "# TELLURIC"))]
+
+    assert provenance("mixed.csv") == provenance("clean.csv") and len(provenance("clean.csv")) == 2
+    by_name = {os.path.basename(f): r for f, r in zip(b.file, b.to_dict("records"), strict=True)}
+    for name, (status, words) in expected.items():
+        name = name.replace("\udce9", "\\xe9")
+        assert by_name[name]["status"] == status and words in by_name[name]["notes"], name
+    for row in a.to_dict("records"):
+        other = by_name[os.path.basename(row["file"])]
+        for col in a.columns:
+            if col != "file":
+                assert other[col] == row[col], col  # identical text: every digit the table holds

@@ -26,6 +26,7 @@ import io
 import math
 import os
 import warnings
+import zlib
 from collections.abc import Callable
 from dataclasses import replace
 
@@ -88,7 +89,7 @@ def _read_bytes(path: str) -> bytes:
             # streamed: stop as soon as the limit is passed, never unpack a bomb in full
             with gzip.GzipFile(fileobj=io.BytesIO(raw)) as gz:
                 raw = gz.read(MAX_INPUT_BYTES + 1)
-        except (OSError, EOFError, gzip.BadGzipFile) as exc:
+        except (OSError, EOFError, gzip.BadGzipFile, zlib.error) as exc:
             raise SpectrumFormatError(f"is a damaged gzip file ({exc})", path=path) from None
         if len(raw) > MAX_INPUT_BYTES:
             raise _too_large(path, "the decompressed content")
@@ -205,7 +206,7 @@ def load_spectrum(path: str, *, medium: str | None = None) -> Spectrum:
 
 
 def _load(path: str, *, medium: str | None, arrays: bool):
-    path = os.fspath(path)
+    path = os.fsdecode(os.fspath(path))  # bytes names (any bytes) as str with surrogate escapes
     raw = _read_bytes(path)
     if _is_fits(raw):
         hdul, fits_notes = _open_fits(raw, path, read_data=arrays)
