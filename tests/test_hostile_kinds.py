@@ -82,6 +82,7 @@ def _run(argv, env):
 def test_no_python_warning_text_reaches_the_user(sample_set, tmp_path):
     good, mask = _good_1d(sample_set)
     directory = sample_set[0]
+    four = sorted(os.path.join(directory, r["file"]) for r in sample_set[2] if r["layout"] in ("multi-order", "wcs-1d"))
     hostile = tmp_path / "hostile"
     hostile.mkdir()
     for kind in KINDS:
@@ -97,6 +98,8 @@ def test_no_python_warning_text_reaches_the_user(sample_set, tmp_path):
          "--plots", f"{t}/p2"],
         ["series", f"{t}/shipped.csv", "-o", f"{t}/s.csv", "--fit-orbit", "--plots", f"{t}/p3"],
         ["series", f"{t}/mixed.csv", "-o", f"{t}/s2.csv", "--json", f"{t}/s2.json"],
+        ["measure", *four, "--mask", mask, "-o", f"{t}/four.csv"],
+        ["series", f"{t}/four.csv", "-o", f"{t}/s4.csv"],  # four points: astropy's FAP inversion once leaked
         ["report", f"{t}/shipped.csv", "-o", f"{t}/r.html"],
     ]
     assert main(["simulate", f"{t}/lamp", "--lamp", "invented", "--instrument", "demo-echelle:2", "-q"]) == 0
