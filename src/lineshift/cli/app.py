@@ -92,7 +92,10 @@ def _main(argv: list[str] | None) -> int:
         print(f"lineshift: unexpected error ({type(exc).__name__}: {exc}); rerun with --debug", file=sys.stderr)
         return 2
     finally:
-        sys.stdout, sys.stderr = streams
+        if isinstance(sys.stdout, _Printable):  # not when a broken pipe put /dev/null there
+            sys.stdout = streams[0]
+        if isinstance(sys.stderr, _Printable):
+            sys.stderr = streams[1]
         if previous is not None:
             signal.signal(signal.SIGTERM, previous)
 
