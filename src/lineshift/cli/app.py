@@ -11,6 +11,7 @@ import argparse
 import os
 import signal
 import sys
+import warnings
 
 from lineshift._version import __version__
 from lineshift.cli import inspect, mask, measure, report, series, simulate, wavecheck
@@ -64,8 +65,12 @@ def _main(argv: list[str] | None) -> int:
         parser.print_help(sys.stderr)
         return 2
     previous = _sigterm_as_interrupt()
+    streams = sys.stdout, sys.stderr
+    sys.stdout, sys.stderr = _Printable(sys.stdout), _Printable(sys.stderr)
     try:
-        return COMMANDS[args.command].run(args)
+        with warnings.catch_warnings():
+            warnings.showwarning = _one_line_warning({})
+            return COMMANDS[args.command].run(args)
     except (ConfigError, MaskError) as exc:
         print(f"lineshift: {exc}", file=sys.stderr)
         return 2
@@ -87,8 +92,43 @@ def _main(argv: list[str] | None) -> int:
         print(f"lineshift: unexpected error ({type(exc).__name__}: {exc}); rerun with --debug", file=sys.stderr)
         return 2
     finally:
+        if isinstance(sys.stdout, _Printable):  # not when a broken pipe put /dev/null there
+            sys.stdout = streams[0]
+        if isinstance(sys.stderr, _Printable):
+            sys.stderr = streams[1]
         if previous is not None:
             signal.signal(signal.SIGTERM, previous)
+
+
+class _Printable:
+    """A text stream that writes undecodable file-name bytes as ``\\xNN`` (the documented form)."""
+
+    def __init__(self, stream):
+        self._stream = stream
+
+    def write(self, text: str) -> int:
+        from lineshift.run.pipeline import printable
+
+        return self._stream.write(printable(text))
+
+    def __getattr__(self, name):
+        return getattr(self._stream, name)
+
+
+def _one_line_warning(seen: dict):
+    """A ``warnings.showwarning`` that prints each distinct message once as ``lineshift: warning: ...``.
+
+    No source line, file name or category: a warning that reaches the user is a statement about the
+    data, not about the code.
+    """
+
+    def show(message, category, filename, lineno, file=None, line=None):
+        text = str(message).strip().splitlines()[0] if str(message).strip() else category.__name__
+        if text not in seen:
+            seen[text] = True
+            print(f"lineshift: warning: {text}", file=sys.stderr)
+
+    return show
 
 
 def _sigterm_as_interrupt():

@@ -42,7 +42,12 @@ def _describe(path: str, medium) -> tuple[list[str], bool]:
         lines.append(f"range:    {lo:.3f} - {hi:.3f} A (vacuum)")
         lines.append(f"snr:      median {np.median(snr):.1f} per pixel")
     lines.append(f"medium:   {obs.medium} in the file" + (" (converted to vacuum)" if obs.medium == "air" else ""))
-    if obs.mjd_mid is not None:
+    from lineshift.calib.barycentric import check_mjd
+
+    bad_time = None if obs.mjd_mid is None else check_mjd(float(obs.mjd_mid))
+    if bad_time is not None:  # checked before astropy sees it: ERFA refuses some such dates
+        lines.append(f"time:     unusable: {bad_time}")
+    elif obs.mjd_mid is not None:
         from astropy.time import Time
 
         iso = Time(obs.mjd_mid, format="mjd", scale=obs.time_scale).isot
@@ -70,7 +75,7 @@ def _describe(path: str, medium) -> tuple[list[str], bool]:
     if error is not None:
         lines.append(f"problem:  {error.reason}")
     lines.append(f"missing:  {', '.join(obs.missing) or 'nothing'}")
-    return lines, error is None and not obs.missing
+    return lines, error is None and bad_time is None and not obs.missing
 
 
 def run(args) -> int:

@@ -53,7 +53,7 @@ def run(args) -> int:
     from lineshift.calib.wavecheck import WavecheckSettings, check_spectrum, file_summary, fit_drift
     from lineshift.io.linelists import read_lab_lines
     from lineshift.io.loaders import load_spectrum
-    from lineshift.io.table import table_format, write_frame
+    from lineshift.io.table import printable, table_format, write_frame
     from lineshift.run.config import load_config
     from lineshift.run.pipeline import expand_inputs
 
@@ -93,6 +93,10 @@ def run(args) -> int:
                 bervs[p] = b.berv
                 bjds[p] = b.bjd_tdb
     all_lines, all_orders, drift_rows, failures = [], [], [], 0
+    if args.plots:
+        from lineshift.cli.measure import unique_plot_names
+
+        plot_stems = unique_plot_names(paths)  # unique per input, undecodable bytes as \xNN
     for path in paths:
         try:
             sp = load_spectrum(path, medium=args.medium)
@@ -108,10 +112,11 @@ def run(args) -> int:
             failures += 1
             print(f"lineshift: {path}: no line of {args.lines} falls on the spectrum", file=sys.stderr)
             continue
+        lines, orders = _printable_rows(lines), _printable_rows(orders)  # names of any bytes, as \xNN
         all_lines += lines
         all_orders += orders
         summ = file_summary(orders, settings)
-        drift_rows.append({"file": path, "bjd_tdb": bjds.get(path, np.nan),
+        drift_rows.append({"file": printable(path), "bjd_tdb": bjds.get(path, np.nan),
                            "mjd_mid": sp.obs.mjd_mid if sp.obs.mjd_mid is not None else np.nan,
                            "time_scale": sp.obs.time_scale, "offset": summ["offset"],
                            "offset_err": summ["offset_err"], "rms": summ["rms"], "n_orders": summ["n_orders"],
@@ -126,11 +131,13 @@ def run(args) -> int:
                   f"{summ['rms']:.2f} m/s; "
                   f"orders off zero and off the global offset: {text}", file=sys.stderr)
         if args.plots:
-            from lineshift.plots.figures import _stem, plot_order_offsets, plot_residuals
+            from lineshift.plots.figures import plot_order_offsets, plot_residuals
 
             os.makedirs(args.plots, exist_ok=True)
-            plot_residuals(lines, os.path.join(args.plots, f"{_stem(path)}_residuals.png"), os.path.basename(path))
-            plot_order_offsets(orders, os.path.join(args.plots, f"{_stem(path)}_orders.png"), os.path.basename(path))
+            stem = plot_stems[printable(path)]
+            title = printable(os.path.basename(path))
+            plot_residuals(lines, os.path.join(args.plots, f"{stem}_residuals.png"), title)
+            plot_order_offsets(orders, os.path.join(args.plots, f"{stem}_orders.png"), title)
     meta = {"SOFTWARE": f"lineshift {__version__}", "RESIDUAL": "c (lambda_measured - lambda_lab) / lambda_lab, m/s",
             "FRAME": ("barycentric" if args.barycentric
                       else "the file's wavelength solution (no barycentric correction)"),
@@ -147,7 +154,7 @@ def run(args) -> int:
     if args.drift:
         drift = pd.DataFrame(drift_rows, columns=DRIFT_COLUMNS).sort_values("mjd_mid", kind="stable")
         rate = None
-        use = drift[np.isfinite(drift.mjd_mid) & np.isfinite(drift.offset_err)]
+        use = drift[np.isfinite(drift.mjd_mid.astype(float)) & np.isfinite(drift.offset_err.astype(float))]
         if len(use) >= 3 and np.ptp(use.mjd_mid) > 0:
             rate = fit_drift(use.mjd_mid.to_numpy(), use.offset.to_numpy(), use.offset_err.to_numpy())
             meta["DRIFT"] = f"{rate[0]:+.3f} +- {rate[1]:.3f} m/s per hour"
@@ -160,3 +167,9 @@ def run(args) -> int:
 
             plot_drift(use.to_dict("records"), rate, os.path.join(args.plots, "drift.png"))
     return 1 if failures else 0
+
+
+def _printable_rows(rows: list[dict]) -> list[dict]:
+    from lineshift.io.table import printable
+
+    return [{k: printable(v) if isinstance(v, str) else v for k, v in r.items()} for r in rows]

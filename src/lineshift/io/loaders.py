@@ -29,6 +29,7 @@ import io
 import math
 import os
 import warnings
+import zlib
 from collections.abc import Callable
 from dataclasses import replace
 
@@ -86,7 +87,7 @@ def _read_bytes(path: str) -> bytes:
             # streamed: stop as soon as the limit is passed, never unpack a bomb in full
             with gzip.GzipFile(fileobj=io.BytesIO(raw)) as gz:
                 raw = gz.read(MAX_INPUT_BYTES + 1)
-        except (OSError, EOFError, gzip.BadGzipFile) as exc:
+        except (OSError, EOFError, gzip.BadGzipFile, zlib.error) as exc:
             raise SpectrumFormatError(f"is a damaged gzip file ({exc})", path=path) from None
         if len(raw) > MAX_INPUT_BYTES:
             raise _too_large(path, "the decompressed content")
@@ -201,7 +202,7 @@ def load_spectrum(path: str, *, medium: str | None = None, flux_time_key: str | 
 
 def _load(path: str, *, medium: str | None, arrays: bool,
                time_key: str | None = None):
-    path = os.fspath(path)
+    path = os.fsdecode(os.fspath(path))  # bytes names (any bytes) as str with surrogate escapes
     raw = _read_bytes(path)
     if _is_fits(raw):
         hdul, fits_notes = _open_fits(raw, path, read_data=arrays)
@@ -214,12 +215,17 @@ def _load(path: str, *, medium: str | None, arrays: bool,
             raise
         except Exception as exc:  # any surprise inside a damaged header is still a format error
             raise SpectrumFormatError(f"could not be interpreted ({_short(exc)})", path=path) from None
+    if raw[:2] in (b"\xff\xfe", b"\xfe\xff"):
+        raise SpectrumFormatError("is UTF-16 text; text tables are read as UTF-8 (or ASCII): convert it",
+                                  path=path, status="not a spectrum")
+    if b"\x00" in raw[:65536]:
+        raise SpectrumFormatError("is neither FITS nor a text table", path=path)
     try:
-        if b"\x00" in raw[:65536]:
-            raise UnicodeDecodeError("utf-8", raw[:1], 0, 1, "binary content")
         text = raw.decode("utf-8")
-    except UnicodeDecodeError:
-        raise SpectrumFormatError("is neither FITS nor a text table", path=path) from None
+    except UnicodeDecodeError as exc:
+        raise SpectrumFormatError(f"is neither FITS nor UTF-8 text (byte 0x{raw[exc.start]:02x} at offset "
+                                  f"{exc.start}); text tables are read as UTF-8 (or ASCII)",
+                                  path=path) from None
     try:
         return _load_text(text, path, medium=medium, arrays=arrays, time_key=time_key)
     except LineshiftError:
@@ -364,6 +370,9 @@ def _load_wcs_1d(hdul, hdu, primary, path: str, *, medium: str | None, arrays: b
     get = _header_getter(hdu.header, primary)
     notes: list[str] = []
     shape = [int(hdu.header.get(f"NAXIS{k}", 0)) for k in range(1, int(hdu.header["NAXIS"]) + 1)]
+    if shape[0] < 2 and all(n == 1 for n in shape[1:]):
+        raise SpectrumFormatError(f"image holds {shape[0]} pixel(s) along the dispersion axis; a spectrum "
+                                  "needs at least 2", path=path, status="no valid pixels")
     if shape[0] < 2 or any(n != 1 for n in shape[1:]):
         raise SpectrumFormatError(f"image with CTYPE1 has shape {tuple(shape[::-1])}, expected 1-D along axis 1",
                                   path=path)

@@ -47,6 +47,10 @@ _REFUSED = {
 
 Getter = Callable[[str], object]
 
+#: Longest exposure taken as real (30 days, s): beyond it EXPTIME/XPOSURE is a header error, and
+#: half of it added to the start would move the mid-exposure time by more than the exposure itself.
+MAX_EXPTIME = 30 * 86400.0
+
 
 def _num(value, key: str, path: str | None) -> float:
     try:
@@ -199,6 +203,9 @@ def _read_time(get: Getter, path: str | None, scale: str) -> tuple[float | None,
             exptime = _num(get(key), key, path)
             if exptime < 0:
                 raise MetadataError(f"{key} = {exptime} is negative", path=path)
+            if exptime > MAX_EXPTIME:
+                raise MetadataError(f"{key} = {exptime:g} s is not an exposure time (more than "
+                                    f"{MAX_EXPTIME / 86400:.0f} days)", path=path, status="bad time")
             break
 
     if get("MJD-AVG") is not None:

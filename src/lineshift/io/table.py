@@ -24,8 +24,8 @@ from lineshift.errors import ConfigError
 from lineshift.model import OLD_COLUMN_NAMES
 
 __all__ = ["ACTIVITY_COLUMNS", "COLUMNS", "EXTRA_COLUMNS", "FORMATS", "LINES_COLUMNS", "OLD_NAMES", "SB2_COLUMNS",
-           "UNITS", "atomic_path", "csv_header", "lines_frame", "require_parquet", "rows_to_frame", "table_format",
-           "write_frame", "write_table"]
+           "UNITS", "atomic_path", "csv_header", "lines_frame", "printable", "require_parquet", "rows_to_frame",
+           "table_format", "write_frame", "write_table"]
 
 #: Columns of the secondary with ``--components 2`` (shared/interface.md), right after the contract columns.
 SB2_COLUMNS = ["rv2", "rv2_err", "fwhm2", "contrast2", "rv2_topo", "fwhm2_err", "contrast2_err", "flux_ratio"]
@@ -245,6 +245,41 @@ def _astropy_table(frame: pd.DataFrame, meta: dict):
     return t
 
 
+def printable(text: str) -> str:
+    """``text`` with any undecodable file-name bytes (surrogate escapes) written as ``\\xNN``.
+
+    File names are bytes on POSIX; Python decodes the ones that are not UTF-8 with surrogate
+    escapes, which no table format or SQLite can encode.  This is the documented form of such a
+    name in every output.
+    """
+    try:
+        text.encode("utf-8")
+    except UnicodeEncodeError:
+        return text.encode("utf-8", "surrogateescape").decode("utf-8", "backslashreplace")
+    return text
+
+
+def _printable_frame(frame: pd.DataFrame, convert=printable) -> pd.DataFrame:
+    """A copy of ``frame`` whose text cells went through ``convert`` (the frame itself when none changes)."""
+    out = None
+    for c in frame.columns:
+        if frame[c].dtype == object or pd.api.types.is_string_dtype(frame[c]):
+            new = [convert(v) if isinstance(v, str) else v for v in frame[c]]
+            if any(a is not b for a, b in zip(new, frame[c], strict=True)):
+                out = frame.copy() if out is None else out
+                out[c] = pd.Series(new, index=frame.index, dtype=frame[c].dtype)
+    return frame if out is None else out
+
+
+def _ascii(text: str) -> str:
+    """``text`` with every non-ASCII byte of its UTF-8 form (or undecodable name byte) as ``\\xNN``.
+
+    FITS strings are ASCII (FITS standard 4.0, sect. 7.3.3.1): a file name such as ``café.fits``
+    appears there as ``caf\\xc3\\xa9.fits``, the bytes the file system holds.
+    """
+    return text.encode("utf-8", "surrogateescape").decode("ascii", "backslashreplace")
+
+
 def write_table(rows: list[dict], path: str | None, meta: dict[str, str] | None = None) -> pd.DataFrame:
     """Write velocity rows (contract columns first) to ``path``, or CSV on stdout when ``path`` is None."""
     return write_frame(rows_to_frame(rows), path, meta)
@@ -253,7 +288,8 @@ def write_table(rows: list[dict], path: str | None, meta: dict[str, str] | None 
 def write_frame(frame: pd.DataFrame, path: str | None, meta: dict[str, str] | None = None,
                 name: str = "VELOCITIES") -> pd.DataFrame:
     """Write any table atomically in the format its extension names (CSV on stdout without a path)."""
-    meta = meta or {}
+    meta = {k: printable(v) if isinstance(v, str) else v for k, v in (meta or {}).items()}
+    frame = _printable_frame(frame)
     if path is None:
         _text_frame(frame).to_csv(sys.stdout, index=False)
         return frame
@@ -281,11 +317,11 @@ def write_frame(frame: pd.DataFrame, path: str | None, meta: dict[str, str] | No
 
             from astropy.io import fits
 
-            t = _astropy_table(frame, {})
+            t = _astropy_table(_printable_frame(frame, _ascii), {})
             hdu = fits.table_to_hdu(t)
             hdu.name = name
             for k, v in meta.items():
-                for line in textwrap.wrap(f"{k}: {v}", 72, break_long_words=True, drop_whitespace=False):
+                for line in textwrap.wrap(_ascii(f"{k}: {v}"), 72, break_long_words=True, drop_whitespace=False):
                     hdu.header.add_history(line)
             fits.HDUList([fits.PrimaryHDU(), hdu]).writeto(tmp, overwrite=True)
     return frame

@@ -191,7 +191,8 @@ def _prepare_block(orders: list[Order], degree: int) -> list[PreparedOrder | Non
     alpha = np.where(scc > 0, cov / np.where(scc > 0, scc, 1.0), 0.0)
     vcont = mv[:, None] + alpha[:, None] * (c - mc[:, None])
     floor = 0.25 * mv
-    q = np.where(good, c**2 / np.maximum(vcont, floor[:, None]), 0.0)
+    den = np.maximum(vcont, floor[:, None])  # zero only for an order without a usable pixel
+    q = np.where(good & (den > 0), c**2 / np.where(den > 0, den, 1.0), 0.0)
     usable = (good.sum(axis=1) >= max(32, 4 * (degree + 1))) & (used.sum(axis=1) * stride >= 10)
     return [PreparedOrder(o.wave, pixel_edges(o.wave), fn[k], vn[k], q[k], good[k], o.index, cont[k]) if usable[k]
             else None

@@ -113,10 +113,16 @@ def _dask(fn, tasks, ctx, address: str, limit: int) -> Iterator:
                 break
         if not first:
             return
+        lost = getattr(fn, "on_lost", None)
         ac = as_completed(first, loop=client.loop)
         for f in ac:
             t = owner.pop(f.key)
-            row = f.result()
+            try:
+                row = f.result()
+            except Exception as exc:  # the cluster lost the task (worker died: KilledWorker, connection closed)
+                if lost is None:
+                    raise
+                row = lost(t, ctx, exc)
             f.release()
             yield t, row
             nxt = next(it, None)
@@ -139,7 +145,9 @@ def run_tasks(fn, tasks, ctx, *, workers: int = 1, scheduler: str | None = None,
     workers : int
         Local processes (1: this process).  Ignored with ``scheduler``.
     scheduler : str, optional
-        Address of a running Dask distributed scheduler, e.g. ``tcp://127.0.0.1:8786``.
+        Address of a running Dask distributed scheduler, e.g. ``tcp://127.0.0.1:8786``.  A task
+        whose result the cluster cannot deliver (its worker died, the connection closed) gets
+        ``fn.on_lost(task, ctx, exc)`` when ``fn`` has that attribute; otherwise the error is raised.
     max_in_flight : int, optional
         Tasks submitted ahead of those finished (default 4 per worker, 64 on Dask).
     """

@@ -261,6 +261,8 @@ def _screen(use, objects: dict) -> tuple[list, list[tuple[str, str]]]:
                 sp = load_spectrum(p)
                 if not any(np.isfinite(o.flux).sum() > 10 for o in sp.orders):
                     raise MeasurementError("no finite flux", path=p, status="no valid flux")
+                if not prepare_spectrum(sp):
+                    raise MeasurementError("no usable order (too few valid pixels)", path=p, status="no valid pixels")
             ranges[p] = sp.wavelength_range
             kept.append((p, b))
         except (LineshiftError, MemoryError, OSError) as exc:

@@ -32,7 +32,7 @@ from lineshift.errors import ConfigError, LineshiftError, MeasurementError, Spec
 from lineshift.io import airvac
 from lineshift.io.linelists import read_telluric_bands
 from lineshift.io.loaders import load_spectrum, read_observation
-from lineshift.io.table import COLUMNS, EXTRA_COLUMNS, SB2_COLUMNS
+from lineshift.io.table import COLUMNS, EXTRA_COLUMNS, SB2_COLUMNS, printable
 from lineshift.measure.mask_engine import SearchSettings, measure_mask
 from lineshift.measure.prepare import prepare_spectrum, reject_telluric_lines
 from lineshift.model import C_MS, LineMask, Observation
@@ -190,20 +190,6 @@ def _empty_row(path: str, obs: Observation | None, status: str, message: str, se
     return row
 
 
-def printable(text: str) -> str:
-    """``text`` with any undecodable file-name bytes (surrogate escapes) written as ``\\xNN``.
-
-    File names are bytes on POSIX; Python decodes the ones that are not UTF-8 with surrogate
-    escapes, which no table format or SQLite can encode.  This is the documented form of such a
-    name in every output.
-    """
-    try:
-        text.encode("utf-8")
-    except UnicodeEncodeError:
-        return text.encode("utf-8", "surrogateescape").decode("utf-8", "backslashreplace")
-    return text
-
-
 def _clean(row: dict) -> dict:
     for k, v in row.items():
         if isinstance(v, str):
@@ -228,7 +214,7 @@ def cluster_failure(row: dict) -> bool:
     The survey has already read every task's file here, so "unreadable" on a worker is the
     cluster's fault (file not shared, worker lost), not the file's: such rows are never stored.
     """
-    return row.get("status") in ("unreadable", "internal error")
+    return row.get("status") in ("unreadable", "internal error", "cluster error")
 
 
 def survey(paths: list[str], settings: MeasureSettings) -> list[Observation | LineshiftError]:
@@ -350,6 +336,20 @@ def measure_task(task: Task, ctx: Context) -> dict:
     if s.keep_ccf:
         row["_ccf"] = (res.velocity, res.ccf, res.model, res.bisector)
     return _with_activity(row, spectrum, s)
+
+
+def _lost_on_cluster(task: Task, ctx: Context, exc: BaseException) -> dict:
+    """The row of a task the Dask cluster lost (worker died, connection closed): never stored."""
+    if DEBUG:
+        raise exc
+    message = (f"{task.path}: lost on the cluster ({type(exc).__name__}: {exc}); not stored, a later run "
+               "measures it")
+    row = _empty_row(task.path, None, "cluster error", message, ctx.settings)
+    row.update(bjd_tdb=task.bjd_tdb, berv=task.berv, _error=message)
+    return _clean(row)
+
+
+measure_task.on_lost = _lost_on_cluster  # used by run/executors.py on a Dask cluster
 
 
 def _with_activity(row: dict, spectrum, s: MeasureSettings) -> dict:
@@ -653,7 +653,7 @@ def measure_files(paths: list[str], mask: LineMask, settings: MeasureSettings, *
 
     def estimate_systemic() -> float | None:
         plain = Context(mask, replace(settings, keep_ccf=False))
-        for t in tasks[:3]:
+        for t in tasks[:50]:  # the first that measures: bad files ahead of it fail fast and must not decide
             row = measure_task(t, plain)
             if row["status"] == "ok":
                 return float(row["rv"])
@@ -684,7 +684,7 @@ def measure_files(paths: list[str], mask: LineMask, settings: MeasureSettings, *
         final = _template_rows(tasks, todo, ctx, store, stored_template, report, workers=workers,
                                scheduler=scheduler)
         for t in todo:
-            if store is not None:
+            if store is not None and not (scheduler and cluster_failure(final[t.index])):
                 store.put(t.input_hash, report.settings_hash, final[t.index])
             emit(t.index, final[t.index])
     else:

@@ -21,6 +21,7 @@ spots), which line-shape indicators help to tell apart.
 from __future__ import annotations
 
 import os
+import warnings
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -294,8 +295,13 @@ def periodogram(s: Series, *, min_period: float | None = None, max_period: float
                                   "1 yr": [float(1 / abs(f + k / 365.25)) for k in (-1, 1)]}})
         if len(peaks) >= n_peaks:
             break
-    levels = {p: float(ls.false_alarm_level(p, minimum_frequency=fmin, maximum_frequency=fmax, method="baluev"))
-              for p in (0.1, 0.01, 0.001)}
+    with warnings.catch_warnings():
+        # astropy inverts Baluev's FAP with a root finder that probes powers outside [0, 1] (sqrt of
+        # a negative number on the way); the root it returns lies inside, checked finite below
+        warnings.simplefilter("ignore", RuntimeWarning)
+        levels = {p: float(ls.false_alarm_level(p, minimum_frequency=fmin, maximum_frequency=fmax,
+                                                method="baluev")) for p in (0.1, 0.01, 0.001)}
+    levels = {p: v for p, v in levels.items() if np.isfinite(v) and 0 <= v <= 1}
     return Periodogram(freq, power, window, peaks, peaks[0]["fap"] if peaks else 1.0, levels)
 
 
