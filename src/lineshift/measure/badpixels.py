@@ -19,7 +19,7 @@ def bad_pixels(flux: np.ndarray, var: np.ndarray | None = None, *, saturation: f
     """Boolean mask of unusable pixels, each bad run widened by ``grow`` pixels on both sides.
 
     Bad: non-finite flux or variance, flux <= 0, variance <= 0, and (if ``saturation`` is given)
-    flux >= ``saturation``.
+    flux >= ``saturation``.  ``flux`` and ``var`` are 1-D or 2-D (one order per row).
     """
     flux = np.asarray(flux, dtype=float)
     with np.errstate(invalid="ignore"):
@@ -30,11 +30,10 @@ def bad_pixels(flux: np.ndarray, var: np.ndarray | None = None, *, saturation: f
         if saturation is not None:
             bad |= flux >= saturation
     if grow > 0 and bad.any():
-        n = flux.size
-        idx = np.flatnonzero(bad)
+        # widen along the last axis (each row of a 2-D array on its own)
         out = bad.copy()
         for k in range(1, grow + 1):
-            out[np.clip(idx - k, 0, n - 1)] = True
-            out[np.clip(idx + k, 0, n - 1)] = True
+            out[..., :-k] |= bad[..., k:]
+            out[..., k:] |= bad[..., :-k]
         bad = out
     return bad

@@ -1,0 +1,66 @@
+"""Each fast kernel against the plain, obvious form kept beside it in the code.
+
+The plain forms use only the textbook operations (a loop over runs, ``np.nanmedian`` over every
+window, one spectrum at a time); the fast ones must give the same pixels exactly.
+"""
+
+import numpy as np
+import pytest
+
+from lineshift.measure.badpixels import bad_pixels
+from lineshift.measure.outliers import find_spikes, find_spikes_reference
+
+
+def _orders(rng, rows=6, n=1500):
+    """Lined spectra with photon noise, cosmic rays of 1-5 pixels, NaN runs and bad edges (invented)."""
+    x = np.arange(n, dtype=float)
+    model = np.full((rows, n), 3e4)
+    for r in range(rows):
+        for c, d in zip(rng.uniform(0, n, 40), rng.uniform(0.1, 0.9, 40), strict=True):
+            model[r] *= 1 - d * np.exp(-0.5 * ((x - c) / 1.7) ** 2)
+    flux = rng.normal(model, np.sqrt(model))
+    var = model.copy()
+    for r in range(rows):
+        for start in rng.integers(0, n - 5, 25):      # spikes, some touching each other or the edges
+            w = rng.integers(1, 6)
+            flux[r, start:start + w] += rng.uniform(2, 40) * model[r, start:start + w]
+        flux[r, rng.integers(0, n, 4)] = np.nan
+        var[r, rng.integers(0, n, 3)] = 0.0
+    flux[0, :3] += 5e5                                   # a spike at the very first pixels
+    flux[1, -2:] += 5e5                                  # and at the last
+    flux[2, 100:140] = np.nan                            # a long gap
+    return flux, var, model
+
+
+@pytest.mark.parametrize("seed", [1, 2, 3])
+def test_find_spikes_vectorised_equals_the_plain_loop(seed):
+    rng = np.random.default_rng(seed)
+    flux, var, model = _orders(rng)
+    good = rng.random(flux.shape) > 0.01
+    for kwargs in ({}, {"good": good}, {"model": model}, {"max_width": 1, "grow": 2},
+                   {"nsigma": 3.0, "contrast": 0.05, "max_iter": 2}):
+        fast = find_spikes(flux, var, **{k: v for k, v in kwargs.items()})
+        for r in range(flux.shape[0]):
+            row = {k: (v[r] if isinstance(v, np.ndarray) else v) for k, v in kwargs.items()}
+            plain = find_spikes_reference(flux[r], var[r], **row)
+            np.testing.assert_array_equal(fast[r], plain, err_msg=f"row {r}, {sorted(kwargs)}")
+            np.testing.assert_array_equal(find_spikes(flux[r], var[r], **row), plain)
+    assert fast.any()   # the comparison saw spikes
+
+
+def test_bad_pixels_on_a_block_equals_each_row():
+    rng = np.random.default_rng(4)
+    flux = rng.normal(100.0, 30.0, (5, 300))
+    flux[rng.random(flux.shape) < 0.01] = np.nan
+    var = np.abs(rng.normal(100.0, 50.0, (5, 300)))
+    block = bad_pixels(flux, var, saturation=180.0, grow=2)
+    # the obvious definition: a pixel is bad when any raw-bad pixel of its row lies within 2 of it
+    raw = ~np.isfinite(flux) | (np.nan_to_num(flux) <= 0) | (var <= 0) | (np.nan_to_num(flux) >= 180.0)
+    for r in range(5):
+        plain = [raw[r, max(i - 2, 0):i + 3].any() for i in range(300)]
+        np.testing.assert_array_equal(block[r], plain)
+        np.testing.assert_array_equal(bad_pixels(flux[r], var[r], saturation=180.0, grow=2), plain)
+    # the growth does not leak from the end of one row into the next
+    f = np.full((2, 10), 5.0)
+    f[0, -1] = np.nan
+    assert not bad_pixels(f, grow=2)[1].any()
