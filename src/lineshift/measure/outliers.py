@@ -50,7 +50,10 @@ class _RunningMedian:
 
         self.flux, self.half = flux, half
         self.finite = np.isfinite(flux)
-        self.clean = median_filter(np.where(self.finite, flux, 0.0), size=(1, 2 * half + 1), mode="nearest")
+        # the rows end to end through the 1-D filter (far faster than a 2-D footprint): windows that
+        # straddle two rows reach beyond a row's end, so they are among the recomputed ones
+        filled = np.where(self.finite, flux, 0.0)
+        self.clean = median_filter(filled.ravel(), size=2 * half + 1, mode="nearest").reshape(flux.shape)
 
     def __call__(self, bad: np.ndarray) -> np.ndarray:
         h, (rows, n) = self.half, self.flux.shape
