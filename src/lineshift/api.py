@@ -39,7 +39,7 @@ def _ms(value, name: str) -> float | None:
 @offline_call
 def measure(spectra: Sequence[str] | str, mask: str | LineMask, *, velocity_range=None, velocity_step=None,
             box_width=None, site=None, ra=None, dec=None, medium: str | None = None,
-            ephemeris: str | None = None, workers: int = 1) -> QTable:
+            ephemeris: str | None = None, workers: int | None = None) -> QTable:
     """Barycentric radial velocities of spectra against a line mask.
 
     Parameters
@@ -60,8 +60,8 @@ def measure(spectra: Sequence[str] | str, mask: str | LineMask, *, velocity_rang
         Medium of the files' wavelengths, overriding the headers.
     ephemeris : str, optional
         Path of a local JPL ``.bsp`` file.
-    workers : int
-        Local processes.
+    workers : int, optional
+        Local processes (default: every core, at most one per 16 spectra).
 
     Returns
     -------

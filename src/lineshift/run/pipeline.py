@@ -350,7 +350,7 @@ def _template_row(task: Task, obs: Observation, orders, ctx: Context) -> dict:
 
 
 def _fit_against(tasks: list[Task], first: dict[int, dict], rv: dict[int, float], ctx: Context, state,
-                 in_template: dict[int, float], *, workers: int, scheduler) -> dict[int, dict]:
+                 in_template: dict[int, float], *, workers: int | None, scheduler) -> dict[int, dict]:
     """Fit each spectrum against the template ``state``, starting from velocity ``rv`` (m/s); a spectrum that
     is part of the template (``in_template``: its co-adding factor) is fitted against the template without
     itself.  Line-shape columns come from the mask pass (``first``)."""
@@ -366,7 +366,7 @@ def _fit_against(tasks: list[Task], first: dict[int, dict], rv: dict[int, float]
     return new
 
 
-def _run_template(tasks: list[Task], first: dict[int, dict], ctx: Context, *, workers: int, scheduler,
+def _run_template(tasks: list[Task], first: dict[int, dict], ctx: Context, *, workers: int | None, scheduler,
                   max_iter: int = 3):
     """The template engine's passes: co-add with the current velocities, fit every spectrum against
     the template without itself, repeat until the velocities move by less than a tenth of their errors.
@@ -484,7 +484,7 @@ class BatchReport:
     swaps: int = 0              # two components exchanged to keep each star's identity
 
 
-def measure_files(paths: list[str], mask: LineMask, settings: MeasureSettings, *, workers: int = 1,
+def measure_files(paths: list[str], mask: LineMask, settings: MeasureSettings, *, workers: int | None = None,
                   scheduler: str | None = None, store=None, rebuild_template: bool = False,
                   on_row: Callable[[dict], None] | None = None, report: BatchReport | None = None
                   ) -> list[dict]:
@@ -497,8 +497,9 @@ def measure_files(paths: list[str], mask: LineMask, settings: MeasureSettings, *
     mask : LineMask
         Rest-frame mask (vacuum).
     settings : MeasureSettings
-    workers : int
-        Local processes (1: in this process).
+    workers : int or None
+        Local processes (1: in this process; None, the default: every core, one process per 16
+        spectra at most, :func:`lineshift.run.executors.default_workers`).
     scheduler : str, optional
         Address of a Dask distributed scheduler to run the measurements on.
     store : ResultStore, optional
