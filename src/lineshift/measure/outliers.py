@@ -205,9 +205,29 @@ def find_spikes(flux: np.ndarray, var: np.ndarray, good: np.ndarray | None = Non
     with np.errstate(invalid="ignore", divide="ignore"):
         sig = nsigma * np.sqrt(var)
     if model is None:
-        median = _RunningMedian(np.where(base_bad, np.nan, flux), max_width)
+        # The median of a window's good pixels is at least their minimum, so a pixel can only stand
+        # out of its running median if it stands out of the running minimum by the same margins.
+        # The minimum (over the good pixels at the start, a superset of those left later, and
+        # across row ends, a superset again) is cheap; the median is taken only where it can matter.
+        from scipy.ndimage import minimum_filter1d
+
+        low = minimum_filter1d(np.where(base_bad, np.inf, flux).ravel(), 2 * max_width + 1,
+                               mode="nearest").reshape(flux.shape)
+        with np.errstate(invalid="ignore"):
+            lift = flux - low
+            cand_r, cand_i = np.nonzero((lift > sig) & (lift > contrast * np.maximum(low, 0.0)) & ~base_bad)
+        x = np.pad(np.where(base_bad, np.nan, flux), ((0, 0), (max_width, max_width)), constant_values=np.nan)
+        cols = cand_i[:, None] + np.arange(2 * max_width + 1)[None, :]
     for _ in range(max_iter if model is None else 1):
-        ref = median(spikes) if model is None else np.atleast_2d(np.asarray(model, dtype=float))
+        if model is None:
+            ref = np.full(flux.shape, np.nan)
+            if cand_r.size:
+                win = x[cand_r[:, None], cols]
+                hit = spikes[cand_r[:, None], np.clip(cols - max_width, 0, flux.shape[1] - 1)]
+                inside = (cols >= max_width) & (cols < flux.shape[1] + max_width)
+                ref[cand_r, cand_i] = _median_of_finite(np.where(hit & inside, np.nan, win))
+        else:
+            ref = np.atleast_2d(np.asarray(model, dtype=float))
         with np.errstate(invalid="ignore", divide="ignore"):
             excess = flux - ref
             high = (excess > sig) & (excess > contrast * np.abs(ref)) & ~base_bad & np.isfinite(ref)
