@@ -30,3 +30,24 @@ def test_workers_and_serial_run_with_one_blas_thread_and_the_host_is_restored():
     parallel = [row for _t, row in run_tasks(_blas_threads, range(4), None, workers=2)]
     assert parallel == [1, 1, 1, 1]
     assert [p["num_threads"] for p in threadpool_info()] == before
+
+
+def test_survey_on_workers_equals_the_serial_survey(tmp_path):
+    import numpy as np
+
+    from lineshift import sim
+    from lineshift.run.pipeline import MeasureSettings, survey
+
+    rng = np.random.default_rng(1)
+    paths = []
+    for k in range(3):
+        exp = sim.observe(sim.DEMO_STAR, sim.INSTRUMENTS["echelle"], sim.DEMO_SITE, 61010.8 + k, rng)
+        paths.append(sim.write_observation(exp, str(tmp_path / f"e{k}.fits")))
+    (tmp_path / "broken.fits").write_bytes(b"SIMPLE  =    T" + b" " * 100)
+    paths.insert(1, str(tmp_path / "broken.fits"))
+    serial = survey(paths, MeasureSettings(), workers=1)
+    parallel = survey(paths, MeasureSettings(), workers=2)
+    assert [type(o) for o in serial] == [type(o) for o in parallel]
+    assert [str(o) for o in serial] == [str(o) for o in parallel]
+    assert getattr(parallel[1], "status", None) == serial[1].status == "truncated"
+    assert [o.mjd_mid for k, o in enumerate(serial) if k != 1] == [o.mjd_mid for k, o in enumerate(parallel) if k != 1]

@@ -37,7 +37,7 @@ from lineshift.measure.mask_engine import SearchSettings, measure_mask
 from lineshift.measure.prepare import prepare_spectrum, reject_telluric_lines
 from lineshift.model import C_MS, LineMask, Observation
 from lineshift.run.config import check_settings
-from lineshift.run.executors import run_tasks
+from lineshift.run.executors import default_workers, run_tasks
 
 __all__ = ["COLUMNS", "MeasureSettings", "Overrides", "expand_inputs", "measure_files"]
 
@@ -195,17 +195,30 @@ def cluster_failure(row: dict) -> bool:
     return row.get("status") in ("unreadable", "internal error")
 
 
-def survey(paths: list[str], settings: MeasureSettings) -> list[Observation | LineshiftError]:
-    """Phase 1: the observation record of every input (or the error that prevents reading it)."""
-    out: list = []
-    for path in paths:
-        try:
-            out.append(settings.overrides.apply(read_observation(path, medium=settings.medium)))
-        except LineshiftError as exc:
-            exc.path = exc.path or path
-            out.append(exc)
-        except (MemoryError, UnicodeError, OSError) as exc:
-            out.append(_failure(exc, path))
+def _survey_task(task: tuple[int, str], settings: MeasureSettings) -> Observation | LineshiftError:
+    """The observation record of one input, or the error that prevents reading it (picklable)."""
+    path = task[1]
+    try:
+        return settings.overrides.apply(read_observation(path, medium=settings.medium))
+    except LineshiftError as exc:
+        exc.path = exc.path or path
+        return exc
+    except (MemoryError, UnicodeError, OSError) as exc:
+        return _failure(exc, path)
+
+
+def survey(paths: list[str], settings: MeasureSettings, *, workers: int | None = 1
+           ) -> list[Observation | LineshiftError]:
+    """Phase 1: the observation record of every input (or the error that prevents reading it).
+
+    ``workers`` as in :func:`measure_files` (reading and parsing every header costs a few ms per file,
+    so a large batch surveys on all cores); the result is the same list whichever runs it."""
+    n = default_workers(len(paths)) if workers is None else workers
+    if n <= 1:
+        return [_survey_task(task, settings) for task in enumerate(paths)]
+    out: list = [None] * len(paths)
+    for (i, _path), obs in run_tasks(_survey_task, list(enumerate(paths)), settings, workers=n):
+        out[i] = obs
     return out
 
 
@@ -529,7 +542,7 @@ def measure_files(paths: list[str], mask: LineMask, settings: MeasureSettings, *
         if on_row is not None:
             on_row(row)
 
-    observations = survey(paths, settings)
+    observations = survey(paths, settings, workers=1 if scheduler else workers)
     hashes: list[str] = [""] * len(paths)
     if store is not None:
         from lineshift.run.store import content_hash
