@@ -323,7 +323,16 @@ def measure_task(task: Task, ctx: Context) -> dict:
     _note_rejected(row, n_rej)
     if s.keep_ccf:
         row["_ccf"] = (res.velocity, res.ccf, res.model, res.bisector)
+    if s.method == "template":   # first pass: what the co-add needs of this file, so it is not read again
+        row["_span"] = _span(spectrum)
     return _with_activity(row, spectrum, s)
+
+
+def _span(spectrum) -> tuple[float, float, float]:
+    """(lowest, highest wavelength, median pixel width in m/s) of a spectrum, for the template grid."""
+    a, b = spectrum.wavelength_range
+    step = float(np.median(np.concatenate([C_MS * np.diff(o.wave) / o.wave[1:] for o in spectrum.orders])))
+    return a, b, step
 
 
 def _with_activity(row: dict, spectrum, s: MeasureSettings) -> dict:
@@ -394,10 +403,9 @@ def _run_template(tasks: list[Task], first: dict[int, dict], ctx: Context, *, wo
     ranges: dict[int, tuple[float, float, float]] = {}   # per file, once: they do not change between passes
     for t in tasks:
         if rows[t.index].get("status") == "ok":
-            sp = load_spectrum(t.path, medium=ctx.settings.medium)
-            a, b = sp.wavelength_range
-            step = float(np.median(np.concatenate([C_MS * np.diff(o.wave) / o.wave[1:] for o in sp.orders])))
-            ranges[t.index] = (a, b, step)
+            span = rows[t.index].get("_span")
+            ranges[t.index] = tuple(span) if span is not None else _span(
+                load_spectrum(t.path, medium=ctx.settings.medium))
     for _ in range(max_iter):
         use = [t for t in tasks if rows[t.index].get("status") == "ok" and t.index in ranges]
         if len(use) < 2:
