@@ -213,7 +213,7 @@ def select_lines(order: PreparedOrder, mask: LineMask, v_lo: float, v_hi: float,
 
 
 def correlate(orders: list[PreparedOrder], mask: LineMask, velocity: np.ndarray, box_width: float,
-              *, lines: np.ndarray | None = None) -> CorrelationData:
+              *, lines: np.ndarray | None = None, sums: dict | None = None) -> CorrelationData:
     """CCF of prepared orders with a mask on a velocity grid (m/s, observatory frame).
 
     Parameters
@@ -226,6 +226,9 @@ def correlate(orders: list[PreparedOrder], mask: LineMask, velocity: np.ndarray,
         Full width of each mask box in velocity.
     lines : ndarray of int, optional
         Restrict to these mask lines (e.g. the strongest, for a coarse search).
+    sums : dict, optional
+        A dictionary kept by the caller across calls on the same orders (coarse and fine grids):
+        each order's cumulative sums are computed once and reused from it.
     """
     velocity = np.asarray(velocity, dtype=float)
     m = velocity.size
@@ -242,14 +245,18 @@ def correlate(orders: list[PreparedOrder], mask: LineMask, velocity: np.ndarray,
         # numpy's interp finds from its previous answer without a full binary search
         x = _pixel_coordinate(order.edges, lam_lines[idx][:, None] * (1 + edge_v[None, :] / C_MS))
         w = mask.weight[idx]
-        g_num = order.flux * order.weight
-        sums = []
-        for g in (g_num, order.weight):
-            S = np.concatenate(([0.0], np.cumsum(g)))
+        cached = None if sums is None else sums.get(id(order))
+        if cached is None or cached[0] is not order:
+            g_num = order.flux * order.weight
+            cached = (order, [(g, np.concatenate(([0.0], np.cumsum(g)))) for g in (g_num, order.weight)])
+            if sums is not None:
+                sums[id(order)] = cached
+        totals = []
+        for g, S in cached[1]:
             c = _cum(S, g, x)
             box = c[:, r:] - c[:, :m] if r else c[:, m:] - c[:, :m]
-            sums.append(w @ box)
-        num, den = sums
+            totals.append(w @ box)
+        num, den = totals
         if not np.all(den > 0):
             continue
         terms.append(_OrderTerms(order, w, idx, x, r, num, den, lam_lines[idx]))
