@@ -112,3 +112,22 @@ def test_bspline_written_out_equals_the_basis_product():
     inner = (x > 20) & (x < 180)
     sp = make_interp_spline(np.arange(200.0), values, k=3)
     np.testing.assert_allclose(fast[0][inner], sp(x[inner]), atol=1e-6)
+
+
+def test_template_run_with_kept_spectra_equals_reading_each_time(sample_set, monkeypatch):
+    import os
+
+    from lineshift.io.linelists import read_mask
+    from lineshift.run import reuse
+    from lineshift.run.pipeline import MeasureSettings, measure_files
+
+    directory, mask, rows = sample_set
+    paths = [os.path.join(directory, r["file"]) for r in rows if r["layout"] == "multi-order"]
+    settings = MeasureSettings(method="template", telluric_bands=False)
+    kept = measure_files(paths, read_mask(mask), settings, workers=1)
+    monkeypatch.setattr(reuse, "BUDGET_BYTES", 0)           # nothing kept: every pass reads the files
+    read = measure_files(paths, read_mask(mask), settings, workers=1)
+    assert [r["status"] for r in kept] == ["ok"] * len(paths)
+    for a, b in zip(kept, read, strict=True):
+        assert {k: v for k, v in a.items() if k != "_span"} == {k: v for k, v in b.items() if k != "_span"}
+    assert reuse._KEPT is None                               # dropped at the end of the batch

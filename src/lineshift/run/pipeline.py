@@ -36,6 +36,7 @@ from lineshift.io.table import COLUMNS, EXTRA_COLUMNS, SB2_COLUMNS
 from lineshift.measure.mask_engine import SearchSettings, measure_mask
 from lineshift.measure.prepare import prepare_spectrum, reject_telluric_lines
 from lineshift.model import C_MS, LineMask, Observation
+from lineshift.run import reuse
 from lineshift.run.config import check_settings
 from lineshift.run.executors import default_workers, run_tasks
 
@@ -266,6 +267,15 @@ def _note_rejected(row: dict, n: int) -> dict:
     return row
 
 
+def _load_prepared(path: str, s: MeasureSettings):
+    """(spectrum, prepared orders) of a file; kept for the batch in a template run (:mod:`.reuse`)."""
+    def make():
+        spectrum = load_spectrum(path, medium=s.medium)
+        return spectrum, prepare_spectrum(spectrum, degree=s.continuum_degree)
+
+    return reuse.prepared((path, s.medium, s.continuum_degree), make)
+
+
 def measure_task(task: Task, ctx: Context) -> dict:
     """Phase 4 for one spectrum: a pure function of its task and the batch context.
 
@@ -275,9 +285,8 @@ def measure_task(task: Task, ctx: Context) -> dict:
     s = ctx.settings
     obs = None
     try:
-        spectrum = load_spectrum(task.path, medium=s.medium)
+        spectrum, orders = _load_prepared(task.path, s)
         obs = s.overrides.apply(spectrum.obs)
-        orders = prepare_spectrum(spectrum, degree=s.continuum_degree)
         lo, hi = spectrum.wavelength_range
         inside = (ctx.mask.wavelength > lo) & (ctx.mask.wavelength < hi)
         if not inside.any():
@@ -416,8 +425,7 @@ def _run_template(tasks: list[Task], first: dict[int, dict], ctx: Context, *, wo
         steps = [ranges[t.index][2] for t in use]
         acc = TemplateAccumulator(log_grid(lo * (1 - 1e-4), hi * (1 + 1e-4), np.median(steps) / 2), bands=bands)
         for t in use:
-            acc.add(prepare_spectrum(load_spectrum(t.path, medium=ctx.settings.medium),
-                                     degree=ctx.settings.continuum_degree), factor[t.index])
+            acc.add(_load_prepared(t.path, ctx.settings)[1], factor[t.index])
         state = TemplateState.from_accumulator(acc)
         new = _fit_against(use, first, {t.index: rows[t.index]["rv"] for t in use}, ctx, state, factor,
                            workers=workers, scheduler=scheduler)
@@ -611,8 +619,9 @@ def measure_files(paths: list[str], mask: LineMask, settings: MeasureSettings, *
                 report.skipped += 1
                 emit(t.index, row)
     if settings.method == "template":
-        final = _template_rows(tasks, todo, ctx, store, stored_template, report, workers=workers,
-                               scheduler=scheduler)
+        with reuse.keeping():   # the passes read each file once (bounded; this process only)
+            final = _template_rows(tasks, todo, ctx, store, stored_template, report, workers=workers,
+                                   scheduler=scheduler)
         for t in todo:
             if store is not None:
                 store.put(t.input_hash, report.settings_hash, final[t.index])
