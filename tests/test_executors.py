@@ -51,3 +51,11 @@ def test_survey_on_workers_equals_the_serial_survey(tmp_path):
     assert [str(o) for o in serial] == [str(o) for o in parallel]
     assert getattr(parallel[1], "status", None) == serial[1].status == "truncated"
     assert [o.mjd_mid for k, o in enumerate(serial) if k != 1] == [o.mjd_mid for k, o in enumerate(parallel) if k != 1]
+    # with the store's content hashes: the same records, and each file's SHA-256 (hashlib, outside reference)
+    import hashlib
+
+    with_hash = survey(paths, MeasureSettings(), workers=2, hashes=True)
+    assert [str(o) for o, _h in with_hash] == [str(o) for o in serial]
+    for k, (_o, h) in enumerate(with_hash):
+        with open(paths[k], "rb") as fh:
+            assert h == ("" if k == 1 else hashlib.sha256(fh.read()).hexdigest())

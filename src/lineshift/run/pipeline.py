@@ -196,30 +196,45 @@ def cluster_failure(row: dict) -> bool:
     return row.get("status") in ("unreadable", "internal error")
 
 
-def _survey_task(task: tuple[int, str], settings: MeasureSettings) -> Observation | LineshiftError:
-    """The observation record of one input, or the error that prevents reading it (picklable)."""
+def _survey_task(task: tuple, settings: MeasureSettings):
+    """The observation record of one input, or the error that prevents reading it (picklable).
+
+    ``task`` is ``(index, path)``, or ``(index, path, True)`` to return ``(record, content hash)``
+    for the results store (the hash is "" when the record is an error)."""
     path = task[1]
     try:
-        return settings.overrides.apply(read_observation(path, medium=settings.medium))
+        obs = settings.overrides.apply(read_observation(path, medium=settings.medium))
     except LineshiftError as exc:
         exc.path = exc.path or path
-        return exc
+        obs = exc
     except (MemoryError, UnicodeError, OSError) as exc:
-        return _failure(exc, path)
+        obs = _failure(exc, path)
+    if len(task) < 3 or not task[2]:
+        return obs
+    if not isinstance(obs, Observation):
+        return obs, ""
+    from lineshift.run.store import content_hash
+
+    try:
+        return obs, content_hash(path)
+    except OSError as exc:
+        return SpectrumFormatError(f"cannot be read ({exc.strerror or exc})", path=path), ""
 
 
-def survey(paths: list[str], settings: MeasureSettings, *, workers: int | None = 1
-           ) -> list[Observation | LineshiftError]:
+def survey(paths: list[str], settings: MeasureSettings, *, workers: int | None = 1, hashes: bool = False
+           ) -> list:
     """Phase 1: the observation record of every input (or the error that prevents reading it).
 
     ``workers`` as in :func:`measure_files` (reading and parsing every header costs a few ms per file,
-    so a large batch surveys on all cores); the result is the same list whichever runs it."""
+    so a large batch surveys on all cores); the result is the same list whichever runs it.  With
+    ``hashes`` each item is ``(record, content hash)`` (for the results store; "" after an error)."""
+    tasks = [(i, p, True) if hashes else (i, p) for i, p in enumerate(paths)]
     n = default_workers(len(paths)) if workers is None else workers
     if n <= 1:
-        return [_survey_task(task, settings) for task in enumerate(paths)]
+        return [_survey_task(task, settings) for task in tasks]
     out: list = [None] * len(paths)
-    for (i, _path), obs in run_tasks(_survey_task, list(enumerate(paths)), settings, workers=n):
-        out[i] = obs
+    for task, obs in run_tasks(_survey_task, tasks, settings, workers=n):
+        out[task[0]] = obs
     return out
 
 
@@ -558,17 +573,11 @@ def measure_files(paths: list[str], mask: LineMask, settings: MeasureSettings, *
         if on_row is not None:
             on_row(row)
 
-    observations = survey(paths, settings, workers=1 if scheduler else workers)
-    hashes: list[str] = [""] * len(paths)
-    if store is not None:
-        from lineshift.run.store import content_hash
-
-        for i, o in enumerate(observations):
-            if isinstance(o, Observation):
-                try:
-                    hashes[i] = content_hash(paths[i])
-                except OSError as exc:
-                    observations[i] = SpectrumFormatError(f"cannot be read ({exc.strerror or exc})", path=paths[i])
+    surveyed = survey(paths, settings, workers=1 if scheduler else workers, hashes=store is not None)
+    if store is not None:   # content hashes read beside the headers (on the workers for a large batch)
+        observations, hashes = [o for o, _ in surveyed], [h for _, h in surveyed]
+    else:
+        observations, hashes = surveyed, [""] * len(paths)
     ok_idx = [i for i, o in enumerate(observations) if isinstance(o, Observation)]
     bary = barycentric_batch([observations[i] for i in ok_idx], target=settings.target,
                              ephemeris=settings.ephemeris)
