@@ -14,7 +14,10 @@ The files: 36-order x 4096-pixel echelle spectra (R = 110 000) of the invented s
   spent it (load, metadata and BJD/BERV, prepare/continuum, coarse search, fine CCF, peak fit, error
   propagation, diagnostics, per-order velocities, store write, other).
 
-    python benchmarks/profile_stages.py [--files 24] [--rounds 3] [--store]
+With ``--template`` the template engine's whole run (first pass, co-adds, fits; defaults otherwise)
+is timed in the same rounds and its ratio to the mask engine printed.
+
+    python benchmarks/profile_stages.py [--files 24] [--rounds 3] [--store] [--template]
 
 The output is a Markdown table (write it to docs/ with the date and commit when the figures move).
 """
@@ -35,6 +38,7 @@ import subprocess
 import sys
 import tempfile
 import time
+from dataclasses import replace
 
 import numpy as np
 from astropy.io import fits
@@ -116,6 +120,7 @@ def main(argv=None) -> int:
     ap.add_argument("--files", type=int, default=24)
     ap.add_argument("--rounds", type=int, default=3)
     ap.add_argument("--store", action="store_true", help="also write every row to a results store")
+    ap.add_argument("--template", action="store_true", help="also time the template engine's whole run")
     args = ap.parse_args(argv)
     tmp = tempfile.mkdtemp(prefix="lineshift-profile-")
     try:
@@ -142,16 +147,20 @@ def main(argv=None) -> int:
                 if os.path.exists(store_path):
                     os.unlink(store_path)
                 store = ResultStore(store_path)
-            rows = measure_files(files, mask, settings, store=store)
+            rows = measure_files(files, mask, settings, store=store, workers=1)
             if store is not None:
                 store.close()
+            assert all(r["status"] == "ok" for r in rows), [r["notes"] for r in rows if r["status"] != "ok"]
+
+        def template():
+            rows = measure_files(files, mask, replace(settings, method="template"), workers=1)
             assert all(r["status"] == "ok" for r in rows), [r["notes"] for r in rows if r["status"] != "ok"]
 
         def plain():
             for f, v in zip(files, truth, strict=True):
                 plain_ccf(f, mask.wavelength, mask.weight, v)
 
-        t_ours, t_plain = [], []
+        t_ours, t_plain, t_template = [], [], []
         for _ in range(args.rounds):   # interleaved, so machine load hits both alike
             t = time.perf_counter()
             plain()
@@ -159,6 +168,10 @@ def main(argv=None) -> int:
             t = time.perf_counter()
             ours()
             t_ours.append(time.perf_counter() - t)
+            if args.template:
+                t = time.perf_counter()
+                template()
+                t_template.append(time.perf_counter() - t)
         prof = cProfile.Profile()
         t = time.perf_counter()
         prof.runcall(ours)
@@ -178,7 +191,14 @@ def main(argv=None) -> int:
     print("| | ms per spectrum |\n|---|---:|")
     print(f"| plain raw-count mask CCF (reference) | {ms_plain:.1f} |")
     print(f"| lineshift measure (mask engine, defaults) | {ms_ours:.1f} |")
-    print(f"| ratio lineshift / plain | {ms_ours / ms_plain:.2f} |\n")
+    print(f"| ratio lineshift / plain | {ms_ours / ms_plain:.2f} |")
+    if t_template:
+        ms_t = 1e3 * statistics.median(t_template) / n
+        print(f"| lineshift measure --method template (whole run) | {ms_t:.1f} |")
+        print(f"| ratio template / mask engine | {ms_t / ms_ours:.2f} |")
+    columns = [t_plain, t_ours, *([t_template] if t_template else [])]
+    per_round = "; ".join(" / ".join(f"{x:.2f}" for x in r) for r in zip(*columns, strict=True))
+    print(f"\nrounds (s, plain / mask{' / template' if t_template else ''}): {per_round}\n")
     print(f"Profile of one run under cProfile ({1e3 * t_prof / n:.1f} ms per spectrum with the profiler's "
           "overhead; shares are what matters):\n")
     print("| stage (inclusive: nested stages count in their parents) | ms per spectrum | share |\n|---|---:|---:|")

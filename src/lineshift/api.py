@@ -68,7 +68,7 @@ def _label(obj, i: int) -> str:
 @offline_call
 def measure(spectra, mask: str | LineMask, *, velocity_range=None, velocity_step=None,
             box_width=None, site=None, ra=None, dec=None, medium: str | None = None,
-            ephemeris: str | None = None, workers: int = 1, flux_time_key: str | None = None) -> QTable:
+            ephemeris: str | None = None, workers: int | None = None, flux_time_key: str | None = None) -> QTable:
     """Barycentric radial velocities of spectra against a line mask.
 
     Parameters
@@ -94,8 +94,8 @@ def measure(spectra, mask: str | LineMask, *, velocity_range=None, velocity_step
         Medium of the files' wavelengths, overriding the headers.
     ephemeris : str, optional
         Path of a local JPL ``.bsp`` file.
-    workers : int
-        Local processes.
+    workers : int, optional
+        Local processes (default: every core, at most one per 16 spectra).
     flux_time_key : str, optional
         Header keyword of a flux-weighted mid-exposure time (exposure meter), used where present.
 

@@ -121,7 +121,7 @@ def settings_from(args, cfg):
     site_xyz = parse_site(args.site) if args.site else site.get("xyz")
     vrange = floats(args.velocity_range, 2, "--velocity-range") if args.velocity_range else mc.get("velocity_range")
     # every number is checked once, by MeasureSettings (lineshift.run.config.check_settings)
-    if args.workers < 1:
+    if args.workers is not None and args.workers < 1:
         raise ConfigError("--workers must be at least 1")
     frame = t.get("frame")
     telluric = False if args.no_telluric else (args.telluric or mc.get("telluric_bands"))

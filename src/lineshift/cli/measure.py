@@ -41,7 +41,8 @@ def add_parser(sub) -> None:
     p.add_argument("--systemic-velocity", type=float, metavar="M_S",
                    help="approximate barycentric velocity for telluric rejection (default: measured)")
     add_shared(p, "--telluric", "--no-telluric", "--ephemeris")
-    p.add_argument("--workers", type=int, default=1, metavar="N", help="local worker processes (default 1)")
+    p.add_argument("--workers", type=int, metavar="N",
+                   help="local worker processes (default: every core, at most one per 16 spectra)")
     p.add_argument("--store", metavar="FILE.sqlite",
                    help="results store: keep every result, skip inputs already measured with these settings")
     p.add_argument("--rebuild-template", action="store_true",

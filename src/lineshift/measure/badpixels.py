@@ -31,6 +31,8 @@ def clipped_pixels(flux: np.ndarray, *, top: float = 0.99, max_fraction: float =
     values with a spread of sigma has a chance of about 1 / (2 sqrt(pi) sigma): common practice).
     """
     flux = np.asarray(flux, dtype=float)
+    if flux.ndim > 1:   # one order per row
+        return np.stack([clipped_pixels(row, top=top, max_fraction=max_fraction) for row in flux])
     finite = np.isfinite(flux)
     out = np.zeros(flux.size, dtype=bool)
     if finite.sum() < 8:
@@ -53,6 +55,7 @@ def bad_pixels(flux: np.ndarray, var: np.ndarray | None = None, *, saturation: f
 
     Bad: non-finite flux or variance, flux <= 0, variance <= 0, flux >= ``saturation`` (if given),
     and with ``clipped`` the flat top of unflagged saturation (:func:`clipped_pixels`).
+    ``flux`` and ``var`` are 1-D or 2-D (one order per row).
     """
     flux = np.asarray(flux, dtype=float)
     with np.errstate(invalid="ignore"):
@@ -65,11 +68,10 @@ def bad_pixels(flux: np.ndarray, var: np.ndarray | None = None, *, saturation: f
         if clipped:
             bad |= clipped_pixels(flux)
     if grow > 0 and bad.any():
-        n = flux.size
-        idx = np.flatnonzero(bad)
+        # widen along the last axis (each row of a 2-D array on its own)
         out = bad.copy()
         for k in range(1, grow + 1):
-            out[np.clip(idx - k, 0, n - 1)] = True
-            out[np.clip(idx + k, 0, n - 1)] = True
+            out[..., :-k] |= bad[..., k:]
+            out[..., k:] |= bad[..., :-k]
         bad = out
     return bad

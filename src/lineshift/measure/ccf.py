@@ -153,19 +153,45 @@ class CorrelationData:
         return total, per_order
 
     @staticmethod
-    def _term_variance(t: _OrderTerms, sens: np.ndarray) -> np.ndarray:
-        """sum_p h_p^2 var_p for one order, for each row of ``sens`` (already divided by D)."""
-        n = t.order.flux.size
+    def _edge_sensitivities(t: _OrderTerms, sens: np.ndarray) -> np.ndarray:
+        """Sensitivity of each box edge column (an end adds, a start subtracts), per row of ``sens``."""
         m = sens.shape[1]
-        i = np.minimum(t.edges_x.astype(np.intp), n - 1).ravel()
-        f = t.edges_x.ravel() - i
-        # per-edge weights are separable: (combined sensitivity of the edge) x (line weight)
         if t.r:
             e = np.zeros((sens.shape[0], m + t.r))
             e[:, t.r:] += sens
             e[:, :m] -= sens
-        else:
-            e = np.concatenate((-sens, sens), axis=1)
+            return e
+        return np.concatenate((-sens, sens), axis=1)
+
+    @staticmethod
+    def _term_variance(t: _OrderTerms, sens: np.ndarray) -> np.ndarray:
+        """sum_p h_p^2 var_p for one order, for each row of ``sens`` (already divided by D).
+
+        All rows at once: one weighted bincount over (row, pixel) of the edges' integer parts and
+        one of their fractions, a cumulative sum per row, then one matrix product with the pixel
+        variances.  :meth:`_term_variance_reference` is the plain form (one adjoint per row) it is
+        tested against."""
+        n = t.order.flux.size
+        rows = sens.shape[0]
+        i = np.minimum(t.edges_x.astype(np.intp), n - 1).ravel()
+        f = t.edges_x.ravel() - i
+        e = CorrelationData._edge_sensitivities(t, sens)                      # (rows, cols)
+        a = (t.weights[None, :, None] * e[:, None, :]).reshape(rows, -1)      # (rows, lines * cols)
+        flat = (np.arange(rows)[:, None] * n + i[None, :]).ravel()
+        cnt = np.bincount(flat, a.ravel(), minlength=rows * n).reshape(rows, n)
+        h = np.bincount(flat, (a * f[None, :]).ravel(), minlength=rows * n).reshape(rows, n)
+        # _cum(x) = sum_{p < i} g_p + f g_i: every pixel below an edge counts fully
+        h[:, :-1] += np.cumsum(cnt[:, ::-1], axis=1)[:, ::-1][:, 1:]
+        qv = t.order.weight * t.order.weight * t.order.var
+        return (h * h) @ qv
+
+    @staticmethod
+    def _term_variance_reference(t: _OrderTerms, sens: np.ndarray) -> np.ndarray:
+        """Plain form of :meth:`_term_variance`: the adjoint of the box integrals row by row."""
+        n = t.order.flux.size
+        i = np.minimum(t.edges_x.astype(np.intp), n - 1).ravel()
+        f = t.edges_x.ravel() - i
+        e = CorrelationData._edge_sensitivities(t, sens)
         qv = t.order.weight * t.order.weight * t.order.var
         out = np.empty(sens.shape[0])
         for k in range(sens.shape[0]):
@@ -199,7 +225,8 @@ def select_lines(order: PreparedOrder, mask: LineMask, v_lo: float, v_hi: float,
 
 
 def correlate(orders: list[PreparedOrder], mask: LineMask, velocity: np.ndarray, box_width: float,
-              *, lines: np.ndarray | None = None, clear_of_bad: bool = False) -> CorrelationData:
+              *, lines: np.ndarray | None = None, clear_of_bad: bool = False, sums: dict | None = None
+              ) -> CorrelationData:
     """CCF of prepared orders with a mask on a velocity grid (m/s, observatory frame).
 
     Parameters
@@ -215,6 +242,9 @@ def correlate(orders: list[PreparedOrder], mask: LineMask, velocity: np.ndarray,
     clear_of_bad : bool
         Use only lines whose boxes meet no bad pixel over the whole grid (:func:`select_lines`); for
         the fine grid the velocity is measured on (a coarse search only locates the dip).
+    sums : dict, optional
+        A dictionary kept by the caller across calls on the same orders (coarse and fine grids):
+        each order's cumulative sums are computed once and reused from it.
     """
     velocity = np.asarray(velocity, dtype=float)
     m = velocity.size
@@ -231,14 +261,18 @@ def correlate(orders: list[PreparedOrder], mask: LineMask, velocity: np.ndarray,
         # numpy's interp finds from its previous answer without a full binary search
         x = _pixel_coordinate(order.edges, lam_lines[idx][:, None] * (1 + edge_v[None, :] / C_MS))
         w = mask.weight[idx]
-        g_num = order.flux * order.weight
-        sums = []
-        for g in (g_num, order.weight):
-            S = np.concatenate(([0.0], np.cumsum(g)))
+        cached = None if sums is None else sums.get(id(order))
+        if cached is None or cached[0] is not order:
+            g_num = order.flux * order.weight
+            cached = (order, [(g, np.concatenate(([0.0], np.cumsum(g)))) for g in (g_num, order.weight)])
+            if sums is not None:
+                sums[id(order)] = cached
+        totals = []
+        for g, S in cached[1]:
             c = _cum(S, g, x)
             box = c[:, r:] - c[:, :m] if r else c[:, m:] - c[:, :m]
-            sums.append(w @ box)
-        num, den = sums
+            totals.append(w @ box)
+        num, den = totals
         if not np.all(den > 0):
             continue
         terms.append(_OrderTerms(order, w, idx, x, r, num, den, lam_lines[idx]))

@@ -85,7 +85,7 @@ class CoarseCCF:
 
 
 def coarse_ccf(orders, mask, settings: SearchSettings, berv: float, dv_pix: float, path, *,
-               all_lines: bool = False) -> CoarseCCF:
+               all_lines: bool = False, sums: dict | None = None) -> CoarseCCF:
     """CCF over the whole (barycentric) search range on a grid of two pixels, box = step.
 
     ``all_lines=False`` uses the ``coarse_lines`` strongest lines (enough to find one star);
@@ -99,7 +99,7 @@ def coarse_ccf(orders, mask, settings: SearchSettings, berv: float, dv_pix: floa
         raise MeasurementError("velocity range is narrower than eight coarse steps", path=path,
                                status="velocity range too narrow")
     lines = None if all_lines else np.sort(np.argsort(mask.weight)[::-1][: settings.coarse_lines])
-    data = correlate(orders, mask, grid, max(step, settings.box_width or dv_pix), lines=lines)
+    data = correlate(orders, mask, grid, max(step, settings.box_width or dv_pix), lines=lines, sums=sums)
     if not data.terms:
         raise MeasurementError("no mask line falls on the spectrum", path=path, status="outside mask range")
     y = data.ccf
@@ -107,8 +107,8 @@ def coarse_ccf(orders, mask, settings: SearchSettings, berv: float, dv_pix: floa
     return CoarseCCF(grid, y, base, float(1.4826 * np.median(np.abs(y - base))), step)
 
 
-def _coarse(orders, mask, settings, berv, dv_pix, path):
-    c = coarse_ccf(orders, mask, settings, berv, dv_pix, path)
+def _coarse(orders, mask, settings, berv, dv_pix, path, sums=None):
+    c = coarse_ccf(orders, mask, settings, berv, dv_pix, path, sums=sums)
     i = int(np.argmin(c.ccf))
     depth = c.base - c.ccf[i]
     if not np.isfinite(depth) or c.noise <= 0 or depth < settings.min_significance * c.noise:
@@ -145,13 +145,14 @@ def measure_mask(orders: list[PreparedOrder], mask: LineMask, settings: SearchSe
         raise MeasurementError("no usable order (too few valid pixels)", path=path, status="no valid pixels")
     dv_pix = pixel_velocity_width(orders)
     box = settings.box_width or dv_pix
-    centre, fwhm = _coarse(orders, mask, settings, berv, dv_pix, path)
+    sums: dict = {}   # each order's cumulative sums, shared by the coarse and the fine grids
+    centre, fwhm = _coarse(orders, mask, settings, berv, dv_pix, path, sums)
     step = settings.velocity_step or dv_pix
     for _attempt in range(3):
         half = max(settings.window_fwhm * fwhm, 8 * step)
         n = int(np.ceil(half / step))
         grid = centre + step * np.arange(-n, n + 1)
-        data = correlate(orders, mask, grid, box, clear_of_bad=True)
+        data = correlate(orders, mask, grid, box, clear_of_bad=True, sums=sums)
         if not data.terms:
             raise MeasurementError("no mask line falls on the spectrum", path=path,
                                    status="outside mask range")

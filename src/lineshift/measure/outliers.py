@@ -22,24 +22,66 @@ from __future__ import annotations
 import numpy as np
 from numpy.lib.stride_tricks import sliding_window_view
 
-__all__ = ["find_spikes", "running_median"]
+__all__ = ["find_spikes", "find_spikes_reference", "running_median"]
+
+
+def _median_of_finite(win: np.ndarray) -> np.ndarray:
+    """Median of the finite values of each row of ``win`` (NaN where none), as ``np.nanmedian``
+    gives it, through one sort (NaN sorts last) instead of a masked-array median."""
+    s = np.sort(win, axis=-1)
+    k = np.isfinite(s).sum(axis=-1)
+    top = s.shape[-1] - 1
+    lo = np.take_along_axis(s, np.clip((k - 1) // 2, 0, top)[:, None], axis=-1)[:, 0]
+    hi = np.take_along_axis(s, np.clip(k // 2, 0, top)[:, None], axis=-1)[:, 0]
+    out = np.where(k % 2 == 1, lo, (lo + hi) / 2)
+    out[k == 0] = np.nan
+    return out
+
+
+class _RunningMedian:
+    """Running median over ``2 * half + 1`` pixels of the good pixels of each row, for a bad set
+    that may grow between calls.
+
+    Windows with no bad pixel (nearly all) come from scipy's C median filter, computed once per
+    array; only windows that touch a bad pixel or an end of the row are recomputed, all together."""
+
+    def __init__(self, flux: np.ndarray, half: int):
+        from scipy.ndimage import median_filter
+
+        self.flux, self.half = flux, half
+        self.finite = np.isfinite(flux)
+        # the rows end to end through the 1-D filter (far faster than a 2-D footprint): windows that
+        # straddle two rows reach beyond a row's end, so they are among the recomputed ones
+        filled = np.where(self.finite, flux, 0.0)
+        self.clean = median_filter(filled.ravel(), size=2 * half + 1, mode="nearest").reshape(flux.shape)
+
+    def __call__(self, bad: np.ndarray) -> np.ndarray:
+        h, (rows, n) = self.half, self.flux.shape
+        width = 2 * h + 1
+        bad = bad | ~self.finite
+        # a window is gappy when it holds a bad pixel or reaches beyond its row (padding counts as bad)
+        padded = np.ones((rows, n + width), dtype=np.int32)
+        padded[:, 0] = 0
+        padded[:, h + 1:h + 1 + n] = bad
+        cum = np.cumsum(padded, axis=1)
+        gappy = (cum[:, width:] - cum[:, :n]) > 0
+        out = self.clean.copy()
+        r, i = np.nonzero(gappy)
+        if r.size:
+            x = np.pad(np.where(bad, np.nan, self.flux), ((0, 0), (h, h)), constant_values=np.nan)
+            out[r, i] = _median_of_finite(x[r[:, None], i[:, None] + np.arange(width)[None, :]])
+        return out
 
 
 def running_median(flux: np.ndarray, bad: np.ndarray, half: int) -> np.ndarray:
-    """Median of the good pixels within ``half`` pixels of each pixel (NaN where none)."""
-    x = np.where(bad, np.nan, np.asarray(flux, dtype=float))
-    padded = np.pad(x, half, mode="constant", constant_values=np.nan)
-    win = sliding_window_view(padded, 2 * half + 1)
-    # windows with no bad pixel (nearly all): scipy's C median filter; the rest: nanmedian of the good ones
-    from scipy.ndimage import median_filter
+    """Median of the good pixels within ``half`` pixels of each pixel (NaN where none).
 
-    out = median_filter(np.where(np.isfinite(x), x, 0.0), size=2 * half + 1, mode="nearest")
-    gappy = ~np.isfinite(win).all(axis=1)
-    out[gappy] = np.nan
-    some = gappy & np.isfinite(win).any(axis=1)
-    if some.any():
-        out[some] = np.nanmedian(win[some], axis=1)
-    return out
+    ``flux`` and ``bad`` are 1-D, or 2-D with one spectrum (order) per row."""
+    x = np.where(bad, np.nan, np.asarray(flux, dtype=float))
+    one = x.ndim == 1
+    x2 = np.atleast_2d(x)
+    out = _RunningMedian(x2, half)(np.zeros(x2.shape, dtype=bool))
+    return out[0] if one else out
 
 
 def _runs(flags: np.ndarray) -> list[tuple[int, int]]:
@@ -62,28 +104,30 @@ def _steep(flux, var, bad, a, b, nsigma, contrast) -> bool:
     return bool(low - top > max(nsigma * np.sqrt(var[a:b].max()), contrast * abs(top)))
 
 
-def find_spikes(flux: np.ndarray, var: np.ndarray, good: np.ndarray | None = None, *,
-                model: np.ndarray | None = None, max_width: int = 3, nsigma: float = 8.0,
-                contrast: float = 0.5, grow: int = 1, max_iter: int = 5) -> np.ndarray:
-    """Boolean array marking cosmic-ray / hot-pixel pixels (plus ``grow`` neighbours each side).
+def find_spikes_reference(flux: np.ndarray, var: np.ndarray, good: np.ndarray | None = None, *,
+                          model: np.ndarray | None = None, max_width: int = 3, nsigma: float = 8.0,
+                          contrast: float = 0.5, grow: int = 1, max_iter: int = 5) -> np.ndarray:
+    """The plain, one-spectrum form of :func:`find_spikes` (a loop over runs; nanmedian windows).
 
-    ``model`` is the expected flux in the same units as ``flux`` (e.g. the scaled, shifted
-    template); without it a running median of ``2 * max_width + 1`` good pixels is used and the
-    search is iterated.  Only runs of at most ``max_width`` pixels that are all more than
-    ``nsigma`` noise sigma and ``contrast`` times the model above the model, and by the same
-    margins above both pixels just outside the run, are flagged: wider or gentler excesses are
-    real spectrum (or a model mismatch), not spikes.
-    """
+    Kept as the reference the vectorised kernel is tested against (tests/test_fast_kernels.py)."""
     flux = np.asarray(flux, dtype=float)
     var = np.asarray(var, dtype=float)
     n = flux.size
     base_bad = ~np.isfinite(flux) | ~np.isfinite(var) | (var <= 0)
     if good is not None:
         base_bad |= ~np.asarray(good, dtype=bool)
+
+    def median(bad):
+        x = np.where(bad, np.nan, flux)
+        win = sliding_window_view(np.pad(x, max_width, constant_values=np.nan), 2 * max_width + 1)
+        out = np.full(n, np.nan)
+        ok = np.isfinite(win).any(axis=1)
+        out[ok] = np.nanmedian(win[ok], axis=1)
+        return out
+
     spikes = np.zeros(n, dtype=bool)
     for _ in range(max_iter if model is None else 1):
-        ref = (running_median(flux, base_bad | spikes, max_width) if model is None
-               else np.asarray(model, dtype=float))
+        ref = median(base_bad | spikes) if model is None else np.asarray(model, dtype=float)
         with np.errstate(invalid="ignore", divide="ignore"):
             excess = flux - ref
             high = ((excess > nsigma * np.sqrt(var)) & (excess > contrast * np.abs(ref))
@@ -101,3 +145,100 @@ def find_spikes(flux: np.ndarray, var: np.ndarray, good: np.ndarray | None = Non
             spikes[np.clip(idx - k, 0, n - 1)] = True
             spikes[np.clip(idx + k, 0, n - 1)] = True
     return spikes
+
+
+def _spike_runs(flux, var, bad, high, max_width, nsigma, contrast) -> np.ndarray:
+    """The runs of ``high`` (per row) of at most ``max_width`` pixels that pass :func:`_steep`, all at once."""
+    rows, n = high.shape
+    edge = np.zeros((rows, 1), dtype=np.int8)
+    d = np.diff(np.concatenate([edge, high.astype(np.int8), edge], axis=1), axis=1)
+    r, a = np.nonzero(d == 1)
+    _, b = np.nonzero(d == -1)          # row-major order: the k-th stop closes the k-th start
+    out = np.zeros((rows, n), dtype=bool)
+    short = (b - a) <= max_width
+    r, a, b = r[short], a[short], b[short]
+    if r.size == 0:
+        return out
+    # the pixels just outside each run that exist and are good, and their maximum
+    left_ok = (a - 1 >= 0) & ~bad[r, np.maximum(a - 1, 0)]
+    right_ok = (b < n) & ~bad[r, np.minimum(b, n - 1)]
+    top = np.maximum(np.where(left_ok, flux[r, np.maximum(a - 1, 0)], -np.inf),
+                     np.where(right_ok, flux[r, np.minimum(b, n - 1)], -np.inf))
+    # minimum flux and maximum variance inside each run (at most max_width pixels)
+    j = a[:, None] + np.arange(max_width)[None, :]
+    inside = j < b[:, None]
+    jc = np.minimum(j, n - 1)
+    low = np.where(inside, flux[r[:, None], jc], np.inf).min(axis=1)
+    vmax = np.where(inside, var[r[:, None], jc], -np.inf).max(axis=1)
+    with np.errstate(invalid="ignore"):
+        steep = low - top > np.maximum(nsigma * np.sqrt(vmax), contrast * np.abs(top))
+    steep |= ~(left_ok | right_ok)        # no usable neighbour: nothing to compare with
+    for k in range(max_width):            # mark the accepted runs, pixel by pixel of their width
+        sel = steep & (a + k < b)
+        out[r[sel], a[sel] + k] = True
+    return out
+
+
+def find_spikes(flux: np.ndarray, var: np.ndarray, good: np.ndarray | None = None, *,
+                model: np.ndarray | None = None, max_width: int = 3, nsigma: float = 8.0,
+                contrast: float = 0.5, grow: int = 1, max_iter: int = 5) -> np.ndarray:
+    """Boolean array marking cosmic-ray / hot-pixel pixels (plus ``grow`` neighbours each side).
+
+    ``model`` is the expected flux in the same units as ``flux`` (e.g. the scaled, shifted
+    template); without it a running median of ``2 * max_width + 1`` good pixels is used and the
+    search is iterated.  Only runs of at most ``max_width`` pixels that are all more than
+    ``nsigma`` noise sigma and ``contrast`` times the model above the model, and by the same
+    margins above both pixels just outside the run, are flagged: wider or gentler excesses are
+    real spectrum (or a model mismatch), not spikes.
+
+    The arrays are 1-D (one spectrum) or 2-D (one order per row, each row searched on its own).
+    Vectorised over rows and runs; :func:`find_spikes_reference` is the plain form it must equal.
+    """
+    flux = np.asarray(flux, dtype=float)
+    one = flux.ndim == 1
+    flux = np.atleast_2d(flux)
+    var = np.atleast_2d(np.asarray(var, dtype=float))
+    base_bad = ~np.isfinite(flux) | ~np.isfinite(var) | (var <= 0)
+    if good is not None:
+        base_bad |= ~np.atleast_2d(np.asarray(good, dtype=bool))
+    spikes = np.zeros(flux.shape, dtype=bool)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        sig = nsigma * np.sqrt(var)
+    if model is None:
+        # The median of a window's good pixels is at least their minimum, so a pixel can only stand
+        # out of its running median if it stands out of the running minimum by the same margins.
+        # The minimum (over the good pixels at the start, a superset of those left later, and
+        # across row ends, a superset again) is cheap; the median is taken only where it can matter.
+        from scipy.ndimage import minimum_filter1d
+
+        low = minimum_filter1d(np.where(base_bad, np.inf, flux).ravel(), 2 * max_width + 1,
+                               mode="nearest").reshape(flux.shape)
+        with np.errstate(invalid="ignore"):
+            lift = flux - low
+            cand_r, cand_i = np.nonzero((lift > sig) & (lift > contrast * np.maximum(low, 0.0)) & ~base_bad)
+        x = np.pad(np.where(base_bad, np.nan, flux), ((0, 0), (max_width, max_width)), constant_values=np.nan)
+        cols = cand_i[:, None] + np.arange(2 * max_width + 1)[None, :]
+    for _ in range(max_iter if model is None else 1):
+        if model is None:
+            ref = np.full(flux.shape, np.nan)
+            if cand_r.size:
+                win = x[cand_r[:, None], cols]
+                hit = spikes[cand_r[:, None], np.clip(cols - max_width, 0, flux.shape[1] - 1)]
+                inside = (cols >= max_width) & (cols < flux.shape[1] + max_width)
+                ref[cand_r, cand_i] = _median_of_finite(np.where(hit & inside, np.nan, win))
+        else:
+            ref = np.atleast_2d(np.asarray(model, dtype=float))
+        with np.errstate(invalid="ignore", divide="ignore"):
+            excess = flux - ref
+            high = (excess > sig) & (excess > contrast * np.abs(ref)) & ~base_bad & np.isfinite(ref)
+        new = _spike_runs(flux, var, base_bad | spikes, high, max_width, nsigma, contrast)
+        if not (new & ~spikes).any():
+            break
+        spikes |= new
+    if grow > 0 and spikes.any():
+        grown = spikes.copy()
+        for k in range(1, grow + 1):
+            grown[:, :-k] |= spikes[:, k:]
+            grown[:, k:] |= spikes[:, :-k]
+        spikes = grown
+    return spikes[0] if one else spikes

@@ -159,7 +159,7 @@ def _prepare_block(orders: list[Order], degree: int) -> list[PreparedOrder | Non
     var = np.vstack([o.var for o in orders])
     # bad pixels grown by the reach of a reduction's interpolation, and cosmic-ray / hot-pixel
     # spikes against a running median (measure/badpixels.py, measure/outliers.py)
-    good = np.vstack([~bad_pixels(o.flux, o.var) & ~find_spikes(o.flux, o.var) for o in orders])
+    good = ~bad_pixels(flux, var) & ~find_spikes(flux, var)
     blaze = np.ones_like(flux)
     given = [k for k, o in enumerate(orders) if o.blaze is not None]
     if given:

@@ -6,6 +6,12 @@ finish and keeps at most ``max_in_flight`` tasks submitted ahead, so memory stay
 the batch size. The batch context (mask and settings) is sent to each worker once. Results are the
 same floating-point numbers whichever executor runs them: the task function is pure and
 deterministic.
+
+BLAS threads: the per-spectrum linear algebra is small, so a BLAS pool of several threads per
+process only competes with the other workers (over-subscription).  Each local worker limits its
+BLAS and OpenMP pools to one thread (threadpoolctl, in the worker process only), and the serial
+executor does the same for the length of the run and restores the previous limits afterwards:
+importing lineshift changes nothing in the host process.
 """
 
 from __future__ import annotations
@@ -16,10 +22,11 @@ from collections.abc import Iterator
 
 from lineshift.errors import ConfigError
 
-__all__ = ["run_tasks"]
+__all__ = ["default_workers", "run_tasks"]
 
 _WORKER_CTX = None
 _WORKER_FN = None
+_LIMITS = None
 
 #: How long to try reaching a Dask scheduler before giving up.
 CONNECT_TIMEOUT = "15s"
@@ -43,11 +50,28 @@ def _watch_parent(parent: int) -> None:
     threading.Thread(target=watch, name="lineshift-parent-watch", daemon=True).start()
 
 
+#: Spectra per worker below which starting processes costs more than it saves (spawning a worker and
+#: importing astropy takes ~1-2 s, a spectrum ~30-50 ms): the automatic worker count keeps to it.
+MIN_TASKS_PER_WORKER = 16
+
+
+def default_workers(n_tasks: int | None = None) -> int:
+    """The automatic number of local workers: every core (``os.cpu_count()``), but no more than
+    one per :data:`MIN_TASKS_PER_WORKER` tasks when the batch size is known (at least 1)."""
+    cores = os.cpu_count() or 1
+    if n_tasks is None:
+        return cores
+    return max(1, min(cores, n_tasks // MIN_TASKS_PER_WORKER))
+
+
 def _init_worker(fn, ctx, parent: int | None = None) -> None:
-    global _WORKER_CTX, _WORKER_FN
+    global _WORKER_CTX, _WORKER_FN, _LIMITS
     _WORKER_CTX = ctx
     _WORKER_FN = fn
     warnings.simplefilter("ignore")
+    from threadpoolctl import threadpool_limits
+
+    _LIMITS = threadpool_limits(limits=1)   # this worker process only; kept for its lifetime
     if parent is not None:
         _watch_parent(parent)
 
@@ -57,8 +81,11 @@ def _run_in_worker(task):
 
 
 def _serial(fn, tasks, ctx) -> Iterator:
-    for t in tasks:
-        yield t, fn(t, ctx)
+    from threadpoolctl import threadpool_limits
+
+    with threadpool_limits(limits=1):   # restored when the run ends or stops
+        for t in tasks:
+            yield t, fn(t, ctx)
 
 
 def _processes(fn, tasks, ctx, workers: int, limit: int) -> Iterator:
@@ -134,7 +161,7 @@ def _dask(fn, tasks, ctx, address: str, limit: int) -> Iterator:
         client.close()
 
 
-def run_tasks(fn, tasks, ctx, *, workers: int = 1, scheduler: str | None = None,
+def run_tasks(fn, tasks, ctx, *, workers: int | None = 1, scheduler: str | None = None,
               max_in_flight: int | None = None) -> Iterator:
     """Run ``fn(task, ctx)`` for every task and yield (task, row) in completion order.
 
@@ -142,8 +169,8 @@ def run_tasks(fn, tasks, ctx, *, workers: int = 1, scheduler: str | None = None,
     ----------
     fn : callable
         A module-level (picklable) function of ``(task, ctx)``.
-    workers : int
-        Local processes (1: this process).  Ignored with ``scheduler``.
+    workers : int or None
+        Local processes (1: this process; None: :func:`default_workers`).  Ignored with ``scheduler``.
     scheduler : str, optional
         Address of a running Dask distributed scheduler, e.g. ``tcp://127.0.0.1:8786``.  A task
         whose result the cluster cannot deliver (its worker died, the connection closed) gets
@@ -153,6 +180,8 @@ def run_tasks(fn, tasks, ctx, *, workers: int = 1, scheduler: str | None = None,
     """
     if scheduler:
         return _dask(fn, tasks, ctx, scheduler, max_in_flight or 64)
+    if workers is None:
+        workers = default_workers(len(tasks) if hasattr(tasks, "__len__") else None)
     if workers <= 1:
         return _serial(fn, tasks, ctx)
     return _processes(fn, tasks, ctx, workers, max_in_flight or 4 * workers)

@@ -36,8 +36,9 @@ from lineshift.io.table import COLUMNS, EXTRA_COLUMNS, SB2_COLUMNS, printable
 from lineshift.measure.mask_engine import SearchSettings, measure_mask
 from lineshift.measure.prepare import prepare_spectrum, reject_telluric_lines
 from lineshift.model import C_MS, LineMask, Observation
+from lineshift.run import reuse
 from lineshift.run.config import check_settings
-from lineshift.run.executors import run_tasks
+from lineshift.run.executors import default_workers, run_tasks
 
 __all__ = ["COLUMNS", "MeasureSettings", "Overrides", "expand_inputs", "measure_files"]
 
@@ -217,18 +218,46 @@ def cluster_failure(row: dict) -> bool:
     return row.get("status") in ("unreadable", "internal error", "cluster error")
 
 
-def survey(paths: list[str], settings: MeasureSettings) -> list[Observation | LineshiftError]:
-    """Phase 1: the observation record of every input (or the error that prevents reading it)."""
-    out: list = []
-    for path in paths:
-        try:
-            out.append(settings.overrides.apply(read_observation(path, medium=settings.medium,
-                                                                       flux_time_key=settings.flux_time_key)))
-        except LineshiftError as exc:
-            exc.path = exc.path or path
-            out.append(exc)
-        except (MemoryError, UnicodeError, OSError) as exc:
-            out.append(_failure(exc, path))
+def _survey_task(task: tuple, settings: MeasureSettings):
+    """The observation record of one input, or the error that prevents reading it (picklable).
+
+    ``task`` is ``(index, path)``, or ``(index, path, True)`` to return ``(record, content hash)``
+    for the results store (the hash is "" when the record is an error)."""
+    path = task[1]
+    try:
+        obs = settings.overrides.apply(read_observation(path, medium=settings.medium,
+                                                                 flux_time_key=settings.flux_time_key))
+    except LineshiftError as exc:
+        exc.path = exc.path or path
+        obs = exc
+    except (MemoryError, UnicodeError, OSError) as exc:
+        obs = _failure(exc, path)
+    if len(task) < 3 or not task[2]:
+        return obs
+    if not isinstance(obs, Observation):
+        return obs, ""
+    from lineshift.run.store import content_hash
+
+    try:
+        return obs, content_hash(path)
+    except OSError as exc:
+        return SpectrumFormatError(f"cannot be read ({exc.strerror or exc})", path=path), ""
+
+
+def survey(paths: list[str], settings: MeasureSettings, *, workers: int | None = 1, hashes: bool = False
+           ) -> list:
+    """Phase 1: the observation record of every input (or the error that prevents reading it).
+
+    ``workers`` as in :func:`measure_files` (reading and parsing every header costs a few ms per file,
+    so a large batch surveys on all cores); the result is the same list whichever runs it.  With
+    ``hashes`` each item is ``(record, content hash)`` (for the results store; "" after an error)."""
+    tasks = [(i, p, True) if hashes else (i, p) for i, p in enumerate(paths)]
+    n = default_workers(len(paths)) if workers is None else workers
+    if n <= 1:
+        return [_survey_task(task, settings) for task in tasks]
+    out: list = [None] * len(paths)
+    for task, obs in run_tasks(_survey_task, tasks, settings, workers=n):
+        out[task[0]] = obs
     return out
 
 
@@ -276,6 +305,15 @@ def _note_rejected(row: dict, n: int) -> dict:
     return row
 
 
+def _load_prepared(path: str, s: MeasureSettings):
+    """(spectrum, prepared orders) of a file; kept for the batch in a template run (:mod:`.reuse`)."""
+    def make():
+        spectrum = load_spectrum(path, medium=s.medium, flux_time_key=s.flux_time_key)
+        return spectrum, prepare_spectrum(spectrum, degree=s.continuum_degree)
+
+    return reuse.prepared((path, s.medium, s.continuum_degree, s.flux_time_key), make)
+
+
 def measure_task(task: Task, ctx: Context) -> dict:
     """Phase 4 for one spectrum: a pure function of its task and the batch context.
 
@@ -285,9 +323,8 @@ def measure_task(task: Task, ctx: Context) -> dict:
     s = ctx.settings
     obs = None
     try:
-        spectrum = load_spectrum(task.path, medium=s.medium, flux_time_key=s.flux_time_key)
+        spectrum, orders = _load_prepared(task.path, s)
         obs = s.overrides.apply(spectrum.obs)
-        orders = prepare_spectrum(spectrum, degree=s.continuum_degree)
         lo, hi = spectrum.wavelength_range
         inside = (ctx.mask.wavelength > lo) & (ctx.mask.wavelength < hi)
         if not inside.any():
@@ -335,6 +372,8 @@ def measure_task(task: Task, ctx: Context) -> dict:
     _note_rejected(row, n_rej)
     if s.keep_ccf:
         row["_ccf"] = (res.velocity, res.ccf, res.model, res.bisector)
+    if s.method == "template":   # first pass: what the co-add needs of this file, so it is not read again
+        row["_span"] = _span(spectrum)
     return _with_activity(row, spectrum, s)
 
 
@@ -350,6 +389,13 @@ def _lost_on_cluster(task: Task, ctx: Context, exc: BaseException) -> dict:
 
 
 measure_task.on_lost = _lost_on_cluster  # used by run/executors.py on a Dask cluster
+
+
+def _span(spectrum) -> tuple[float, float, float]:
+    """(lowest, highest wavelength, median pixel width in m/s) of a spectrum, for the template grid."""
+    a, b = spectrum.wavelength_range
+    step = float(np.median(np.concatenate([C_MS * np.diff(o.wave) / o.wave[1:] for o in spectrum.orders])))
+    return a, b, step
 
 
 def _with_activity(row: dict, spectrum, s: MeasureSettings) -> dict:
@@ -427,7 +473,7 @@ def _lines_row(task: Task, obs: Observation, orders, ctx: Context) -> dict:
 
 
 def _fit_against(tasks: list[Task], first: dict[int, dict], rv: dict[int, float], ctx: Context, state,
-                 in_template: dict[int, float], *, workers: int, scheduler) -> dict[int, dict]:
+                 in_template: dict[int, float], *, workers: int | None, scheduler) -> dict[int, dict]:
     """Fit each spectrum against the template ``state``, starting from velocity ``rv`` (m/s); a spectrum that
     is part of the template (``in_template``: its co-adding factor) is fitted against the template without
     itself.  Line-shape columns come from the mask pass (``first``)."""
@@ -444,7 +490,7 @@ def _fit_against(tasks: list[Task], first: dict[int, dict], rv: dict[int, float]
     return new
 
 
-def _run_template(tasks: list[Task], first: dict[int, dict], ctx: Context, *, workers: int, scheduler,
+def _run_template(tasks: list[Task], first: dict[int, dict], ctx: Context, *, workers: int | None, scheduler,
                   max_iter: int = 3):
     """The template engine's passes: co-add with the current velocities, fit every spectrum against
     the template without itself, repeat until the velocities move by less than a tenth of their errors.
@@ -459,19 +505,16 @@ def _run_template(tasks: list[Task], first: dict[int, dict], ctx: Context, *, wo
     ranges: dict[int, tuple[float, float, float]] = {}   # per file, once: they do not change between passes
     for t in tasks:
         if rows[t.index].get("status") == "ok":
-            sp = load_spectrum(t.path, medium=ctx.settings.medium,
-                                   flux_time_key=ctx.settings.flux_time_key)
-            a, b = sp.wavelength_range
-            step = float(np.median(np.concatenate([C_MS * np.diff(o.wave) / o.wave[1:] for o in sp.orders])))
-            ranges[t.index] = (a, b, step)
+            span = rows[t.index].get("_span")
+            ranges[t.index] = tuple(span) if span is not None else _span(
+                load_spectrum(t.path, medium=ctx.settings.medium, flux_time_key=ctx.settings.flux_time_key))
     continua = None   # every spectrum of an order is normalised by one spectrum's continuum (coadd.py)
     for _ in range(max_iter):
         use = [t for t in tasks if rows[t.index].get("status") == "ok" and t.index in ranges]
         if len(use) < 2:
             raise MeasurementError("the template engine needs at least two spectra with a first-pass velocity")
         if continua is None:
-            continua = {o.index: o.continuum for o in prepare_spectrum(
-                load_spectrum(use[0].path, medium=ctx.settings.medium), degree=ctx.settings.continuum_degree)}
+            continua = {o.index: o.continuum for o in _load_prepared(use[0].path, ctx.settings)[1]}
         factor = {t.index: (1 + t.berv / C_MS) / (1 + rows[t.index]["rv"] / C_MS) for t in use}
         lo = min(ranges[t.index][0] * factor[t.index] for t in use)
         hi = max(ranges[t.index][1] * factor[t.index] for t in use)
@@ -479,10 +522,7 @@ def _run_template(tasks: list[Task], first: dict[int, dict], ctx: Context, *, wo
         acc = TemplateAccumulator(log_grid(lo * (1 - 1e-4), hi * (1 + 1e-4), np.median(steps) / 2), bands=bands,
                                   per_order=True)
         for t in use:
-            acc.add(on_common_continuum(prepare_spectrum(load_spectrum(t.path, medium=ctx.settings.medium,
-                                                                        flux_time_key=ctx.settings.flux_time_key),
-                                                         degree=ctx.settings.continuum_degree), continua),
-                    factor[t.index])
+            acc.add(on_common_continuum(_load_prepared(t.path, ctx.settings)[1], continua), factor[t.index])
         fwhm = np.array([first[t.index].get("fwhm") or np.nan for t in use], float)   # mask-pass CCF widths
         fwhm = fwhm[np.isfinite(fwhm)]
         state = TemplateState.from_accumulator(acc, template_smoothing(float(np.median(fwhm)) if fwhm.size else 0.0),
@@ -575,7 +615,7 @@ class BatchReport:
     swaps: int = 0              # two components exchanged to keep each star's identity
 
 
-def measure_files(paths: list[str], mask: LineMask, settings: MeasureSettings, *, workers: int = 1,
+def measure_files(paths: list[str], mask: LineMask, settings: MeasureSettings, *, workers: int | None = None,
                   scheduler: str | None = None, store=None, rebuild_template: bool = False,
                   on_row: Callable[[dict], None] | None = None, report: BatchReport | None = None
                   ) -> list[dict]:
@@ -588,8 +628,9 @@ def measure_files(paths: list[str], mask: LineMask, settings: MeasureSettings, *
     mask : LineMask
         Rest-frame mask (vacuum).
     settings : MeasureSettings
-    workers : int
-        Local processes (1: in this process).
+    workers : int or None
+        Local processes (1: in this process; None, the default: every core, one process per 16
+        spectra at most, :func:`lineshift.run.executors.default_workers`).
     scheduler : str, optional
         Address of a Dask distributed scheduler to run the measurements on.
     store : ResultStore, optional
@@ -619,17 +660,11 @@ def measure_files(paths: list[str], mask: LineMask, settings: MeasureSettings, *
         if on_row is not None:
             on_row(row)
 
-    observations = survey(paths, settings)
-    hashes: list[str] = [""] * len(paths)
-    if store is not None:
-        from lineshift.run.store import content_hash
-
-        for i, o in enumerate(observations):
-            if isinstance(o, Observation):
-                try:
-                    hashes[i] = content_hash(paths[i])
-                except OSError as exc:
-                    observations[i] = SpectrumFormatError(f"cannot be read ({exc.strerror or exc})", path=paths[i])
+    surveyed = survey(paths, settings, workers=1 if scheduler else workers, hashes=store is not None)
+    if store is not None:   # content hashes read beside the headers (on the workers for a large batch)
+        observations, hashes = [o for o, _ in surveyed], [h for _, h in surveyed]
+    else:
+        observations, hashes = surveyed, [""] * len(paths)
     ok_idx = [i for i, o in enumerate(observations) if isinstance(o, Observation)]
     bary = barycentric_batch([observations[i] for i in ok_idx], target=settings.target,
                              ephemeris=settings.ephemeris)
@@ -681,8 +716,9 @@ def measure_files(paths: list[str], mask: LineMask, settings: MeasureSettings, *
                 report.skipped += 1
                 emit(t.index, row)
     if settings.method in CO_ADDED:
-        final = _template_rows(tasks, todo, ctx, store, stored_template, report, workers=workers,
-                               scheduler=scheduler)
+        with reuse.keeping():   # the passes read each file once (bounded; this process only)
+            final = _template_rows(tasks, todo, ctx, store, stored_template, report, workers=workers,
+                                   scheduler=scheduler)
         for t in todo:
             if store is not None and not (scheduler and cluster_failure(final[t.index])):
                 store.put(t.input_hash, report.settings_hash, final[t.index])

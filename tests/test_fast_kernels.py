@@ -1,0 +1,133 @@
+"""Each fast kernel against the plain, obvious form kept beside it in the code.
+
+The plain forms use only the textbook operations (a loop over runs, ``np.nanmedian`` over every
+window, one spectrum at a time); the fast ones must give the same pixels exactly.
+"""
+
+import numpy as np
+import pytest
+
+from lineshift.measure.badpixels import bad_pixels
+from lineshift.measure.outliers import find_spikes, find_spikes_reference
+
+
+def _orders(rng, rows=6, n=1500):
+    """Lined spectra with photon noise, cosmic rays of 1-5 pixels, NaN runs and bad edges (invented)."""
+    x = np.arange(n, dtype=float)
+    model = np.full((rows, n), 3e4)
+    for r in range(rows):
+        for c, d in zip(rng.uniform(0, n, 40), rng.uniform(0.1, 0.9, 40), strict=True):
+            model[r] *= 1 - d * np.exp(-0.5 * ((x - c) / 1.7) ** 2)
+    flux = rng.normal(model, np.sqrt(model))
+    var = model.copy()
+    for r in range(rows):
+        for start in rng.integers(0, n - 5, 25):      # spikes, some touching each other or the edges
+            w = rng.integers(1, 6)
+            flux[r, start:start + w] += rng.uniform(2, 40) * model[r, start:start + w]
+        flux[r, rng.integers(0, n, 4)] = np.nan
+        var[r, rng.integers(0, n, 3)] = 0.0
+    flux[0, :3] += 5e5                                   # a spike at the very first pixels
+    flux[1, -2:] += 5e5                                  # and at the last
+    flux[2, 100:140] = np.nan                            # a long gap
+    return flux, var, model
+
+
+@pytest.mark.parametrize("seed", [1, 2, 3])
+def test_find_spikes_vectorised_equals_the_plain_loop(seed):
+    rng = np.random.default_rng(seed)
+    flux, var, model = _orders(rng)
+    good = rng.random(flux.shape) > 0.01
+    for kwargs in ({}, {"good": good}, {"model": model}, {"max_width": 1, "grow": 2},
+                   {"nsigma": 3.0, "contrast": 0.05, "max_iter": 2}):
+        fast = find_spikes(flux, var, **{k: v for k, v in kwargs.items()})
+        for r in range(flux.shape[0]):
+            row = {k: (v[r] if isinstance(v, np.ndarray) else v) for k, v in kwargs.items()}
+            plain = find_spikes_reference(flux[r], var[r], **row)
+            np.testing.assert_array_equal(fast[r], plain, err_msg=f"row {r}, {sorted(kwargs)}")
+            np.testing.assert_array_equal(find_spikes(flux[r], var[r], **row), plain)
+    assert fast.any()   # the comparison saw spikes
+
+
+def test_bad_pixels_on_a_block_equals_each_row():
+    rng = np.random.default_rng(4)
+    flux = rng.normal(100.0, 30.0, (5, 300))
+    flux[rng.random(flux.shape) < 0.01] = np.nan
+    var = np.abs(rng.normal(100.0, 50.0, (5, 300)))
+    block = bad_pixels(flux, var, saturation=180.0, grow=2)
+    # the obvious definition: a pixel is bad when any raw-bad pixel of its row lies within 2 of it
+    raw = ~np.isfinite(flux) | (np.nan_to_num(flux) <= 0) | (var <= 0) | (np.nan_to_num(flux) >= 180.0)
+    for r in range(5):
+        plain = [raw[r, max(i - 2, 0):i + 3].any() for i in range(300)]
+        np.testing.assert_array_equal(block[r], plain)
+        np.testing.assert_array_equal(bad_pixels(flux[r], var[r], saturation=180.0, grow=2), plain)
+    # the growth does not leak from the end of one row into the next
+    f = np.full((2, 10), 5.0)
+    f[0, -1] = np.nan
+    assert not bad_pixels(f, grow=2)[1].any()
+
+
+def _prepared(seed, n=400, lam0=5000.0, index=0):
+    from lineshift.measure.prepare import PreparedOrder, pixel_edges
+
+    rng = np.random.default_rng(seed)
+    wave = lam0 + 0.02 * np.arange(n) + 1e-6 * np.arange(n) ** 2      # non-uniform dispersion
+    flux = 1.0 - 0.3 * np.exp(-0.5 * ((wave - wave[n // 2]) / 0.05) ** 2) + 0.01 * rng.normal(size=n)
+    var = rng.uniform(0.5e-4, 2e-4, n)
+    weight = 1.0 + 0.5 * np.linspace(0, 1, n)
+    return PreparedOrder(wave, pixel_edges(wave), flux, var, weight, np.ones(n, bool), index)
+
+
+@pytest.mark.parametrize("width", [300.0, 1000.0, 2000.0])   # 1000/2000: whole grid steps (shared edges)
+def test_error_propagation_matrix_product_equals_the_row_by_row_adjoint(width):
+    from lineshift.measure.ccf import CorrelationData, correlate
+    from lineshift.model import LineMask
+
+    orders = [_prepared(1), _prepared(2, lam0=5008.0, index=1)]
+    mask = LineMask(np.array([5001.0, 5002.5, 5003.0, 5009.2, 5011.9, 5013.0]),
+                    np.array([0.5, 1.0, 0.3, 0.8, 0.6, 0.9]))
+    v = np.linspace(-10e3, 10e3, 21)
+    data = correlate(orders, mask, v, width)
+    sens = np.random.default_rng(7).normal(size=(5, v.size))
+    for t in data.terms:
+        fast = CorrelationData._term_variance(t, sens)
+        plain = CorrelationData._term_variance_reference(t, sens)
+        np.testing.assert_allclose(fast, plain, rtol=1e-10)
+
+
+def test_bspline_written_out_equals_the_basis_product():
+    from scipy.interpolate import make_interp_spline
+    from scipy.ndimage import spline_filter1d
+
+    from lineshift.measure.coadd import bspline, bspline_reference
+
+    rng = np.random.default_rng(9)
+    values = rng.normal(size=200)
+    coef = spline_filter1d(values, order=3, mode="mirror")
+    x = rng.uniform(1.0, 196.0, 5000)
+    fast, plain = bspline(coef, x), bspline_reference(coef, x)
+    for a, b in zip(fast, plain, strict=True):
+        np.testing.assert_allclose(a, b, rtol=1e-12, atol=1e-12)
+    # outside reference: scipy's interpolating cubic spline through the same values agrees away
+    # from the ends (the boundary conditions differ there)
+    inner = (x > 20) & (x < 180)
+    sp = make_interp_spline(np.arange(200.0), values, k=3)
+    np.testing.assert_allclose(fast[0][inner], sp(x[inner]), atol=1e-6)
+
+
+def test_template_run_with_kept_spectra_equals_reading_each_time(sample_set, monkeypatch):
+    import os
+
+    from lineshift.io.linelists import read_mask
+    from lineshift.run import reuse
+    from lineshift.run.pipeline import MeasureSettings, measure_files
+
+    directory, mask, rows = sample_set
+    paths = [os.path.join(directory, r["file"]) for r in rows if r["layout"] == "multi-order"]
+    settings = MeasureSettings(method="template", telluric_bands=False)
+    kept = measure_files(paths, read_mask(mask), settings, workers=1)
+    monkeypatch.setattr(reuse, "BUDGET_BYTES", 0)           # nothing kept: every pass reads the files
+    read = measure_files(paths, read_mask(mask), settings, workers=1)
+    assert [r["status"] for r in kept] == ["ok"] * len(paths)
+    for a, b in zip(kept, read, strict=True):
+        assert {k: v for k, v in a.items() if k != "_span"} == {k: v for k, v in b.items() if k != "_span"}
+    assert reuse._KEPT is None                               # dropped at the end of the batch
