@@ -34,6 +34,7 @@ def test_each_hostile_input_has_a_specific_reason(kind, sample_set, tmp_path, ca
     from lineshift.io import loaders
 
     monkeypatch.setattr(loaders, "MAX_INPUT_BYTES", BOMB_LIMIT)
+    monkeypatch.setenv("LINESHIFT_MAX_INPUT_BYTES", str(BOMB_LIMIT))   # the same limit in spawned workers
     good, mask = _good_1d(sample_set)
     d = tmp_path / "in"
     d.mkdir()
@@ -122,6 +123,7 @@ def test_every_hostile_kind_in_one_batch_leaves_the_good_rows_identical(sample_s
     from lineshift.io import loaders
 
     monkeypatch.setattr(loaders, "MAX_INPUT_BYTES", BOMB_LIMIT)
+    monkeypatch.setenv("LINESHIFT_MAX_INPUT_BYTES", str(BOMB_LIMIT))   # the same limit in spawned workers
     directory, mask, rows = sample_set
     good1d, _ = _good_1d(sample_set)
     clean, mixed = tmp_path / "clean", tmp_path / "mixed"
