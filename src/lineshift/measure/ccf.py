@@ -79,6 +79,8 @@ class _OrderTerms:
     num: np.ndarray       # (m,)
     den: np.ndarray       # (m,)
     line_wavelengths: np.ndarray = None  # (k,) rest wavelengths of the lines
+    line_num: np.ndarray | None = None   # (k, m) each line's own box sums of q f (``keep_lines``)
+    line_den: np.ndarray | None = None   # (k, m) and of q
 
 
 def _edge_layout(velocity: np.ndarray, box_width: float) -> tuple[np.ndarray, int]:
@@ -101,6 +103,7 @@ class CorrelationData:
 
     velocity: np.ndarray
     terms: list[_OrderTerms]
+    n_cleared: int = 0    # lines left out because bad pixels meet their boxes (``clear_of_bad``)
 
     @property
     def numerator(self) -> np.ndarray:
@@ -199,7 +202,8 @@ def select_lines(order: PreparedOrder, mask: LineMask, v_lo: float, v_hi: float,
 
 
 def correlate(orders: list[PreparedOrder], mask: LineMask, velocity: np.ndarray, box_width: float,
-              *, lines: np.ndarray | None = None, clear_of_bad: bool = False) -> CorrelationData:
+              *, lines: np.ndarray | None = None, clear_of_bad: bool = False,
+              keep_lines: bool = False) -> CorrelationData:
     """CCF of prepared orders with a mask on a velocity grid (m/s, observatory frame).
 
     Parameters
@@ -215,16 +219,23 @@ def correlate(orders: list[PreparedOrder], mask: LineMask, velocity: np.ndarray,
     clear_of_bad : bool
         Use only lines whose boxes meet no bad pixel over the whole grid (:func:`select_lines`); for
         the fine grid the velocity is measured on (a coarse search only locates the dip).
+    keep_lines : bool
+        Keep each line's own box sums (``line_num``, ``line_den`` of each order's terms), the
+        per-line CCFs that :mod:`.recentre` measures line offsets on.
     """
     velocity = np.asarray(velocity, dtype=float)
     m = velocity.size
     edge_v, r = _edge_layout(velocity, box_width)
     lam_lines = mask.wavelength
     terms = []
+    n_cleared = 0
     for order in orders:
         idx = select_lines(order, mask, velocity[0], velocity[-1], box_width, clear_of_bad=clear_of_bad)
         if lines is not None:
             idx = np.intersect1d(idx, lines, assume_unique=True)
+        if keep_lines and clear_of_bad:
+            plain = select_lines(order, mask, velocity[0], velocity[-1], box_width)
+            n_cleared += plain.size - (idx.size if lines is None else np.intersect1d(plain, lines).size)
         if idx.size == 0:
             continue
         # line-major layout (lines x edges): consecutive queries are neighbouring pixels, which
@@ -232,17 +243,18 @@ def correlate(orders: list[PreparedOrder], mask: LineMask, velocity: np.ndarray,
         x = _pixel_coordinate(order.edges, lam_lines[idx][:, None] * (1 + edge_v[None, :] / C_MS))
         w = mask.weight[idx]
         g_num = order.flux * order.weight
-        sums = []
+        sums, boxes = [], []
         for g in (g_num, order.weight):
             S = np.concatenate(([0.0], np.cumsum(g)))
             c = _cum(S, g, x)
             box = c[:, r:] - c[:, :m] if r else c[:, m:] - c[:, :m]
             sums.append(w @ box)
+            boxes.append(box if keep_lines else None)
         num, den = sums
         if not np.all(den > 0):
             continue
-        terms.append(_OrderTerms(order, w, idx, x, r, num, den, lam_lines[idx]))
-    return CorrelationData(velocity, terms)
+        terms.append(_OrderTerms(order, w, idx, x, r, num, den, lam_lines[idx], *boxes))
+    return CorrelationData(velocity, terms, n_cleared)
 
 
 def reference_ccf(orders: list[PreparedOrder], mask: LineMask, velocity: np.ndarray,

@@ -18,6 +18,7 @@ from lineshift.measure.ccf import correlate
 from lineshift.measure.peak import fit_gaussian
 from lineshift.measure.prepare import PreparedOrder
 from lineshift.measure.profile import bisector, order_velocities
+from lineshift.measure.recentre import line_moments
 from lineshift.model import C_MS, CCFResult, LineMask
 
 __all__ = ["SearchSettings", "measure_mask"]
@@ -119,7 +120,7 @@ def _coarse(orders, mask, settings, berv, dv_pix, path):
 
 
 def measure_mask(orders: list[PreparedOrder], mask: LineMask, settings: SearchSettings, *,
-                 berv: float = 0.0, path: str | None = None) -> CCFResult:
+                 berv: float = 0.0, path: str | None = None, moments: list | None = None) -> CCFResult:
     """Velocity of one prepared spectrum against a line mask (observatory frame).
 
     Parameters
@@ -130,6 +131,9 @@ def measure_mask(orders: list[PreparedOrder], mask: LineMask, settings: SearchSe
     settings : SearchSettings
     berv : float, m/s
         Barycentric correction of this spectrum; only used to place the (barycentric) search range.
+    moments : list, optional
+        If given, the per-line offset coefficients of the final fine CCF are appended to it
+        (:func:`.recentre.line_moments`), for a batch to recentre its mask on.
 
     Returns
     -------
@@ -151,7 +155,7 @@ def measure_mask(orders: list[PreparedOrder], mask: LineMask, settings: SearchSe
         half = max(settings.window_fwhm * fwhm, 8 * step)
         n = int(np.ceil(half / step))
         grid = centre + step * np.arange(-n, n + 1)
-        data = correlate(orders, mask, grid, box, clear_of_bad=True)
+        data = correlate(orders, mask, grid, box, clear_of_bad=True, keep_lines=moments is not None)
         if not data.terms:
             raise MeasurementError("no mask line falls on the spectrum", path=path,
                                    status="outside mask range")
@@ -160,6 +164,8 @@ def measure_mask(orders: list[PreparedOrder], mask: LineMask, settings: SearchSe
         centre, fwhm = fit.mu, fit.fwhm
         if moved < 0.25 * half:
             break
+    if moments is not None:
+        moments.append(line_moments(data, fit.mu, fit.sigma))
     sens = fit.sensitivities()
     bis = bisector(grid, data.ccf, fit.c0, fit.amp)
     sens["bis"] = bis.sensitivity + bis.d_c0 * fit.gain[0] + bis.d_amp * fit.gain[1]
