@@ -34,7 +34,7 @@ def test_line_offset_recovered():
     o = _order(true, [0.5, 0.5, 0.5])
     grid = np.arange(-15000.0, 15001.0, 200.0)
     data = correlate([o], mask, grid, 200.0, keep_lines=True)
-    m = line_moments(data, 0.0, SIG)
+    m = line_moments(data, 0.0, SIG, np.zeros(grid.size))
     off = m.e / m.b
     assert abs(off[1] - d) < 0.05 * d and np.all(np.abs(off[[0, 2]]) < 0.05 * d)
 
@@ -61,3 +61,18 @@ def test_lost_line_no_longer_moves_velocity():
     after = measure_mask([hit], rmask, st).rv - measure_mask([clean], rmask, st).rv
     assert abs(before) > 5.0
     assert abs(after) < 0.2 * abs(before)
+
+
+def test_clear_window_only_near_the_centre():
+    # a bad pixel ~6 km/s from line 1 meets its box only far out on a +-10 km/s grid: the whole-grid
+    # rule drops the line, the +-3 km/s core rule keeps it (interval arithmetic, from memory)
+    from lineshift.measure.ccf import select_lines
+
+    wave = 5000.0 * np.exp(np.arange(1000) / 250_000.0)      # 1.2 km/s pixels
+    good = np.ones(1000, dtype=bool)
+    good[505] = False
+    o = PreparedOrder(wave, pixel_edges(wave), np.ones(1000), np.ones(1000), good.astype(float), good, 0)
+    mask = LineMask(np.array([wave[300], wave[500], wave[700]]), np.ones(3))
+    assert list(select_lines(o, mask, -10e3, 10e3, 1000.0, clear_of_bad=True)) == [0, 2]
+    assert list(select_lines(o, mask, -10e3, 10e3, 1000.0, clear_of_bad=(-3e3, 3e3))) == [0, 1, 2]
+    assert list(select_lines(o, mask, -10e3, 10e3, 1000.0, clear_of_bad=(-3e3, 8e3))) == [0, 2]

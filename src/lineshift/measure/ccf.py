@@ -178,13 +178,15 @@ class CorrelationData:
 
 
 def select_lines(order: PreparedOrder, mask: LineMask, v_lo: float, v_hi: float,
-                 box_width: float, *, clear_of_bad: bool = False) -> np.ndarray:
+                 box_width: float, *, clear_of_bad: bool | tuple[float, float] = False) -> np.ndarray:
     """Indices of mask lines whose box stays inside the order's good pixels for all v in [v_lo, v_hi].
 
     With ``clear_of_bad`` a line is also dropped when its box meets a bad pixel *inside* the order
     anywhere on the grid: a pixel of zero weight under a box removes part of that line at some
     velocities and not at others, which reshapes the CCF around the line and moves its centre
     (a missing core pixel near the dip is the worst case).  The fine grid is narrow, so few lines go.
+    ``clear_of_bad`` may be a velocity interval (lo, hi) inside the grid: only boxes placed within it
+    must be clear (the core of the dip, where the fitted centre responds to the CCF).
     """
     good = np.flatnonzero(order.good)
     lam_min = order.edges[good[0]]
@@ -193,7 +195,10 @@ def select_lines(order: PreparedOrder, mask: LineMask, v_lo: float, v_hi: float,
     lo = mask.wavelength * (1 + (v_lo - half) / C_MS)
     hi = mask.wavelength * (1 + (v_hi + half) / C_MS)
     inside = (lo >= lam_min) & (hi <= lam_max)
-    if clear_of_bad and not order.good[good[0]: good[-1] + 1].all():
+    if isinstance(clear_of_bad, tuple):
+        lo = mask.wavelength * (1 + (clear_of_bad[0] - half) / C_MS)
+        hi = mask.wavelength * (1 + (clear_of_bad[1] + half) / C_MS)
+    if clear_of_bad is not False and not order.good[good[0]: good[-1] + 1].all():
         nbad = np.concatenate(([0], np.cumsum(~order.good)))
         pa = np.clip(np.searchsorted(order.edges, lo, side="right") - 1, 0, order.good.size)
         pb = np.clip(np.searchsorted(order.edges, hi, side="left"), 0, order.good.size)
@@ -216,9 +221,10 @@ def correlate(orders: list[PreparedOrder], mask: LineMask, velocity: np.ndarray,
         Full width of each mask box in velocity.
     lines : ndarray of int, optional
         Restrict to these mask lines (e.g. the strongest, for a coarse search).
-    clear_of_bad : bool
-        Use only lines whose boxes meet no bad pixel over the whole grid (:func:`select_lines`); for
-        the fine grid the velocity is measured on (a coarse search only locates the dip).
+    clear_of_bad : bool or (lo, hi)
+        Use only lines whose boxes meet no bad pixel over the whole grid, or over the velocities
+        lo..hi (:func:`select_lines`); for the fine grid the velocity is measured on (a coarse
+        search only locates the dip).
     keep_lines : bool
         Keep each line's own box sums (``line_num``, ``line_den`` of each order's terms), the
         per-line CCFs that :mod:`.recentre` measures line offsets on.

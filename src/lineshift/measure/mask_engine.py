@@ -2,8 +2,9 @@
 
 Search: a coarse CCF over the whole velocity range with the strongest lines (box width equal to the
 coarse step, so no line can fall between samples), the dip located and its width estimated, then a
-fine CCF over +-``window_fwhm`` FWHM around it with all usable lines, recentred once if the fitted
-centre moved.  All velocities are in the observatory frame inside this module.
+fine CCF over +-``window_fwhm`` FWHM around it with all usable lines (those whose boxes meet no
+bad pixel within ``CLEAR_FWHM`` of the centre), recentred once if the fitted centre moved.  All velocities are in the observatory frame inside this
+module.
 """
 
 from __future__ import annotations
@@ -53,6 +54,10 @@ class SearchSettings:
 
 
 DEFAULT_RANGE = (-300_000.0, 300_000.0)
+#: Lines of the fine CCF must be clear of bad pixels within this many FWHM of the dip's centre; farther
+#: out (the CCF's continuum, where the fitted centre hardly responds) a bad pixel only leaves the line out
+#: of the velocities its box covers it at.  Fewer lines lost to a cosmic ray than clearing the whole grid.
+CLEAR_FWHM = 2.0
 
 
 def pixel_velocity_width(orders: list[PreparedOrder]) -> float:
@@ -155,7 +160,8 @@ def measure_mask(orders: list[PreparedOrder], mask: LineMask, settings: SearchSe
         half = max(settings.window_fwhm * fwhm, 8 * step)
         n = int(np.ceil(half / step))
         grid = centre + step * np.arange(-n, n + 1)
-        data = correlate(orders, mask, grid, box, clear_of_bad=True, keep_lines=moments is not None)
+        clear = (centre - CLEAR_FWHM * fwhm, centre + CLEAR_FWHM * fwhm)
+        data = correlate(orders, mask, grid, box, clear_of_bad=clear, keep_lines=moments is not None)
         if not data.terms:
             raise MeasurementError("no mask line falls on the spectrum", path=path,
                                    status="outside mask range")
@@ -165,7 +171,7 @@ def measure_mask(orders: list[PreparedOrder], mask: LineMask, settings: SearchSe
         if moved < 0.25 * half:
             break
     if moments is not None:
-        moments.append(line_moments(data, fit.mu, fit.sigma))
+        moments.append(line_moments(data, fit.mu, fit.sigma, fit.gain[2]))
     sens = fit.sensitivities()
     bis = bisector(grid, data.ccf, fit.c0, fit.amp)
     sens["bis"] = bis.sensitivity + bis.d_c0 * fit.gain[0] + bis.d_amp * fit.gain[1]

@@ -41,14 +41,16 @@ class LineMoments:
     lines: np.ndarray
     b: np.ndarray
     e: np.ndarray
-    a: np.ndarray    # the line's share of the CCF denominator (mask weight x photon weight under its box)
+    a: np.ndarray    # d(fitted centre) / d(shift of this line): its pull on the summed CCF's centre
     sigma: float
     n_cleared: int = 0   # lines this spectrum left out because bad pixels meet their boxes
 
 
-def line_moments(data: CorrelationData, mu: float, sigma: float) -> LineMoments:
+def line_moments(data: CorrelationData, mu: float, sigma: float, gain_mu: np.ndarray) -> LineMoments:
     """Per-line coefficients of ``[1, g, dg/dmu]`` on ``data`` (a :func:`~.ccf.correlate` made with
-    ``keep_lines``), for the Gaussian of centre ``mu`` and width ``sigma`` fitted to its sum.
+    ``keep_lines``), for the Gaussian of centre ``mu`` and width ``sigma`` fitted to its sum, and
+    each line's pull on that fit's centre: shifting line l by d changes the CCF by
+    ``-w_l dN_l/dv d / D`` and the centre by ``gain_mu`` times that (the fit's linear response).
 
     A line that appears in two overlapping orders gets the sum of both coefficients.
     """
@@ -59,6 +61,7 @@ def line_moments(data: CorrelationData, mu: float, sigma: float) -> LineMoments:
     X = np.column_stack((np.ones_like(v), g, g * z / sigma, g * z * z / sigma))
     P = X @ np.linalg.inv(X.T @ X)          # (m, 4): least-squares coefficients = c @ P
     idx, b, e, a = [], [], [], []
+    den = data.denominator
     for t in data.terms:
         if t.line_num is None:
             raise ValueError("line_moments needs a correlation made with keep_lines=True")
@@ -69,7 +72,8 @@ def line_moments(data: CorrelationData, mu: float, sigma: float) -> LineMoments:
         idx.append(t.lines[ok])
         b.append(coef[ok, 1])
         e.append(coef[ok, 2])
-        a.append((t.weights[:, None] * t.line_den)[ok].mean(axis=1))
+        slope = np.gradient(t.line_num, v, axis=1) * t.weights[:, None] / den
+        a.append(-(slope @ gain_mu)[ok])
     if not idx:
         return LineMoments(np.zeros(0, dtype=np.intp), np.zeros(0), np.zeros(0), np.zeros(0), float(sigma),
                            data.n_cleared)
@@ -92,7 +96,7 @@ def batch_offsets(moments: list[LineMoments], n_lines: int) -> tuple[np.ndarray,
     for m in moments:
         np.add.at(B, m.lines, m.b)
         np.add.at(E, m.lines, m.e)
-        np.add.at(W, m.lines, -m.a * m.b)
+        np.add.at(W, m.lines, m.a)
     measured = np.zeros(n_lines, dtype=bool)
     for m in moments:
         measured[m.lines] = True
@@ -100,10 +104,10 @@ def batch_offsets(moments: list[LineMoments], n_lines: int) -> tuple[np.ndarray,
     with np.errstate(invalid="ignore", divide="ignore"):
         off = np.where(measured & (B < 0), E / B, 0.0)
     usable = ~measured | ((B < 0) & (np.abs(off) < 0.5 * sigma))
-    # the summed CCF's centre weighs each line by its share of the dip (weight x depth): offsets are
-    # taken relative to that weighted mean, so recentring leaves the batch's zero point where it was
-    use = measured & usable
-    if use.any() and W[use].sum() > 0:
+    # offsets are taken relative to their mean weighted by each line's pull on the fitted centre, over
+    # every line with a dip (those dropped too), so recentring leaves the zero point where it was
+    use = measured & (B < 0)
+    if use.any() and W[use].sum() != 0:
         off = off - np.sum(W[use] * off[use]) / W[use].sum()
     return np.where(usable, off, 0.0), measured, usable
 

@@ -708,7 +708,7 @@ def measure_files(paths: list[str], mask: LineMask, settings: MeasureSettings, *
 #: Fewest spectra a batch measures line offsets on (measure/recentre.py).
 MIN_RECENTRE = 4
 #: Measurements against a recentred mask (each recentring on the residual offsets of the last).
-RECENTRE_PASSES = 1
+RECENTRE_PASSES = 2
 
 
 def _recentred_pass(done: list, ctx: Context, report: BatchReport, *, workers: int, scheduler) -> list:
@@ -717,6 +717,7 @@ def _recentred_pass(done: list, ctx: Context, report: BatchReport, *, workers: i
     from lineshift.measure.recentre import recentred_mask
 
     mask, notes = ctx.mask, []
+    first = {t.index: row for t, row in done}
     for it in range(RECENTRE_PASSES):
         moments = [row.pop("_line_moments") for _, row in done if row.get("_line_moments") is not None]
         # only where bad pixels made the line sets differ: clean batches are measured as before
@@ -733,7 +734,35 @@ def _recentred_pass(done: list, ctx: Context, report: BatchReport, *, workers: i
                 for t, row in done]
     if notes:
         report.mask_note = "; ".join(x for x in (report.mask_note, notes[0]) if x)
+        # recentring fixes the lines' positions up to one common shift: choose it so the batch-mean
+        # velocity is the first pass's, i.e. the zero point stays that of the mask as given
+        pairs = [(first[t.index]["rv"], row["rv"]) for t, row in done
+                 if row["status"] == "ok" and first[t.index]["status"] == "ok" and row is not first[t.index]]
+        if pairs:
+            v1, v2 = np.array(pairs).T
+            factor = float(np.mean((1 + v2 / C_MS) / (1 + v1 / C_MS)))
+            for t, row in done:
+                if row["status"] == "ok" and row is not first[t.index]:
+                    _rescale_row(row, factor)
     return done
+
+
+def _rescale_row(row: dict, factor: float) -> None:
+    """Velocities of a row as measured with every mask wavelength multiplied by ``factor``: each
+    velocity v becomes c ((1 + v/c) / factor - 1), in any frame (velocities compose by multiplying
+    Doppler factors)."""
+    def f(v):
+        return C_MS * ((1 + np.asarray(v, dtype=float) / C_MS) / factor - 1)
+
+    for k in ("rv", "rv_topo"):
+        if row.get(k) is not None:
+            row[k] = float(f(row[k]))
+    for o in row.get("_orders") or ():
+        if o.get("rv") is not None:
+            o["rv"] = float(f(o["rv"]))
+    if row.get("_ccf") is not None:
+        vel, ccf, model, bis = row["_ccf"]
+        row["_ccf"] = (f(vel), ccf, model, None if bis is None else (bis[0], f(bis[1])))
 
 
 def provenance(mask: LineMask, settings: MeasureSettings, report: BatchReport) -> dict[str, str]:
