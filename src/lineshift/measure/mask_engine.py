@@ -3,8 +3,8 @@
 Search: a coarse CCF over the whole velocity range with the strongest lines (box width equal to the
 coarse step, so no line can fall between samples), the dip located and its width estimated, then a
 fine CCF over +-``window_fwhm`` FWHM around it with all usable lines (those whose boxes meet no
-bad pixel within ``CLEAR_FWHM`` of the centre), recentred once if the fitted centre moved.  All velocities are in the observatory frame inside this
-module.
+bad pixel within ``CLEAR_FWHM`` of the centre), recentred once if the fitted centre moved.  All
+velocities are in the observatory frame inside this module.
 """
 
 from __future__ import annotations
