@@ -688,7 +688,7 @@ def measure_files(paths: list[str], mask: LineMask, settings: MeasureSettings, *
     else:
         done = run_tasks(measure_task, todo, replace(ctx, line_moments=recentre), workers=workers, scheduler=scheduler)
         if recentre:
-            done = _recentred_pass(list(done), ctx, report, workers=workers, scheduler=scheduler)
+            done = _recentred_pass(list(done), ctx, workers=workers, scheduler=scheduler)
         for task, row in done:
             row.pop("_line_moments", None)
             if store is not None and not (scheduler and cluster_failure(row)):
@@ -711,7 +711,7 @@ MIN_RECENTRE = 4
 RECENTRE_PASSES = 2
 
 
-def _recentred_pass(done: list, ctx: Context, report: BatchReport, *, workers: int, scheduler) -> list:
+def _recentred_pass(done: list, ctx: Context, *, workers: int, scheduler) -> list:
     """Measure again against the mask recentred on the line offsets (measure/recentre.py); the offsets
     are first-order estimates, so the recentring is repeated on the residual offsets."""
     from lineshift.measure.recentre import recentred_mask
@@ -733,7 +733,9 @@ def _recentred_pass(done: list, ctx: Context, report: BatchReport, *, workers: i
         done = [again[t.index] if again[t.index][1]["status"] == "ok" or row["status"] != "ok" else (t, row)
                 for t, row in done]
     if notes:
-        report.mask_note = "; ".join(x for x in (report.mask_note, notes[0]) if x)
+        for t, row in done:
+            if row is not first[t.index]:
+                row["notes"] = "; ".join(x for x in (row.get("notes") or "", notes[0]) if x)
         # recentring fixes the lines' positions up to one common shift: choose it so the batch-mean
         # velocity is the first pass's, i.e. the zero point stays that of the mask as given
         pairs = [(first[t.index]["rv"], row["rv"]) for t, row in done
