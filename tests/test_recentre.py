@@ -76,16 +76,3 @@ def test_clear_window_only_near_the_centre():
     assert list(select_lines(o, mask, -10e3, 10e3, 1000.0, clear_of_bad=True)) == [0, 2]
     assert list(select_lines(o, mask, -10e3, 10e3, 1000.0, clear_of_bad=(-3e3, 3e3))) == [0, 1, 2]
     assert list(select_lines(o, mask, -10e3, 10e3, 1000.0, clear_of_bad=(-3e3, 8e3))) == [0, 2]
-
-
-def test_recentring_only_when_needed():
-    # clean batch with a matching mask: measured once; bad pixels that removed lines, or a mask line
-    # with no dip in the batch mean (a line the star lacks), call for recentring
-    from lineshift.measure.recentre import LineMoments, needs_recentring
-
-    def mom(b, n_cleared=0):
-        return LineMoments(np.arange(3), np.asarray(b, float), np.zeros(3), np.ones(3), SIG, n_cleared)
-
-    assert not needs_recentring([mom([-0.3, -0.2, -0.4])] * 4, 3)
-    assert needs_recentring([mom([-0.3, -0.2, -0.4])] * 3 + [mom([-0.3, -0.2, -0.4], 1)], 3)
-    assert needs_recentring([mom([-0.3, 0.01, -0.4])] * 4, 3)

@@ -31,7 +31,7 @@ import numpy as np
 from lineshift.measure.ccf import CorrelationData
 from lineshift.model import C_MS, LineMask
 
-__all__ = ["LineMoments", "batch_offsets", "line_moments", "needs_recentring", "recentred_mask"]
+__all__ = ["LineMoments", "batch_offsets", "line_moments", "recentred_mask"]
 
 
 @dataclass(frozen=True)
@@ -110,19 +110,6 @@ def batch_offsets(moments: list[LineMoments], n_lines: int) -> tuple[np.ndarray,
     if use.any() and W[use].sum() != 0:
         off = off - np.sum(W[use] * off[use]) / W[use].sum()
     return np.where(usable, off, 0.0), measured, usable
-
-
-def needs_recentring(moments: list[LineMoments], n_lines: int) -> bool:
-    """True when the line sets differ because of bad pixels (some spectrum left lines out), or when
-    the mask holds lines that show no dip in the batch mean (lines the star does not have)."""
-    if any(m.n_cleared for m in moments):
-        return True
-    B = np.zeros(n_lines)
-    measured = np.zeros(n_lines, dtype=bool)
-    for m in moments:
-        np.add.at(B, m.lines, m.b)
-        measured[m.lines] = True
-    return bool(np.any(measured & (B >= 0)))
 
 
 def recentred_mask(mask: LineMask, moments: list[LineMoments]) -> tuple[LineMask, str]:

@@ -714,15 +714,14 @@ RECENTRE_PASSES = 2
 def _recentred_pass(done: list, ctx: Context, *, workers: int, scheduler) -> list:
     """Measure again against the mask recentred on the line offsets (measure/recentre.py); the offsets
     are first-order estimates, so the recentring is repeated on the residual offsets."""
-    from lineshift.measure.recentre import needs_recentring, recentred_mask
+    from lineshift.measure.recentre import recentred_mask
 
     mask, notes = ctx.mask, []
     first = {t.index: row for t, row in done}
     for it in range(RECENTRE_PASSES):
         moments = [row.pop("_line_moments") for _, row in done if row.get("_line_moments") is not None]
-        # only where bad pixels made the line sets differ or the mask has lines the star lacks: clean
-        # batches with a matching mask are measured as before
-        if len(moments) < MIN_RECENTRE or (it == 0 and not needs_recentring(moments, len(mask))):
+        # only where bad pixels made the line sets differ: clean batches are measured as before
+        if len(moments) < MIN_RECENTRE or (it == 0 and not any(m.n_cleared for m in moments)):
             break
         mask, note = recentred_mask(mask, moments)
         notes.append(note)
