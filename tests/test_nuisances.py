@@ -170,9 +170,6 @@ XFAIL = {
     ("saturation_flagged", "template"): _TPL.format("2.23 (x1.03)"),
     ("saturation_unflagged", "template"): _TPL.format("2.10 (x0.98)"),
     ("mask", "template"): _TPL.format("2.16 (x1.00)"),
-    ("all", "mask"): "mask engine, all nuisances: x3.87 the clean scatter, pull std 2.81: lines dropped where "
-                     "bad pixels meet their boxes differ from spectrum to spectrum, and each carries its own "
-                     "blend offset (hundreds of m/s in this line list), largest with spurious/mis-weighted lines",
     ("mask_zero_point", "mask"): "mismatched mask moves the mask-engine zero point by -11.2 m/s "
                                  "(error per spectrum 4.9 m/s); wrong weights alone moved it by ~-70 m/s "
                                  "on a batch of this set-up: the weighted mean of the lines' blend offsets "

@@ -79,6 +79,8 @@ class _OrderTerms:
     num: np.ndarray       # (m,)
     den: np.ndarray       # (m,)
     line_wavelengths: np.ndarray = None  # (k,) rest wavelengths of the lines
+    line_num: np.ndarray | None = None   # (k, m) each line's own box sums of q f (``keep_lines``)
+    line_den: np.ndarray | None = None   # (k, m) and of q
 
 
 def _edge_layout(velocity: np.ndarray, box_width: float) -> tuple[np.ndarray, int]:
@@ -101,6 +103,7 @@ class CorrelationData:
 
     velocity: np.ndarray
     terms: list[_OrderTerms]
+    n_cleared: int = 0    # lines left out because bad pixels meet their boxes (``clear_of_bad``)
 
     @property
     def numerator(self) -> np.ndarray:
@@ -201,13 +204,15 @@ class CorrelationData:
 
 
 def select_lines(order: PreparedOrder, mask: LineMask, v_lo: float, v_hi: float,
-                 box_width: float, *, clear_of_bad: bool = False) -> np.ndarray:
+                 box_width: float, *, clear_of_bad: bool | tuple[float, float] = False) -> np.ndarray:
     """Indices of mask lines whose box stays inside the order's good pixels for all v in [v_lo, v_hi].
 
     With ``clear_of_bad`` a line is also dropped when its box meets a bad pixel *inside* the order
     anywhere on the grid: a pixel of zero weight under a box removes part of that line at some
     velocities and not at others, which reshapes the CCF around the line and moves its centre
     (a missing core pixel near the dip is the worst case).  The fine grid is narrow, so few lines go.
+    ``clear_of_bad`` may be a velocity interval (lo, hi) inside the grid: only boxes placed within it
+    must be clear (the core of the dip, where the fitted centre responds to the CCF).
     """
     good = np.flatnonzero(order.good)
     lam_min = order.edges[good[0]]
@@ -216,7 +221,10 @@ def select_lines(order: PreparedOrder, mask: LineMask, v_lo: float, v_hi: float,
     lo = mask.wavelength * (1 + (v_lo - half) / C_MS)
     hi = mask.wavelength * (1 + (v_hi + half) / C_MS)
     inside = (lo >= lam_min) & (hi <= lam_max)
-    if clear_of_bad and not order.good[good[0]: good[-1] + 1].all():
+    if isinstance(clear_of_bad, tuple):
+        lo = mask.wavelength * (1 + (clear_of_bad[0] - half) / C_MS)
+        hi = mask.wavelength * (1 + (clear_of_bad[1] + half) / C_MS)
+    if clear_of_bad is not False and not order.good[good[0]: good[-1] + 1].all():
         nbad = np.concatenate(([0], np.cumsum(~order.good)))
         pa = np.clip(np.searchsorted(order.edges, lo, side="right") - 1, 0, order.good.size)
         pb = np.clip(np.searchsorted(order.edges, hi, side="left"), 0, order.good.size)
@@ -225,8 +233,8 @@ def select_lines(order: PreparedOrder, mask: LineMask, v_lo: float, v_hi: float,
 
 
 def correlate(orders: list[PreparedOrder], mask: LineMask, velocity: np.ndarray, box_width: float,
-              *, lines: np.ndarray | None = None, clear_of_bad: bool = False, sums: dict | None = None
-              ) -> CorrelationData:
+              *, lines: np.ndarray | None = None, clear_of_bad: bool = False, sums: dict | None = None,
+              keep_lines: bool = False) -> CorrelationData:
     """CCF of prepared orders with a mask on a velocity grid (m/s, observatory frame).
 
     Parameters
@@ -239,22 +247,30 @@ def correlate(orders: list[PreparedOrder], mask: LineMask, velocity: np.ndarray,
         Full width of each mask box in velocity.
     lines : ndarray of int, optional
         Restrict to these mask lines (e.g. the strongest, for a coarse search).
-    clear_of_bad : bool
-        Use only lines whose boxes meet no bad pixel over the whole grid (:func:`select_lines`); for
-        the fine grid the velocity is measured on (a coarse search only locates the dip).
+    clear_of_bad : bool or (lo, hi)
+        Use only lines whose boxes meet no bad pixel over the whole grid, or over the velocities
+        lo..hi (:func:`select_lines`); for the fine grid the velocity is measured on (a coarse
+        search only locates the dip).
     sums : dict, optional
         A dictionary kept by the caller across calls on the same orders (coarse and fine grids):
         each order's cumulative sums are computed once and reused from it.
+    keep_lines : bool
+        Keep each line's own box sums (``line_num``, ``line_den`` of each order's terms), the
+        per-line CCFs that :mod:`.recentre` measures line offsets on.
     """
     velocity = np.asarray(velocity, dtype=float)
     m = velocity.size
     edge_v, r = _edge_layout(velocity, box_width)
     lam_lines = mask.wavelength
     terms = []
+    n_cleared = 0
     for order in orders:
         idx = select_lines(order, mask, velocity[0], velocity[-1], box_width, clear_of_bad=clear_of_bad)
         if lines is not None:
             idx = np.intersect1d(idx, lines, assume_unique=True)
+        if keep_lines and clear_of_bad:
+            plain = select_lines(order, mask, velocity[0], velocity[-1], box_width)
+            n_cleared += plain.size - (idx.size if lines is None else np.intersect1d(plain, lines).size)
         if idx.size == 0:
             continue
         # line-major layout (lines x edges): consecutive queries are neighbouring pixels, which
@@ -267,16 +283,17 @@ def correlate(orders: list[PreparedOrder], mask: LineMask, velocity: np.ndarray,
             cached = (order, [(g, np.concatenate(([0.0], np.cumsum(g)))) for g in (g_num, order.weight)])
             if sums is not None:
                 sums[id(order)] = cached
-        totals = []
+        totals, boxes = [], []
         for g, S in cached[1]:
             c = _cum(S, g, x)
             box = c[:, r:] - c[:, :m] if r else c[:, m:] - c[:, :m]
             totals.append(w @ box)
+            boxes.append(box if keep_lines else None)
         num, den = totals
         if not np.all(den > 0):
             continue
-        terms.append(_OrderTerms(order, w, idx, x, r, num, den, lam_lines[idx]))
-    return CorrelationData(velocity, terms)
+        terms.append(_OrderTerms(order, w, idx, x, r, num, den, lam_lines[idx], *boxes))
+    return CorrelationData(velocity, terms, n_cleared)
 
 
 def reference_ccf(orders: list[PreparedOrder], mask: LineMask, velocity: np.ndarray,

@@ -2,8 +2,9 @@
 
 Search: a coarse CCF over the whole velocity range with the strongest lines (box width equal to the
 coarse step, so no line can fall between samples), the dip located and its width estimated, then a
-fine CCF over +-``window_fwhm`` FWHM around it with all usable lines, recentred once if the fitted
-centre moved.  All velocities are in the observatory frame inside this module.
+fine CCF over +-``window_fwhm`` FWHM around it with all usable lines (those whose boxes meet no
+bad pixel within ``CLEAR_FWHM`` of the centre), recentred once if the fitted centre moved.  All
+velocities are in the observatory frame inside this module.
 """
 
 from __future__ import annotations
@@ -18,6 +19,7 @@ from lineshift.measure.ccf import correlate
 from lineshift.measure.peak import fit_gaussian
 from lineshift.measure.prepare import PreparedOrder
 from lineshift.measure.profile import bisector, order_velocities
+from lineshift.measure.recentre import line_moments
 from lineshift.model import C_MS, CCFResult, LineMask
 
 __all__ = ["SearchSettings", "measure_mask"]
@@ -52,6 +54,10 @@ class SearchSettings:
 
 
 DEFAULT_RANGE = (-300_000.0, 300_000.0)
+#: Lines of the fine CCF must be clear of bad pixels within this many FWHM of the dip's centre; farther
+#: out (the CCF's continuum, where the fitted centre hardly responds) a bad pixel only leaves the line out
+#: of the velocities its box covers it at.  Fewer lines lost to a cosmic ray than clearing the whole grid.
+CLEAR_FWHM = 2.0
 
 
 def pixel_velocity_width(orders: list[PreparedOrder]) -> float:
@@ -119,7 +125,7 @@ def _coarse(orders, mask, settings, berv, dv_pix, path, sums=None):
 
 
 def measure_mask(orders: list[PreparedOrder], mask: LineMask, settings: SearchSettings, *,
-                 berv: float = 0.0, path: str | None = None) -> CCFResult:
+                 berv: float = 0.0, path: str | None = None, moments: list | None = None) -> CCFResult:
     """Velocity of one prepared spectrum against a line mask (observatory frame).
 
     Parameters
@@ -130,6 +136,9 @@ def measure_mask(orders: list[PreparedOrder], mask: LineMask, settings: SearchSe
     settings : SearchSettings
     berv : float, m/s
         Barycentric correction of this spectrum; only used to place the (barycentric) search range.
+    moments : list, optional
+        If given, the per-line offset coefficients of the final fine CCF are appended to it
+        (:func:`.recentre.line_moments`), for a batch to recentre its mask on.
 
     Returns
     -------
@@ -152,7 +161,8 @@ def measure_mask(orders: list[PreparedOrder], mask: LineMask, settings: SearchSe
         half = max(settings.window_fwhm * fwhm, 8 * step)
         n = int(np.ceil(half / step))
         grid = centre + step * np.arange(-n, n + 1)
-        data = correlate(orders, mask, grid, box, clear_of_bad=True, sums=sums)
+        clear = (centre - CLEAR_FWHM * fwhm, centre + CLEAR_FWHM * fwhm)
+        data = correlate(orders, mask, grid, box, clear_of_bad=clear, sums=sums, keep_lines=moments is not None)
         if not data.terms:
             raise MeasurementError("no mask line falls on the spectrum", path=path,
                                    status="outside mask range")
@@ -161,6 +171,8 @@ def measure_mask(orders: list[PreparedOrder], mask: LineMask, settings: SearchSe
         centre, fwhm = fit.mu, fit.fwhm
         if moved < 0.25 * half:
             break
+    if moments is not None:
+        moments.append(line_moments(data, fit.mu, fit.sigma, fit.gain[2]))
     sens = fit.sensitivities()
     bis = bisector(grid, data.ccf, fit.c0, fit.amp)
     sens["bis"] = bis.sensitivity + bis.d_c0 * fit.gain[0] + bis.d_amp * fit.gain[1]

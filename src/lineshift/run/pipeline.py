@@ -155,6 +155,7 @@ class Context:
     mask: LineMask
     settings: MeasureSettings
     template: object = None          # TemplateState for the template engine's second pass
+    line_moments: bool = False       # mask engine: keep each row's per-line offset coefficients
 
 
 def expand_inputs(items: Iterable[str]) -> list[str]:
@@ -340,7 +341,8 @@ def measure_task(task: Task, ctx: Context) -> dict:
             if ctx.template is not None:
                 engine_row = _lines_row if s.method == "lines" else _template_row
                 return _with_activity(_note_rejected(engine_row(task, obs, orders, ctx), n_rej), spectrum, s)
-            res = ENGINES[s.method](orders, ctx.mask, s.search, berv=task.berv, path=task.path)
+            mom = [] if ctx.line_moments else None
+            res = ENGINES[s.method](orders, ctx.mask, s.search, berv=task.berv, path=task.path, moments=mom)
     except (MemoryError, UnicodeError, OSError) as exc:
         err = _failure(exc, task.path)
         row = _empty_row(task.path, obs, err.status, str(err), s)
@@ -370,6 +372,8 @@ def measure_task(task: Task, ctx: Context) -> dict:
     row["_orders"] = _orders_to_topo(res.orders, task)
     row["_v_file"] = float(res.rv)
     _note_rejected(row, n_rej)
+    if mom:
+        row["_line_moments"] = mom[0]
     if s.keep_ccf:
         row["_ccf"] = (res.velocity, res.ccf, res.model, res.bisector)
     if s.method == "template":   # first pass: what the co-add needs of this file, so it is not read again
@@ -715,6 +719,9 @@ def measure_files(paths: list[str], mask: LineMask, settings: MeasureSettings, *
                 row.update(file=printable(t.path))  # the path as given this time (the content is the same)
                 report.skipped += 1
                 emit(t.index, row)
+    # mask engine: each line's offset measured over the batch and taken out of the mask, so a line
+    # lost in one spectrum (bad pixels in its box) does not move that spectrum's velocity
+    recentre = settings.method == "mask" and settings.components == 1 and len(todo) >= MIN_RECENTRE
     if settings.method in CO_ADDED:
         with reuse.keeping():   # the passes read each file once (bounded; this process only)
             final = _template_rows(tasks, todo, ctx, store, stored_template, report, workers=workers,
@@ -724,7 +731,11 @@ def measure_files(paths: list[str], mask: LineMask, settings: MeasureSettings, *
                 store.put(t.input_hash, report.settings_hash, final[t.index])
             emit(t.index, final[t.index])
     else:
-        for task, row in run_tasks(measure_task, todo, ctx, workers=workers, scheduler=scheduler):
+        done = run_tasks(measure_task, todo, replace(ctx, line_moments=recentre), workers=workers, scheduler=scheduler)
+        if recentre:
+            done = _recentred_pass(list(done), ctx, workers=workers, scheduler=scheduler)
+        for task, row in done:
+            row.pop("_line_moments", None)
             if store is not None and not (scheduler and cluster_failure(row)):
                 store.put(task.input_hash, report.settings_hash, _clean(row))
             emit(task.index, row)
@@ -737,6 +748,68 @@ def measure_files(paths: list[str], mask: LineMask, settings: MeasureSettings, *
                 r.setdefault(c, None)
         report.swaps = assign_components(out)
     return out
+
+
+#: Fewest spectra a batch measures line offsets on (measure/recentre.py).
+MIN_RECENTRE = 4
+#: Measurements against a recentred mask (each recentring on the residual offsets of the last).
+RECENTRE_PASSES = 2
+
+
+def _recentred_pass(done: list, ctx: Context, *, workers: int, scheduler) -> list:
+    """Measure again against the mask recentred on the line offsets (measure/recentre.py); the offsets
+    are first-order estimates, so the recentring is repeated on the residual offsets."""
+    from lineshift.measure.recentre import recentred_mask
+
+    mask, notes = ctx.mask, []
+    first = {t.index: row for t, row in done}
+    for it in range(RECENTRE_PASSES):
+        moments = [row.pop("_line_moments") for _, row in done if row.get("_line_moments") is not None]
+        # only where bad pixels made the line sets differ: clean batches are measured as before
+        if len(moments) < MIN_RECENTRE or (it == 0 and not any(m.n_cleared for m in moments)):
+            break
+        mask, note = recentred_mask(mask, moments)
+        notes.append(note)
+        last = it == RECENTRE_PASSES - 1
+        again = {t.index: (t, r) for t, r in run_tasks(measure_task, [t for t, _ in done],
+                                                        replace(ctx, mask=mask, line_moments=not last),
+                                                        workers=workers, scheduler=scheduler)}
+        # a spectrum the recentred mask cannot measure keeps its earlier row
+        done = [again[t.index] if again[t.index][1]["status"] == "ok" or row["status"] != "ok" else (t, row)
+                for t, row in done]
+    if notes:
+        for t, row in done:
+            if row is not first[t.index]:
+                row["notes"] = "; ".join(x for x in (row.get("notes") or "", notes[0]) if x)
+        # recentring fixes the lines' positions up to one common shift: choose it so the batch-mean
+        # velocity is the first pass's, i.e. the zero point stays that of the mask as given
+        pairs = [(first[t.index]["rv"], row["rv"]) for t, row in done
+                 if row["status"] == "ok" and first[t.index]["status"] == "ok" and row is not first[t.index]]
+        if pairs:
+            v1, v2 = np.array(pairs).T
+            factor = float(np.mean((1 + v2 / C_MS) / (1 + v1 / C_MS)))
+            for t, row in done:
+                if row["status"] == "ok" and row is not first[t.index]:
+                    _rescale_row(row, factor)
+    return done
+
+
+def _rescale_row(row: dict, factor: float) -> None:
+    """Velocities of a row as measured with every mask wavelength multiplied by ``factor``: each
+    velocity v becomes c ((1 + v/c) / factor - 1), in any frame (velocities compose by multiplying
+    Doppler factors)."""
+    def f(v):
+        return C_MS * ((1 + np.asarray(v, dtype=float) / C_MS) / factor - 1)
+
+    for k in ("rv", "rv_topo"):
+        if row.get(k) is not None:
+            row[k] = float(f(row[k]))
+    for o in row.get("_orders") or ():
+        if o.get("rv") is not None:
+            o["rv"] = float(f(o["rv"]))
+    if row.get("_ccf") is not None:
+        vel, ccf, model, bis = row["_ccf"]
+        row["_ccf"] = (f(vel), ccf, model, None if bis is None else (bis[0], f(bis[1])))
 
 
 def provenance(mask: LineMask, settings: MeasureSettings, report: BatchReport) -> dict[str, str]:
