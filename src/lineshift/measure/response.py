@@ -67,12 +67,14 @@ def _basis(x: np.ndarray, h: float, ncoef: int) -> np.ndarray:
 
 
 def detector_response(spectra: list[tuple[float, dict[int, ResponseBins]]], sizes: dict[int, int], *,
-                      poly_degree: int = 3, spacing: float = 64.0, penalty: float = 1e-2
-                      ) -> dict[int, np.ndarray]:
+                      poly_degree: int = 3, spacing: float = 64.0, penalty: float = 1e-2,
+                      precision: float = 0.01) -> dict[int, np.ndarray]:
     """``ln R`` per pixel for each order (by order index), from the binned fit residuals of each
     spectrum: ``spectra`` holds (ln co-adding factor, {order index: bins}); ``sizes`` the orders'
     lengths in pixels.  Knots every ``spacing`` pixels; ``penalty`` scales the second-difference
-    penalty relative to the mean information per coefficient."""
+    penalty relative to the mean information per direction; only combinations of coefficients that the
+    data fix to ``precision`` in ``ln R`` (the information is that of the relative residuals, ``W`` of
+    the bins) are estimated, the rest left at zero."""
     out: dict[int, np.ndarray] = {}
     for index, n in sizes.items():
         have = [(lnf, bins[index]) for lnf, bins in spectra if index in bins]
@@ -114,10 +116,16 @@ def detector_response(spectra: list[tuple[float, dict[int, ResponseBins]]], size
             f = (gi - i0)[:, None]
             own0, s_own0 = contribution(lnf_i, bins_i, sgrid[i0])
             own1, s_own1 = contribution(lnf_i, bins_i, sgrid[i0 + 1])
-            num = (1 - f) * (S[i0] - s_own0) + f * (S[i0 + 1] - s_own1)
-            wsum = (1 - f[:, 0]) * (Wsum[i0] - own0) + f[:, 0] * (Wsum[i0 + 1] - own1)
-            ok = wsum > 1e-9 * np.max(Wsum)
-            A = _basis(xs, h, ncoef) - num / np.where(ok, wsum, 1.0)[:, None]
+            # the template term (the others' weighted mean) and the spectrum itself, both at the two
+            # star-frame grid nodes around each point, then interpolated alike: without any spread of
+            # shifts they cancel exactly (no response can be seen, none is made up from rounding)
+            A = np.zeros((xs.size, ncoef))
+            ok = np.ones(xs.size, dtype=bool)
+            for node, own, s_own, wt in ((i0, own0, s_own0, 1 - f), (i0 + 1, own1, s_own1, f)):
+                others = Wsum[node] - own
+                ok &= (others > 1e-9 * np.max(Wsum)) & (own > 0)
+                A += wt * (s_own / np.where(ok, own, 1.0)[:, None]
+                           - (S[node] - s_own) / np.where(ok, others, 1.0)[:, None])
             sw = np.sqrt(W[use]) * ok
             X, y = A * sw[:, None], rho[use] * sw
             L = np.stack([(2 * xs / (n - 1) - 1) ** p for p in range(poly_degree + 1)], axis=1) * sw[:, None]
@@ -126,10 +134,17 @@ def detector_response(spectra: list[tuple[float, dict[int, ResponseBins]]], size
             y -= Q @ (Q.T @ y)
             G += X.T @ X
             g += X.T @ y
-        scale = np.trace(G) / ncoef
-        if not scale > 0:
+        # only what the data measure to ``precision`` or better: the eigen-directions of the
+        # information G above 1 / precision^2 (without a spread of shifts, none: the response is
+        # invisible, and harmless); the second-difference penalty smooths within them
+        lam, V = np.linalg.eigh(G)
+        Vk = V[:, lam > 1.0 / precision**2]
+        if Vk.shape[1] == 0:
             continue
         D = np.diff(np.eye(ncoef), 2, axis=0)
-        coef = np.linalg.solve(G + penalty * scale * (D.T @ D) + 1e-6 * scale * np.eye(ncoef), g)
-        out[index] = _basis(np.arange(n, dtype=float), h, ncoef) @ coef
+        P = penalty * float(np.mean(lam[lam > 0])) * (D.T @ D)
+        coef = Vk @ np.linalg.solve(Vk.T @ (G + P) @ Vk, Vk.T @ g)
+        resp = _basis(np.arange(n, dtype=float), h, ncoef) @ coef
+        if np.all(np.isfinite(resp)):
+            out[index] = resp
     return out
