@@ -9,7 +9,9 @@ Template
     velocities, iterated), normalised flux on a grid uniform in ln(lambda) with two points per
     pixel, its own per-pixel noise tracked, telluric bands and bad pixels carried through; one
     template per order, co-added from that order of every spectrum only, so the continuum errors of
-    overlapping neighbour orders do not mix into it (:mod:`.coadd`).  Each
+    overlapping neighbour orders do not mix into it (:mod:`.coadd`); what the common continuum
+    leaves of the true response is estimated from the binned fit residuals (:attr:`TemplateResult.residuals`,
+    :mod:`.response`) and divided out between the pipeline's template passes.  Each
     spectrum is fitted against the template *without its own contribution* (its sums are recomputed
     and subtracted), so no spectrum pulls the template towards itself.
 
