@@ -24,6 +24,7 @@ template passes of the pipeline repeat co-add, fit and this estimate.
 from __future__ import annotations
 
 import numpy as np
+from scipy.linalg import eigh
 
 __all__ = ["ResponseBins", "bin_residuals", "detector_response"]
 
@@ -137,7 +138,9 @@ def detector_response(spectra: list[tuple[float, dict[int, ResponseBins]]], size
         # only what the data measure to ``precision`` or better: the eigen-directions of the
         # information G above 1 / precision^2 (without a spread of shifts, none: the response is
         # invisible, and harmless); the second-difference penalty smooths within them
-        lam, V = np.linalg.eigh(G)
+        # LAPACK's relatively robust representations (syevr): numpy's divide-and-conquer driver took
+        # 12 ms instead of 0.1 ms on these 35 x 35 matrices right after the fits' batched products
+        lam, V = eigh(G, driver="evr")
         Vk = V[:, lam > 1.0 / precision**2]
         if Vk.shape[1] == 0:
             continue
