@@ -31,14 +31,20 @@ __all__ = ["ResponseBins", "bin_residuals", "detector_response"]
 #: Uniform cubic B-spline basis in powers of t (as in :mod:`.coadd`): weight of coefficient i+k.
 _B = np.array([[1.0, 4.0, 1.0, 0.0], [-3.0, 0.0, 3.0, 0.0], [3.0, -6.0, 3.0, 0.0], [-1.0, 3.0, -3.0, 1.0]]) / 6.0
 
-#: (bin-centre pixel index, bin-centre ln wavelength, relative residual, its inverse variance) of one order
-ResponseBins = tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]
+#: (bin-centre pixel index, bin-centre ln wavelength, relative residual, its inverse variance) of one
+#: order, optionally followed by the shift's cross information per bin and its whole information
+ResponseBins = tuple
 
 
 def bin_residuals(wave: np.ndarray, resid: np.ndarray, model: np.ndarray, weight: np.ndarray,
-                  width: int = 16) -> list[ResponseBins]:
+                  deriv: np.ndarray | None = None, width: int = 16) -> list[ResponseBins]:
     """Relative residuals ``resid / model`` of fitted orders (rows), weighted means in bins of ``width``
-    pixels, with the inverse variance of each mean (``sum weight * model^2``; 0 where nothing is used)."""
+    pixels, with the inverse variance of each mean (``sum weight * model^2``; 0 where nothing is used).
+
+    With ``deriv`` (the model's derivative with respect to the fitted shift, per pixel) also, per bin,
+    ``sum weight * model * deriv`` and, per order, the shift's whole information ``sum weight * deriv^2``:
+    what the fit's shift took of a smooth mismatch (its projection onto the shift) follows from them.
+    """
     k, n = resid.shape
     nb = -(-n // width)
     pad = nb * width - n
@@ -52,7 +58,11 @@ def bin_residuals(wave: np.ndarray, resid: np.ndarray, model: np.ndarray, weight
     x = binned(np.broadcast_to(np.arange(n, dtype=float), (k, n))) / cnt
     u = binned(np.log(wave)) / np.maximum(cnt, 1)
     rho = np.where(den > 0, num / np.where(den > 0, den, 1.0), 0.0)
-    return [(x[j], u[j], rho[j], den[j]) for j in range(k)]
+    if deriv is None:
+        return [(x[j], u[j], rho[j], den[j]) for j in range(k)]
+    cross = binned(wm * deriv)
+    info = np.sum(weight * deriv * deriv, axis=1)
+    return [(x[j], u[j], rho[j], den[j], cross[j], float(info[j])) for j in range(k)]
 
 
 def _basis(x: np.ndarray, h: float, ncoef: int) -> np.ndarray:
@@ -68,7 +78,7 @@ def _basis(x: np.ndarray, h: float, ncoef: int) -> np.ndarray:
 
 
 def detector_response(spectra: list[tuple[float, dict[int, ResponseBins]]], sizes: dict[int, int], *,
-                      poly_degree: int = 3, spacing: float = 64.0, penalty: float = 1e-2,
+                      poly_degree: int = 3, spacing: float = 64.0, penalty: float = 1e-3,
                       precision: float = 0.01) -> dict[int, np.ndarray]:
     """``ln R`` per pixel for each order (by order index), from the binned fit residuals of each
     spectrum: ``spectra`` holds (ln co-adding factor, {order index: bins}); ``sizes`` the orders'
@@ -87,7 +97,7 @@ def detector_response(spectra: list[tuple[float, dict[int, ResponseBins]]], size
 
         def contribution(lnf_j, bins_j, s, h=h, ncoef=ncoef):
             """Spectrum j's weight and weight x basis at star-frame points s (ln wavelength)."""
-            xj, uj, _, Wj = bins_j
+            xj, uj, _, Wj = bins_j[:4]
             at = s - lnf_j
             pos = np.interp(at, uj, xj)
             wj = np.where((at >= uj[0]) & (at <= uj[-1]), np.interp(pos, xj, Wj), 0.0)
@@ -107,7 +117,7 @@ def detector_response(spectra: list[tuple[float, dict[int, ResponseBins]]], size
         G = np.zeros((ncoef, ncoef))
         g = np.zeros(ncoef)
         for lnf_i, bins_i in have:
-            x, u, rho, W = bins_i
+            x, u, rho, W = bins_i[:4]
             use = W > 0
             if use.sum() <= poly_degree + 2:
                 continue
@@ -130,8 +140,19 @@ def detector_response(spectra: list[tuple[float, dict[int, ResponseBins]]], size
             sw = np.sqrt(W[use]) * ok
             X, y = A * sw[:, None], rho[use] * sw
             L = np.stack([(2 * xs / (n - 1) - 1) ** p for p in range(poly_degree + 1)], axis=1) * sw[:, None]
+            if len(bins_i) > 4 and bins_i[5] > 0:
+                # the fitted shift took the mismatch's projection onto the model's derivative (in the
+                # full per-pixel metric): a column cross / sqrt(W) in the bins, and one row more that
+                # carries the rest of its information, line-scale structure no smooth mismatch has
+                cross, info = bins_i[4][use] * ok, bins_i[5]
+                col = cross / np.sqrt(W[use])
+                rest = np.sqrt(max(info - float(col @ col), 0.0))
+                L = np.vstack([np.column_stack([L, col]), np.r_[np.zeros(L.shape[1]), rest]]) / np.r_[
+                    np.ones(L.shape[1]), np.sqrt(info)]
+                X = np.vstack([X, np.zeros(ncoef)])
+                y = np.r_[y, 0.0]
             Q, _ = np.linalg.qr(L)
-            X -= Q @ (Q.T @ X)                                # this spectrum's polynomial eliminated
+            X -= Q @ (Q.T @ X)                                # this spectrum's polynomial (and shift) eliminated
             y -= Q @ (Q.T @ y)
             G += X.T @ X
             g += X.T @ y

@@ -361,5 +361,5 @@ def _fit_block(block: list[PreparedOrder], coef, var_t, ok_t, state: TemplateSta
     v = C_MS * np.expm1(p[:, 0])
     e = C_MS * np.exp(p[:, 0]) * np.sqrt(np.abs(cov[:, 0, 0]))
     bad = ~alive | ~np.isfinite(p).all(axis=1)
-    bins = bin_residuals(wave, r, poly * T, w)
+    bins = bin_residuals(wave, r, poly * T, w, J[:, :, 0])
     return [(np.nan, np.nan, np.nan) if bad[j] else (v[j], e[j], chi2[j]) for j in range(k)], bins
