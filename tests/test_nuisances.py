@@ -161,8 +161,8 @@ def _cost(batch, tmp_path_factory, name, method):
 
 # Figures measured with 12 draws, 8 orders (the reasons quote them).
 XFAIL = {
-    ("all", "template"): "template engine, all nuisances: x1.88 the clean scatter (ratio 2.03), pull std 1.24; "
-                         "cosmics alone x1.55 with shift/err rms 3.95 (mask engine 1.01) and zero point "
+    ("all", "template"): "template engine, all nuisances: x1.86 the clean scatter (ratio 2.01), pull std 1.23; "
+                         "cosmics alone x1.54 with shift/err rms 3.83 (mask engine 1.01) and zero point "
                          "-29 m/s: cosmic-ray hits left in the template fit",
     ("all", "mask"): "mask engine, all nuisances: x3.87 the clean scatter, pull std 2.81: lines dropped where "
                      "bad pixels meet their boxes differ from spectrum to spectrum, and each carries its own "

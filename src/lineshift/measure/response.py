@@ -13,10 +13,13 @@ absorb it, and it turns into a velocity error proportional to BERV.
 The fit's relative residuals, averaged in bins of pixels (where the lines average out), measure
 ``m_i - p_i`` (``p_i``: the part the fit's polynomial took).  ``ln R`` is solved for by linear least
 squares as a cubic B-spline in ``x`` with a second-difference penalty (a P-spline: Eilers & Marx
-1996, Statistical Science 11, 89), each spectrum's polynomial eliminated by projection, the template
+1996, Statistical Science 11, 89), each spectrum's polynomial and fitted shift (which took the
+mismatch's projection onto the model's derivative) eliminated by projection, the template
 term built from the other spectra's shifts and weights exactly as the co-add does (without the
 spectrum itself).  A response that is a polynomial of degree ``poly_degree + 1`` or less is
-invisible (and harmless); the small ridge picks the solution nearest zero there.  Dividing every
+invisible (and harmless), and so is every response when the spectra share one shift: only the
+directions of the coefficients that the data fix to ``precision`` are estimated, the rest left at
+zero (a truncated eigen-solution), so nothing is fitted to the noise.  Dividing every
 spectrum by ``exp(ln R)``, i.e. multiplying the common continuum by it, removes the mismatch; the
 template passes of the pipeline repeat co-add, fit and this estimate.
 """
