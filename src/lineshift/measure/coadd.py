@@ -124,7 +124,9 @@ def on_common_continuum(orders: list[PreparedOrder], reference: dict[int, np.nda
     of an order by the same ``reference[index]`` (counts per pixel, e.g. one spectrum's continuum)
     leaves between spectra only their true ratio of counts, which is smooth.  Flux and variance are
     scaled by ``r = continuum / reference``, the photon weight by ``1 / r^2``.  Orders without a
-    reference of their length (or without a continuum) are returned as they are.
+    reference of their length (or without a continuum) are returned as they are.  Whatever the
+    reference misses of the true response (a steep blaze) is then common to every spectrum in the
+    detector frame; :mod:`.response` estimates it, and the pipeline multiplies it into the reference.
     """
     if not reference:
         return orders

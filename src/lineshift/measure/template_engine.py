@@ -9,7 +9,9 @@ Template
     velocities, iterated), normalised flux on a grid uniform in ln(lambda) with two points per
     pixel, its own per-pixel noise tracked, telluric bands and bad pixels carried through; one
     template per order, co-added from that order of every spectrum only, so the continuum errors of
-    overlapping neighbour orders do not mix into it (:mod:`.coadd`).  Each
+    overlapping neighbour orders do not mix into it (:mod:`.coadd`); what the common continuum
+    leaves of the true response is estimated from the binned fit residuals (:attr:`TemplateResult.residuals`,
+    :mod:`.response`) and divided out between the pipeline's template passes.  Each
     spectrum is fitted against the template *without its own contribution* (its sums are recomputed
     and subtracted), so no spectrum pulls the template towards itself.
 
@@ -32,7 +34,7 @@ Fit
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 from scipy.ndimage import gaussian_filter1d, spline_filter1d
@@ -40,6 +42,7 @@ from scipy.ndimage import gaussian_filter1d, spline_filter1d
 from lineshift.errors import MeasurementError
 from lineshift.measure.coadd import TemplateAccumulator, bspline, on_common_continuum
 from lineshift.measure.prepare import PreparedOrder
+from lineshift.measure.response import bin_residuals
 from lineshift.measure.tellurics import drop_bands
 from lineshift.model import C_MS
 
@@ -230,6 +233,9 @@ class TemplateResult:
     n_orders: int
     orders: tuple[dict, ...]
     chi2_red: float
+    #: order index -> binned relative residuals of its fit (:func:`.response.bin_residuals`), for the
+    #: estimate of the response common to all spectra (:func:`.response.detector_response`)
+    residuals: dict = field(default_factory=dict)
 
 
 def measure_template(orders: list[PreparedOrder], state: TemplateState, settings: TemplateSettings, *,
@@ -257,8 +263,12 @@ def measure_template(orders: list[PreparedOrder], state: TemplateState, settings
                          "rv_err": np.nan, "chi2_red": np.nan, "flag": "no template"})
             continue
         by_len.setdefault(o.flux.size, []).append(o)
+    residuals = {}
     for block in by_len.values():
-        for o, (v, e, chi2) in zip(block, _fit_block(block, coef, var_t, ok_t, state, settings, delta0), strict=True):
+        fits, bins = _fit_block(block, coef, var_t, ok_t, state, settings, delta0)
+        for o, (v, e, chi2), b in zip(block, fits, bins, strict=True):
+            if np.isfinite(v):
+                residuals[int(o.index)] = b
             if not np.isfinite(v):
                 rows.append({"order": int(o.index), "wavelength": float(np.median(o.wave)), "rv": np.nan,
                              "rv_err": np.nan, "chi2_red": np.nan, "flag": "no fit"})
@@ -282,14 +292,16 @@ def measure_template(orders: list[PreparedOrder], state: TemplateState, settings
     rv = float(np.sum(w * vel[keep]) / np.sum(w))
     chi2_orders = float(np.sum(w * (vel[keep] - rv) ** 2) / max(keep.sum() - 1, 1))
     snr = float(np.median(np.concatenate([o.flux[o.good][::4] / np.sqrt(o.var[o.good][::4]) for o in orders])))
-    return TemplateResult(rv, float(1 / np.sqrt(np.sum(w))), snr, int(keep.sum()), tuple(rows), chi2_orders)
+    return TemplateResult(rv, float(1 / np.sqrt(np.sum(w))), snr, int(keep.sum()), tuple(rows), chi2_orders,
+                          residuals)
 
 
 def _fit_block(block: list[PreparedOrder], coef, var_t, ok_t, state: TemplateState, settings: TemplateSettings,
                delta0: float):
     """Gauss-Newton for (delta, c0..c_deg) of several orders of equal length at once.
 
-    Returns per order (rv_topo, rv_err, reduced chi-square); NaN where the fit is impossible.
+    Returns per order (rv_topo, rv_err, reduced chi-square), NaN where the fit is impossible, and
+    per order its binned relative residuals (:func:`.response.bin_residuals`).
     """
     seg = np.array([state.segment(o.index) for o in block], dtype=float)   # (k, 3): start, offset, length
     base = (seg[:, 1] - seg[:, 0])[:, None]          # grid index -> index in the segment arrays
@@ -349,4 +361,5 @@ def _fit_block(block: list[PreparedOrder], coef, var_t, ok_t, state: TemplateSta
     v = C_MS * np.expm1(p[:, 0])
     e = C_MS * np.exp(p[:, 0]) * np.sqrt(np.abs(cov[:, 0, 0]))
     bad = ~alive | ~np.isfinite(p).all(axis=1)
-    return [(np.nan, np.nan, np.nan) if bad[j] else (v[j], e[j], chi2[j]) for j in range(k)]
+    bins = bin_residuals(wave, r, poly * T, w, J[:, :, 0])
+    return [(np.nan, np.nan, np.nan) if bad[j] else (v[j], e[j], chi2[j]) for j in range(k)], bins

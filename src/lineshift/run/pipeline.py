@@ -438,6 +438,7 @@ def _template_row(task: Task, obs: Observation, orders, ctx: Context) -> dict:
                method="template")
     row["_orders"] = _orders_to_topo(res.orders, task)
     row["_v_file"] = float(res.rv)
+    row["_response"] = res.residuals
     return row
 
 
@@ -477,16 +478,21 @@ def _lines_row(task: Task, obs: Observation, orders, ctx: Context) -> dict:
 
 
 def _fit_against(tasks: list[Task], first: dict[int, dict], rv: dict[int, float], ctx: Context, state,
-                 in_template: dict[int, float], *, workers: int | None, scheduler) -> dict[int, dict]:
+                 in_template: dict[int, float], *, workers: int | None, scheduler,
+                 residuals: dict[int, dict] | None = None) -> dict[int, dict]:
     """Fit each spectrum against the template ``state``, starting from velocity ``rv`` (m/s); a spectrum that
     is part of the template (``in_template``: its co-adding factor) is fitted against the template without
-    itself.  Line-shape columns come from the mask pass (``first``)."""
+    itself.  Line-shape columns come from the mask pass (``first``).  The template engine's binned fit
+    residuals (:mod:`lineshift.measure.response`) go to ``residuals`` (by task index) when given."""
     tctx = Context(ctx.mask, ctx.settings, state)
     ttasks = [replace(t, delta0=float(np.log((1 + rv[t.index] / C_MS) / (1 + t.berv / C_MS))),
                       factor=in_template.get(t.index), fwhm=first[t.index].get("fwhm")) for t in tasks]
     new = {}
     for task, row in run_tasks(measure_task, ttasks, tctx, workers=workers, scheduler=scheduler):
         first_row = first[task.index]
+        resid = row.pop("_response", None)
+        if residuals is not None and resid:
+            residuals[task.index] = resid
         for k in ("fwhm", "contrast", "fwhm_err", "contrast_err", "bisector_span", "bisector_span_err", "n_lines"):
             if not (k == "n_lines" and row.get(k) is not None):   # the lines engine counts its own lines
                 row[k] = first_row.get(k)
@@ -501,6 +507,7 @@ def _run_template(tasks: list[Task], first: dict[int, dict], ctx: Context, *, wo
 
     Returns the rows, the last template and the co-adding factor of each spectrum in it."""
     from lineshift.measure.coadd import TemplateAccumulator, log_grid, on_common_continuum
+    from lineshift.measure.response import detector_response
     from lineshift.measure.template_engine import TemplateState, template_smoothing
 
     rows = dict(first)
@@ -513,7 +520,7 @@ def _run_template(tasks: list[Task], first: dict[int, dict], ctx: Context, *, wo
             ranges[t.index] = tuple(span) if span is not None else _span(
                 load_spectrum(t.path, medium=ctx.settings.medium, flux_time_key=ctx.settings.flux_time_key))
     continua = None   # every spectrum of an order is normalised by one spectrum's continuum (coadd.py)
-    for _ in range(max_iter):
+    for it in range(max_iter):
         use = [t for t in tasks if rows[t.index].get("status") == "ok" and t.index in ranges]
         if len(use) < 2:
             raise MeasurementError("the template engine needs at least two spectra with a first-pass velocity")
@@ -531,13 +538,18 @@ def _run_template(tasks: list[Task], first: dict[int, dict], ctx: Context, *, wo
         fwhm = fwhm[np.isfinite(fwhm)]
         state = TemplateState.from_accumulator(acc, template_smoothing(float(np.median(fwhm)) if fwhm.size else 0.0),
                                                continua)
+        residuals: dict[int, dict] = {}
         new = _fit_against(use, first, {t.index: rows[t.index]["rv"] for t in use}, ctx, state, factor,
-                           workers=workers, scheduler=scheduler)
+                           workers=workers, scheduler=scheduler, residuals=residuals)
         moved = [abs(new[i]["rv"] - rows[i]["rv"]) / new[i]["rv_err"] for i in new
                  if new[i]["status"] == "ok" and rows[i].get("method") in CO_ADDED]
         rows.update(new)
-        if moved and max(moved) < 0.1:
+        if (moved and max(moved) < 0.1) or it == max_iter - 1:
             break
+        if residuals:   # the response the common continuum left in every spectrum, divided out next pass
+            response = detector_response([(float(np.log(factor[i])), residuals[i]) for i in residuals
+                                          if new[i]["status"] == "ok"], {k: c.size for k, c in continua.items()})
+            continua = {k: c * np.exp(response[k]) if k in response else c for k, c in continua.items()}
     return rows, state, factor
 
 
