@@ -133,3 +133,27 @@ def test_mask_builder_places_tellurics_with_the_observations_berv(pair, monkeypa
     # first pass co-adds at rv = 0: the range is the observation's BERV itself (astropy, in the fixture)
     assert seen["topo"] == pytest.approx((berv, berv), abs=0.01)
     assert seen["bary"] == pytest.approx((berv, berv), abs=0.01)
+
+
+def test_template_co_add_places_tellurics_in_the_observatory_frame_of_a_barycentric_file():
+    """A barycentric file shows an observatory-frame telluric band at lambda (1 + BERV/c) (Doppler
+    shift of the wavelength axis, Wright & Eastman 2014 composition): the co-add gives no weight there."""
+    from lineshift.measure.coadd import TemplateAccumulator, log_grid
+    from lineshift.measure.prepare import PreparedOrder
+
+    wave = np.linspace(5000.0, 5010.0, 2001)
+    edges = np.concatenate(([wave[0] - 0.0025], 0.5 * (wave[1:] + wave[:-1]), [wave[-1] + 0.0025]))
+    n = wave.size
+    order = PreparedOrder(wave, edges, np.ones(n), np.full(n, 1e-4), np.ones(n), np.ones(n, bool), 0, None)
+    band = np.array([[5004.0, 5005.0]])   # observatory frame, vacuum
+    berv = 30_000.0
+    acc = TemplateAccumulator(log_grid(4999.0, 5011.0, 200.0), bands=band)
+    (_, sl, w, *_), = acc.contributions([order], 1.0, band_factor=1 + berv / C_MS)
+    lam = acc.grid[sl]
+    lo, hi = 5004.0 * (1 + berv / C_MS), 5005.0 * (1 + berv / C_MS)   # where the file shows the band
+    assert np.all(w[(lam > lo + 0.01) & (lam < hi - 0.01)] == 0)
+    assert np.all(w[(lam > 5002.0) & (lam < lo - 0.01)] > 0)          # unshifted band edge: weight kept
+    from lineshift.run.pipeline import Task, _band_factor
+
+    assert _band_factor(Task(0, "x", 0.0, 0.0, (), "", berv_obs=berv)) == pytest.approx(1 + berv / C_MS, rel=1e-15)
+    assert _band_factor(Task(0, "x", berv, 0.0, (), "")) == 1.0

@@ -226,9 +226,12 @@ class TemplateAccumulator:
     def flagged(self) -> np.ndarray:
         return self._sums().flagged
 
-    def contributions(self, orders: list[PreparedOrder], factor: float):
+    def contributions(self, orders: list[PreparedOrder], factor: float, band_factor: float = 1.0):
         """Per order: (order index, slice of the grid, weight, weight x flux, weight^2 x variance, flags)
-        that :meth:`add` would accumulate for this spectrum.  Used to remove a spectrum from a template."""
+        that :meth:`add` would accumulate for this spectrum.  Used to remove a spectrum from a template.
+
+        ``band_factor`` is file-frame / observatory-frame wavelength (1 for a topocentric file,
+        ``1 + BERV/c`` for a barycentric one): the telluric bands are placed in the observatory frame."""
         lnf = np.log(factor)
         for o in orders:
             u = np.log(o.wave) + lnf
@@ -256,7 +259,7 @@ class TemplateAccumulator:
             if self.bands.size:
                 near = self.bands[(self.bands[:, 1] >= o.wave[0]) & (self.bands[:, 0] <= o.wave[-1])]
                 if near.size:
-                    lam_obs = np.exp(pts - lnf)
+                    lam_obs = np.exp(pts - lnf) / band_factor
                     inband = np.zeros(pts.size, dtype=bool)
                     for lo, hi in near:
                         inband |= (lam_obs >= lo) & (lam_obs <= hi)
@@ -264,12 +267,13 @@ class TemplateAccumulator:
             near_edge = (j < self.edge_margin) | (j > o.flux.size - 2 - self.edge_margin)
             yield o.index, slice(i0, i1), w, w * f, w * w * v, near_edge | ~ok
 
-    def add(self, orders: list[PreparedOrder], factor: float) -> None:
-        """Add one spectrum's orders, shifted by ``lambda_rest = lambda_obs * factor``."""
+    def add(self, orders: list[PreparedOrder], factor: float, band_factor: float = 1.0) -> None:
+        """Add one spectrum's orders, shifted by ``lambda_rest = lambda_obs * factor`` (``band_factor``:
+        see :meth:`contributions`)."""
         self.n_spectra += 1
         for o in orders:
             self._pixel_steps.append(float(np.median(C_MS * np.diff(o.wave) / o.wave[1:])))
-        for index, sl, w, wf, w2v, flags in self.contributions(orders, factor):
+        for index, sl, w, wf, w2v, flags in self.contributions(orders, factor, band_factor):
             if self.per_order:
                 seg = self.segments.get(index)
                 if seg is None:

@@ -199,7 +199,8 @@ def _poly_fit(flux, var, T, vt, powers, m, clip, P0):
 
 
 def measure_lines(orders: list[PreparedOrder], state, mask: LineMask, settings: LinesSettings | None = None, *,
-                  delta0: float, factor: float | None, path: str | None = None) -> LinesResult:
+                  delta0: float, factor: float | None, path: str | None = None,
+                  band_factor: float = 1.0) -> LinesResult:
     """Line-by-line topocentric velocity of one prepared spectrum against the template ``state``.
 
     Parameters
@@ -211,6 +212,7 @@ def measure_lines(orders: list[PreparedOrder], state, mask: LineMask, settings: 
     delta0 : float, starting ln(1 + rv_topo/c) relative to the template's frame
     factor : float or None, the co-adding factor this spectrum entered the template with (None: not in it)
     path : str, for error messages
+    band_factor : float, file-frame / observatory-frame wavelength (telluric bands; 1 unless barycentric)
 
     Raises
     ------
@@ -221,8 +223,8 @@ def measure_lines(orders: list[PreparedOrder], state, mask: LineMask, settings: 
     if not orders:
         raise MeasurementError("no usable order (too few valid pixels)", path=path, status="no valid pixels")
     orders = on_common_continuum(orders, state.continua)
-    flux_t, var_t, ok_t = state.smoothed(*state.without(orders, factor))
-    orders = [drop_bands(o, state.bands) for o in orders]   # telluric pixels, in this spectrum's frame
+    flux_t, var_t, ok_t = state.smoothed(*state.without(orders, factor, band_factor))
+    orders = [drop_bands(o, state.bands * band_factor) for o in orders]   # telluric pixels, in this spectrum's frame
     coef = state.prefilter(flux_t)
     ok_t = ok_t & np.isfinite(var_t)
     var_t = np.where(ok_t, var_t, 0.0)

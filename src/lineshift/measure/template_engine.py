@@ -151,13 +151,13 @@ class TemplateState:
             self.__dict__["_acc"] = acc
         return acc
 
-    def without(self, orders: list[PreparedOrder], factor: float | None):
+    def without(self, orders: list[PreparedOrder], factor: float | None, band_factor: float = 1.0):
         """Template flux and variance (laid out as the segments) with this spectrum's own contribution
-        removed, and which points are usable."""
+        removed, and which points are usable (``band_factor`` as it was added with)."""
         sw, swf, sw2v = self.sw, self.swf, self.sw2v
         if factor is not None:
             sw, swf, sw2v = sw.copy(), swf.copy(), sw2v.copy()
-            for index, sl, w, wf, w2v, _ in self._grid().contributions(orders, factor):
+            for index, sl, w, wf, w2v, _ in self._grid().contributions(orders, factor, band_factor):
                 seg = self.segment(index)
                 if seg is None:
                     continue
@@ -239,19 +239,21 @@ class TemplateResult:
 
 
 def measure_template(orders: list[PreparedOrder], state: TemplateState, settings: TemplateSettings, *,
-                     delta0: float, factor: float | None, berv: float = 0.0, path: str | None = None
-                     ) -> TemplateResult:
+                     delta0: float, factor: float | None, berv: float = 0.0, path: str | None = None,
+                     band_factor: float = 1.0) -> TemplateResult:
     """Topocentric velocity (relative to the template's frame) of one prepared spectrum.
 
     ``delta0`` is the starting ln(1 + rv_topo/c); ``factor`` the co-adding factor this spectrum
-    entered the template with (None when it is not part of it: nothing is subtracted).
+    entered the template with (None when it is not part of it: nothing is subtracted);
+    ``band_factor`` file-frame / observatory-frame wavelength, placing the telluric bands (1 unless
+    the file is barycentric).
     """
     if not orders:
         raise MeasurementError("no usable order (too few valid pixels)", path=path, status="no valid pixels")
     orders = on_common_continuum(orders, state.continua)
-    flux_t, var_t, ok_t = state.smoothed(*state.without(orders, factor))
+    flux_t, var_t, ok_t = state.smoothed(*state.without(orders, factor, band_factor))
     # this spectrum's telluric pixels (listed bands and lines found in the batch), in its own frame
-    orders = [drop_bands(o, state.bands) for o in orders]
+    orders = [drop_bands(o, state.bands * band_factor) for o in orders]
     coef = state.prefilter(flux_t)
     ok_t = ok_t & np.isfinite(var_t)
     var_t = np.where(ok_t, var_t, 0.0)

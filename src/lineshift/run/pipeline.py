@@ -138,6 +138,13 @@ def frame_velocities(task: Task, v_file: float) -> tuple[float, float]:
     return rv, float(C_MS * ((1 + rv / C_MS) / (1 + b / C_MS) - 1))
 
 
+def _band_factor(task: Task) -> float:
+    """File-frame / observatory-frame wavelength of a task's spectrum: 1 for a topocentric file,
+    ``(1 + BERV/c) / (1 + berv/c)`` for one already barycentric (``berv`` 0), so telluric bands fixed
+    in the observatory frame land where the file shows them."""
+    return float((1 + task.observed_berv / C_MS) / (1 + task.berv / C_MS))
+
+
 def _orders_to_topo(orders, task: Task) -> list[dict]:
     """Per-order rows in the observatory frame (a barycentric file's shifts moved by its BERV)."""
     out = [dict(o) for o in orders]
@@ -427,7 +434,7 @@ def _template_row(task: Task, obs: Observation, orders, ctx: Context) -> dict:
         raise MeasurementError("no first-pass velocity to start the template fit from", path=task.path,
                                status="no velocity")
     res = measure_template(orders, ctx.template, TemplateSettings(), delta0=task.delta0, factor=task.factor,
-                           berv=task.berv, path=task.path)
+                           berv=task.berv, path=task.path, band_factor=_band_factor(task))
     flagged = [o for o in res.orders if o["flag"]]
     notes = tuple(obs.notes) + task.notes + ((f"{len(flagged)} order(s) flagged (poor fit or rejected)",)
                                              if flagged else ())
@@ -454,7 +461,7 @@ def _lines_row(task: Task, obs: Observation, orders, ctx: Context) -> dict:
         # the line and its wings: +-1.5 FWHM is +-3.5 sigma of a Gaussian profile
         settings = LinesSettings(half_window=1.5 * float(task.fwhm))
     res = measure_lines(orders, ctx.template, ctx.mask, settings, delta0=task.delta0, factor=task.factor,
-                        path=task.path)
+                        path=task.path, band_factor=_band_factor(task))
     scale = 1 + task.berv / C_MS
     lines = []
     for line in res.lines:
@@ -533,7 +540,8 @@ def _run_template(tasks: list[Task], first: dict[int, dict], ctx: Context, *, wo
         acc = TemplateAccumulator(log_grid(lo * (1 - 1e-4), hi * (1 + 1e-4), np.median(steps) / 2), bands=bands,
                                   per_order=True)
         for t in use:
-            acc.add(on_common_continuum(_load_prepared(t.path, ctx.settings)[1], continua), factor[t.index])
+            acc.add(on_common_continuum(_load_prepared(t.path, ctx.settings)[1], continua), factor[t.index],
+                    _band_factor(t))
         fwhm = np.array([first[t.index].get("fwhm") or np.nan for t in use], float)   # mask-pass CCF widths
         fwhm = fwhm[np.isfinite(fwhm)]
         state = TemplateState.from_accumulator(acc, template_smoothing(float(np.median(fwhm)) if fwhm.size else 0.0),
