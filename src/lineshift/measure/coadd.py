@@ -320,28 +320,27 @@ def reject_above(orders: list[PreparedOrder], ref: np.ndarray, segments: np.ndar
     ``ref`` is a template's flux laid out as ``segments`` (rows: order index, first grid index,
     offset, length; index -1 serves every order) on the grid ``exp(lng0 + dlng * i)``, NaN where
     nothing contributed.  Each order is compared with the reference shifted by ``factor`` (as
-    :meth:`TemplateAccumulator.add`) and scaled by the running median (``2 * half + 1`` pixels) of
-    their ratio, which follows the smooth difference of counts and response between the spectrum
-    and the co-add; a pixel more than ``nsigma`` noise sigma above that model is rejected, with
-    ``grow`` neighbours each side.  Only excesses are rejected: cosmic rays are positive, and an
-    absorption feature the reference lacks is spectrum, not a hit.  The rule is the same
-    significance test as :mod:`.outliers` against a given model (van Dokkum 2001, PASP 113, 1420),
-    without its run limit: the reference is the star itself, so no real feature stands that far above it.
+    :meth:`TemplateAccumulator.add`) and scaled by the medians of their ratio in blocks of
+    ``2 * half + 1`` pixels (interpolated between the blocks), which follows the smooth difference
+    of counts and response between the spectrum and the co-add; a pixel more than ``nsigma`` noise
+    sigma above that model is rejected, with ``grow`` neighbours each side.  Only excesses are
+    rejected: cosmic rays are positive, and an absorption feature the reference lacks is spectrum,
+    not a hit.  The rule is the significance test of :mod:`.outliers` against a given model (van
+    Dokkum 2001, PASP 113, 1420) without its run limit: the reference is the star itself, so no real
+    feature stands that far above it.
     Deterministic in its inputs, so a fit that removes a spectrum's own contribution recomputes
     exactly what the co-add used.
     """
-    from lineshift.measure.outliers import running_median
-
     if coef is None:
         coef = reference_coefficients(ref, segments)
     table = {int(k): (int(a), int(b), int(n)) for k, a, b, n in segments}
     ok_ref = np.isfinite(ref)
     lnf = np.log(factor)
-    out = []
-    for o in orders:
+    out = list(orders)
+    todo: dict[int, list[tuple[int, np.ndarray, np.ndarray]]] = {}   # by length: (position, model, usable)
+    for pos, o in enumerate(orders):
         seg = table.get(-1, table.get(int(o.index)))
         if seg is None:
-            out.append(o)
             continue
         start, off, n = seg
         xi = (np.log(o.wave) + lnf - lng0) / dlng - start      # index within the segment
@@ -350,22 +349,42 @@ def reject_above(orders: list[PreparedOrder], ref: np.ndarray, segments: np.ndar
         i0 = np.floor(xc).astype(np.intp)
         T, _ = bspline(coef, xc)
         usable = o.good & inside & ok_ref[i0] & ok_ref[i0 + 1] & (T > 0)
-        if usable.sum() < 2 * half + 1:
-            out.append(o)
-            continue
+        if usable.sum() >= 2 * half + 1:
+            todo.setdefault(o.flux.size, []).append((pos, T, usable))
+    for rows in todo.values():   # the running medians of all orders of one length at once
+        T = np.vstack([r[1] for r in rows])
+        usable = np.vstack([r[2] for r in rows])
+        flux = np.vstack([orders[r[0]].flux for r in rows])
+        var = np.vstack([orders[r[0]].var for r in rows])
         with np.errstate(invalid="ignore", divide="ignore"):
-            ratio = np.where(usable, o.flux / np.where(usable, T, 1.0), np.nan)
-        scale = running_median(ratio, ~usable, half)
-        with np.errstate(invalid="ignore"):
-            hit = usable & (o.flux - scale * T > nsigma * np.sqrt(o.var))
-        if not hit.any():
-            out.append(o)
-            continue
+            ratio = np.where(usable, flux / np.where(usable, T, 1.0), np.nan)
+            scale = _block_median(ratio, 2 * half + 1)
+            hit = usable & (flux - scale * T > nsigma * np.sqrt(var))
         grown = hit.copy()
         for k in range(1, grow + 1):
-            grown[:-k] |= hit[k:]
-            grown[k:] |= hit[:-k]
-        out.append(replace(o, good=o.good & ~grown))
+            grown[:, :-k] |= hit[:, k:]
+            grown[:, k:] |= hit[:, :-k]
+        for (pos, _, _), g in zip(rows, grown, strict=True):
+            if g.any():
+                out[pos] = replace(orders[pos], good=orders[pos].good & ~g)
+    return out
+
+
+def _block_median(x: np.ndarray, width: int) -> np.ndarray:
+    """Per row, the medians of the finite values in blocks of ``width`` pixels, interpolated
+    linearly between the block centres (a smooth curve through a slowly varying ratio)."""
+    from lineshift.measure.outliers import median_of_finite
+
+    rows, n = x.shape
+    nb = max(n // width, 1)
+    width = n // nb
+    med = median_of_finite(x[:, :nb * width].reshape(rows * nb, width)).reshape(rows, nb)
+    centre = (np.arange(nb) + 0.5) * width - 0.5
+    out = np.full(x.shape, np.nan)
+    for r in range(rows):
+        ok = np.isfinite(med[r])
+        if ok.any():
+            out[r] = np.interp(np.arange(n), centre[ok], med[r, ok])
     return out
 
 
