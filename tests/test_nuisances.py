@@ -161,9 +161,6 @@ def _cost(batch, tmp_path_factory, name, method):
 
 # Figures measured with 12 draws, 8 orders (the reasons quote them).
 XFAIL = {
-    ("all", "template"): "template engine, all nuisances: x1.86 the clean scatter (ratio 2.01), pull std 1.23; "
-                         "cosmics alone x1.54 with shift/err rms 3.83 (mask engine 1.01) and zero point "
-                         "-29 m/s: cosmic-ray hits left in the template fit",
     ("mask_zero_point", "mask"): "mismatched mask moves the mask-engine zero point by -11.2 m/s "
                                  "(error per spectrum 4.9 m/s); wrong weights alone moved it by ~-70 m/s "
                                  "on a batch of this set-up: the weighted mean of the lines' blend offsets "

@@ -32,7 +32,8 @@ from scipy.ndimage import spline_filter1d
 from lineshift.measure.prepare import PreparedOrder
 from lineshift.model import C_MS
 
-__all__ = ["Template", "TemplateAccumulator", "bspline", "bspline_reference", "log_grid", "on_common_continuum"]
+__all__ = ["Template", "TemplateAccumulator", "bspline", "bspline_reference", "log_grid", "on_common_continuum",
+           "reference_coefficients", "reject_above"]
 
 _BAD_REACH = 4  # pixels around a bad one that the spline prefilter's tail reaches (decays 0.27x per pixel)
 
@@ -178,11 +179,19 @@ class TemplateAccumulator:
     Streaming: one spectrum at a time is enough (memory is that of the grid).  With ``per_order``
     the sums are kept per order index (:attr:`segments`, each covering only that order's part of the
     grid) so that each order has a template of its own; :meth:`result` still gives their co-add.
+
+    With ``levelled`` each order's contribution is divided by its median flux first (weights by its
+    square), so spectra of different exposure levels (on a common continuum, flux is counts) enter at
+    one level: a point where one spectrum is left out (a bad pixel, a cosmic ray) then shows no step
+    of the level difference, and such points are not flagged (only order edges are).  Otherwise a
+    point touched by a bad pixel of any contribution is flagged, which with many cosmic-ray hits in
+    a batch takes a quarter of the template from every fit.
     """
 
     def __init__(self, grid: np.ndarray, *, edge_margin: int = 8, bands: np.ndarray | None = None,
-                 per_order: bool = False):
+                 per_order: bool = False, levelled: bool = False):
         self.grid = grid
+        self.levelled = levelled
         self.lng = np.log(grid)
         self.step = float(C_MS * np.expm1(self.lng[1] - self.lng[0]))
         self.per_order = per_order
@@ -256,6 +265,10 @@ class TemplateAccumulator:
             ok = good[j] & good[j + 1] & ~reach[j] & ~reach[j + 1]
             v = (1 - t) * o.var[j] + t * o.var[j + 1]   # per-pixel noise level here (see Template)
             w = np.where(ok, (1 - t) * o.weight[j] + t * o.weight[j + 1], 0.0)
+            if self.levelled:   # on a common level: f / L, var / L^2, weight * L^2
+                level = float(np.median(o.flux[good])) if good.any() else 1.0
+                if np.isfinite(level) and level > 0:
+                    f, v, w = f / level, v / level**2, w * level**2
             if self.bands.size:
                 near = self.bands[(self.bands[:, 1] >= o.wave[0]) & (self.bands[:, 0] <= o.wave[-1])]
                 if near.size:
@@ -265,7 +278,7 @@ class TemplateAccumulator:
                         inband |= (lam_obs >= lo) & (lam_obs <= hi)
                     w = np.where(inband, 0.0, w)
             near_edge = (j < self.edge_margin) | (j > o.flux.size - 2 - self.edge_margin)
-            yield o.index, slice(i0, i1), w, w * f, w * w * v, near_edge | ~ok
+            yield o.index, slice(i0, i1), w, w * f, w * w * v, near_edge if self.levelled else near_edge | ~ok
 
     def add(self, orders: list[PreparedOrder], factor: float, band_factor: float = 1.0) -> None:
         """Add one spectrum's orders, shifted by ``lambda_rest = lambda_obs * factor`` (``band_factor``:
@@ -296,3 +309,94 @@ class TemplateAccumulator:
         pixel = float(np.median(self._pixel_steps)) if self._pixel_steps else 0.0
         return Template(self.grid, flux, var, s.count.copy(), s.flagged.copy(), self.step, self.n_spectra,
                         pixel)
+
+
+def reject_above(orders: list[PreparedOrder], ref: np.ndarray, segments: np.ndarray, lng0: float, dlng: float,
+                 factor: float, *, nsigma: float = 8.0, half: int = 25, grow: int = 1,
+                 coef: np.ndarray | None = None) -> list[PreparedOrder]:
+    """The orders with pixels far ABOVE a reference template marked bad (a cosmic-ray hit the spike
+    finder missed, e.g. a double hit wider than its run limit).
+
+    ``ref`` is a template's flux laid out as ``segments`` (rows: order index, first grid index,
+    offset, length; index -1 serves every order) on the grid ``exp(lng0 + dlng * i)``, NaN where
+    nothing contributed.  Each order is compared with the reference shifted by ``factor`` (as
+    :meth:`TemplateAccumulator.add`) and scaled by the medians of their ratio in blocks of
+    ``2 * half + 1`` pixels (interpolated between the blocks), which follows the smooth difference
+    of counts and response between the spectrum and the co-add; a pixel more than ``nsigma`` noise
+    sigma above that model is rejected, with ``grow`` neighbours each side.  Only excesses are
+    rejected: cosmic rays are positive, and an absorption feature the reference lacks is spectrum,
+    not a hit.  The rule is the significance test of :mod:`.outliers` against a given model (van
+    Dokkum 2001, PASP 113, 1420) without its run limit: the reference is the star itself, so no real
+    feature stands that far above it.
+    Deterministic in its inputs, so a fit that removes a spectrum's own contribution recomputes
+    exactly what the co-add used.
+    """
+    if coef is None:
+        coef = reference_coefficients(ref, segments)
+    table = {int(k): (int(a), int(b), int(n)) for k, a, b, n in segments}
+    ok_ref = np.isfinite(ref)
+    lnf = np.log(factor)
+    out = list(orders)
+    todo: dict[int, list[tuple[int, np.ndarray, np.ndarray]]] = {}   # by length: (position, model, usable)
+    for pos, o in enumerate(orders):
+        seg = table.get(-1, table.get(int(o.index)))
+        if seg is None:
+            continue
+        start, off, n = seg
+        xi = (np.log(o.wave) + lnf - lng0) / dlng - start      # index within the segment
+        inside = (xi > 1) & (xi < n - 3)
+        xc = np.clip(xi, 1, n - 3) + off
+        i0 = np.floor(xc).astype(np.intp)
+        T, _ = bspline(coef, xc)
+        usable = o.good & inside & ok_ref[i0] & ok_ref[i0 + 1] & (T > 0)
+        if usable.sum() >= 2 * half + 1:
+            todo.setdefault(o.flux.size, []).append((pos, T, usable))
+    for rows in todo.values():   # the running medians of all orders of one length at once
+        T = np.vstack([r[1] for r in rows])
+        usable = np.vstack([r[2] for r in rows])
+        flux = np.vstack([orders[r[0]].flux for r in rows])
+        var = np.vstack([orders[r[0]].var for r in rows])
+        with np.errstate(invalid="ignore", divide="ignore"):
+            ratio = np.where(usable, flux / np.where(usable, T, 1.0), np.nan)
+            scale = _block_median(ratio, 2 * half + 1)
+            hit = usable & (flux - scale * T > nsigma * np.sqrt(var))
+        grown = hit.copy()
+        for k in range(1, grow + 1):
+            grown[:, :-k] |= hit[:, k:]
+            grown[:, k:] |= hit[:, :-k]
+        for (pos, _, _), g in zip(rows, grown, strict=True):
+            if g.any():
+                out[pos] = replace(orders[pos], good=orders[pos].good & ~g)
+    return out
+
+
+def _block_median(x: np.ndarray, width: int) -> np.ndarray:
+    """Per row, the medians of the finite values in blocks of ``width`` pixels, interpolated
+    linearly between the block centres (a smooth curve through a slowly varying ratio)."""
+    from lineshift.measure.outliers import median_of_finite
+
+    rows, n = x.shape
+    nb = max(n // width, 1)
+    width = n // nb
+    med = median_of_finite(x[:, :nb * width].reshape(rows * nb, width)).reshape(rows, nb)
+    centre = (np.arange(nb) + 0.5) * width - 0.5
+    out = np.full(x.shape, np.nan)
+    for r in range(rows):
+        ok = np.isfinite(med[r])
+        if ok.any():
+            out[r] = np.interp(np.arange(n), centre[ok], med[r, ok])
+    return out
+
+
+def reference_coefficients(ref: np.ndarray, segments: np.ndarray) -> np.ndarray:
+    """Cubic B-spline coefficients of a reference template (:func:`reject_above`), each segment on
+    its own, with the points where nothing contributed filled from their neighbours."""
+    coef = np.ones_like(ref, dtype=float)
+    for _, _, off, n in segments:
+        f = ref[off:off + n]
+        ok = np.isfinite(f)
+        if ok.sum() < 4:
+            continue
+        idx = np.arange(n)
+        coef[off:off + n] = spline_filter1d(np.interp(idx, idx[ok], f[ok]), order=3, mode="mirror")
+    return coef

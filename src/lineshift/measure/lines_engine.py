@@ -223,6 +223,7 @@ def measure_lines(orders: list[PreparedOrder], state, mask: LineMask, settings: 
     if not orders:
         raise MeasurementError("no usable order (too few valid pixels)", path=path, status="no valid pixels")
     orders = on_common_continuum(orders, state.continua)
+    orders = state.screened(orders, factor if factor is not None else float(np.exp(-delta0)))
     flux_t, var_t, ok_t = state.smoothed(*state.without(orders, factor, band_factor))
     orders = [drop_bands(o, state.bands * band_factor) for o in orders]   # telluric pixels, in this spectrum's frame
     coef = state.prefilter(flux_t)

@@ -22,10 +22,10 @@ from __future__ import annotations
 import numpy as np
 from numpy.lib.stride_tricks import sliding_window_view
 
-__all__ = ["find_spikes", "find_spikes_reference", "running_median"]
+__all__ = ["find_spikes", "find_spikes_reference", "median_of_finite", "running_median"]
 
 
-def _median_of_finite(win: np.ndarray) -> np.ndarray:
+def median_of_finite(win: np.ndarray) -> np.ndarray:
     """Median of the finite values of each row of ``win`` (NaN where none), as ``np.nanmedian``
     gives it, through one sort (NaN sorts last) instead of a masked-array median."""
     s = np.sort(win, axis=-1)
@@ -69,7 +69,7 @@ class _RunningMedian:
         r, i = np.nonzero(gappy)
         if r.size:
             x = np.pad(np.where(bad, np.nan, self.flux), ((0, 0), (h, h)), constant_values=np.nan)
-            out[r, i] = _median_of_finite(x[r[:, None], i[:, None] + np.arange(width)[None, :]])
+            out[r, i] = median_of_finite(x[r[:, None], i[:, None] + np.arange(width)[None, :]])
         return out
 
 
@@ -225,7 +225,7 @@ def find_spikes(flux: np.ndarray, var: np.ndarray, good: np.ndarray | None = Non
                 win = x[cand_r[:, None], cols]
                 hit = spikes[cand_r[:, None], np.clip(cols - max_width, 0, flux.shape[1] - 1)]
                 inside = (cols >= max_width) & (cols < flux.shape[1] + max_width)
-                ref[cand_r, cand_i] = _median_of_finite(np.where(hit & inside, np.nan, win))
+                ref[cand_r, cand_i] = median_of_finite(np.where(hit & inside, np.nan, win))
         else:
             ref = np.atleast_2d(np.asarray(model, dtype=float))
         with np.errstate(invalid="ignore", divide="ignore"):

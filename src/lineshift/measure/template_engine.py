@@ -40,7 +40,13 @@ import numpy as np
 from scipy.ndimage import gaussian_filter1d, spline_filter1d
 
 from lineshift.errors import MeasurementError
-from lineshift.measure.coadd import TemplateAccumulator, bspline, on_common_continuum
+from lineshift.measure.coadd import (
+    TemplateAccumulator,
+    bspline,
+    on_common_continuum,
+    reference_coefficients,
+    reject_above,
+)
 from lineshift.measure.prepare import PreparedOrder
 from lineshift.measure.response import bin_residuals
 from lineshift.measure.tellurics import drop_bands
@@ -98,6 +104,11 @@ class TemplateState:
     smooth: float = 0.0        # Gaussian sigma (m/s) the template is smoothed with before the fit
     pixel_step: float = 0.0    # median detector pixel width of the inputs in velocity (m/s)
     continua: dict | None = None   # order index -> common continuum (counts) the inputs were normalised by
+    #: the template every input was screened against before it was co-added (:meth:`screened`): its
+    #: flux (NaN where empty) laid out as ``ref_segments``; None when nothing was screened
+    ref_flux: np.ndarray | None = None
+    ref_segments: np.ndarray | None = None
+    levelled: bool = False     # contributions co-added on a common level (:class:`.coadd.TemplateAccumulator`)
 
     def __post_init__(self):
         if self.segments is None:
@@ -117,7 +128,25 @@ class TemplateState:
         return cls(float(acc.lng[0]), float(acc.lng[1] - acc.lng[0]),
                    *(np.concatenate([getattr(g, name) for g in segs]) for name in ("sw", "swf", "sw2v", "flagged")),
                    acc.bands, acc.edge_margin, acc.n_spectra, np.array(rows, dtype=np.int64), smooth,
-                   float(np.median(acc._pixel_steps)) if acc._pixel_steps else 0.0, continua)
+                   float(np.median(acc._pixel_steps)) if acc._pixel_steps else 0.0, continua,
+                   levelled=acc.levelled)
+
+    def flux(self) -> np.ndarray:
+        """The co-added flux laid out as the segments (NaN where nothing contributed)."""
+        with np.errstate(invalid="ignore", divide="ignore"):
+            return np.where(self.sw > 0, self.swf / np.where(self.sw > 0, self.sw, 1.0), np.nan)
+
+    def screened(self, orders: list[PreparedOrder], factor: float) -> list[PreparedOrder]:
+        """The orders with the pixels far above the screening template marked bad
+        (:func:`.coadd.reject_above`; ``factor`` as the spectrum is co-added with).  Applied alike
+        before a spectrum is co-added and before it is fitted, so its own contribution is removed
+        exactly and a hit the spike finder missed enters neither the template nor the fit."""
+        if self.ref_flux is None:
+            return orders
+        coef = self.__dict__.get("_ref_coef")
+        if coef is None:
+            coef = self.__dict__["_ref_coef"] = reference_coefficients(self.ref_flux, self.ref_segments)
+        return reject_above(orders, self.ref_flux, self.ref_segments, self.lng0, self.dlng, factor, coef=coef)
 
     def to_arrays(self) -> dict[str, np.ndarray]:
         """Plain arrays (for the results store): the inverse of :meth:`from_arrays`."""
@@ -125,13 +154,17 @@ class TemplateState:
                 "sw2v": self.sw2v, "flagged": self.flagged, "bands": np.asarray(self.bands, float),
                 "edge_margin": np.array(self.edge_margin), "n_spectra": np.array(self.n_spectra),
                 "segments": self.segments, "smooth": np.array(self.smooth), "pixel_step": np.array(self.pixel_step),
-                **_pack_continua(self.continua)}
+                **_pack_continua(self.continua),
+                "levelled": np.array(self.levelled),
+                **({} if self.ref_flux is None else {"ref_flux": self.ref_flux, "ref_segments": self.ref_segments})}
 
     @classmethod
     def from_arrays(cls, a: dict[str, np.ndarray]) -> TemplateState:
         return cls(float(a["lng0"]), float(a["dlng"]), a["sw"], a["swf"], a["sw2v"], a["flagged"].astype(bool),
                    a["bands"].reshape(-1, 2), int(a["edge_margin"]), int(a["n_spectra"]), a.get("segments"),
-                   float(a.get("smooth", 0.0)), float(a.get("pixel_step", 0.0)), _unpack_continua(a))
+                   float(a.get("smooth", 0.0)), float(a.get("pixel_step", 0.0)), _unpack_continua(a),
+                   a.get("ref_flux"), None if a.get("ref_segments") is None else a["ref_segments"].reshape(-1, 4),
+                   bool(a.get("levelled", False)))
 
     def segment(self, index: int) -> tuple[int, int, int] | None:
         """(first grid index, offset in the arrays, length) of the template for order ``index``."""
@@ -147,7 +180,7 @@ class TemplateState:
         if acc is None:
             n = int(np.max(self.segments[:, 1] + self.segments[:, 3]))
             acc = TemplateAccumulator(np.exp(self.lng0 + self.dlng * np.arange(n)),
-                                      edge_margin=self.edge_margin, bands=self.bands)
+                                      edge_margin=self.edge_margin, bands=self.bands, levelled=self.levelled)
             self.__dict__["_acc"] = acc
         return acc
 
@@ -251,6 +284,7 @@ def measure_template(orders: list[PreparedOrder], state: TemplateState, settings
     if not orders:
         raise MeasurementError("no usable order (too few valid pixels)", path=path, status="no valid pixels")
     orders = on_common_continuum(orders, state.continua)
+    orders = state.screened(orders, factor if factor is not None else float(np.exp(-delta0)))
     flux_t, var_t, ok_t = state.smoothed(*state.without(orders, factor, band_factor))
     # this spectrum's telluric pixels (listed bands and lines found in the batch), in its own frame
     orders = [drop_bands(o, state.bands * band_factor) for o in orders]

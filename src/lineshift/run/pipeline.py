@@ -527,6 +527,7 @@ def _run_template(tasks: list[Task], first: dict[int, dict], ctx: Context, *, wo
             ranges[t.index] = tuple(span) if span is not None else _span(
                 load_spectrum(t.path, medium=ctx.settings.medium, flux_time_key=ctx.settings.flux_time_key))
     continua = None   # every spectrum of an order is normalised by one spectrum's continuum (coadd.py)
+    state = None
     for it in range(max_iter):
         use = [t for t in tasks if rows[t.index].get("status") == "ok" and t.index in ranges]
         if len(use) < 2:
@@ -537,15 +538,27 @@ def _run_template(tasks: list[Task], first: dict[int, dict], ctx: Context, *, wo
         lo = min(ranges[t.index][0] * factor[t.index] for t in use)
         hi = max(ranges[t.index][1] * factor[t.index] for t in use)
         steps = [ranges[t.index][2] for t in use]
-        acc = TemplateAccumulator(log_grid(lo * (1 - 1e-4), hi * (1 + 1e-4), np.median(steps) / 2), bands=bands,
-                                  per_order=True)
-        for t in use:
-            acc.add(on_common_continuum(_load_prepared(t.path, ctx.settings)[1], continua), factor[t.index],
-                    _band_factor(t))
+        grid = log_grid(lo * (1 - 1e-4), hi * (1 + 1e-4), np.median(steps) / 2)
         fwhm = np.array([first[t.index].get("fwhm") or np.nan for t in use], float)   # mask-pass CCF widths
         fwhm = fwhm[np.isfinite(fwhm)]
-        state = TemplateState.from_accumulator(acc, template_smoothing(float(np.median(fwhm)) if fwhm.size else 0.0),
-                                               continua)
+        smooth = template_smoothing(float(np.median(fwhm)) if fwhm.size else 0.0)
+
+        def coadd(screen, use=use, grid=grid, continua=continua, factor=factor, smooth=smooth):
+            acc = TemplateAccumulator(grid, bands=bands, per_order=True, levelled=True)
+            for t in use:
+                orders = on_common_continuum(_load_prepared(t.path, ctx.settings)[1], continua)
+                if screen is not None:
+                    orders = screen.screened(orders, factor[t.index])
+                acc.add(orders, factor[t.index], _band_factor(t))
+            return TemplateState.from_accumulator(acc, smooth, continua)
+
+        # No spectrum's cosmic ray may enter the co-added template: every input is screened against
+        # a template (the previous pass's, else a first co-add of the unscreened inputs) and its
+        # pixels far above it are left out of the co-add and of its own fit (TemplateState.screened)
+        prev = state if state is not None else coadd(None)
+        screen = replace(prev, ref_flux=prev.flux(), ref_segments=prev.segments)
+        state = coadd(screen)
+        state.ref_flux, state.ref_segments = screen.ref_flux, screen.ref_segments
         residuals: dict[int, dict] = {}
         new = _fit_against(use, first, {t.index: rows[t.index]["rv"] for t in use}, ctx, state, factor,
                            workers=workers, scheduler=scheduler, residuals=residuals)
