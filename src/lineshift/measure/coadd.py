@@ -215,26 +215,6 @@ class TemplateAccumulator:
             total.flagged[sl] |= seg.flagged
         return total
 
-    @property
-    def sw(self) -> np.ndarray:
-        return self._sums().sw
-
-    @property
-    def swf(self) -> np.ndarray:
-        return self._sums().swf
-
-    @property
-    def sw2v(self) -> np.ndarray:
-        return self._sums().sw2v
-
-    @property
-    def count(self) -> np.ndarray:
-        return self._sums().count
-
-    @property
-    def flagged(self) -> np.ndarray:
-        return self._sums().flagged
-
     def contributions(self, orders: list[PreparedOrder], factor: float, band_factor: float = 1.0):
         """Per order: (order index, slice of the grid, weight, weight x flux, weight^2 x variance, flags)
         that :meth:`add` would accumulate for this spectrum.  Used to remove a spectrum from a template.

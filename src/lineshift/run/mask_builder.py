@@ -300,12 +300,13 @@ class _CleanAccumulator(TemplateAccumulator):
         for o in orders:
             self._pixel_steps.append(float(np.median(C_MS * np.diff(o.wave) / o.wave[1:])))
         fw, fwf, fw2v, fcount = self._fallback
+        seg = self.segments[-1]   # one co-add of every order (not per_order)
         for _, sl, w, wf, w2v, flags in self.contributions(orders, factor):
             keep = ~flags
-            self.sw[sl] += w * keep
-            self.swf[sl] += wf * keep
-            self.sw2v[sl] += w2v * keep
-            self.count[sl] += (w * keep > 0).astype(np.int64)
+            seg.sw[sl] += w * keep
+            seg.swf[sl] += wf * keep
+            seg.sw2v[sl] += w2v * keep
+            seg.count[sl] += (w * keep > 0).astype(np.int64)
             fw[sl] += w * flags
             fwf[sl] += wf * flags
             fw2v[sl] += w2v * flags
@@ -314,7 +315,7 @@ class _CleanAccumulator(TemplateAccumulator):
     def result(self) -> Template:
         t = super().result()
         fw, fwf, fw2v, fcount = self._fallback
-        only = (self.sw <= 0) & (fw > 0)
+        only = (self.segments[-1].sw <= 0) & (fw > 0)
         with np.errstate(invalid="ignore", divide="ignore"):
             flux = np.where(only, fwf / fw, t.flux)
             var = np.where(only, fw2v / fw**2, t.var)
