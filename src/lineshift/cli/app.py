@@ -107,7 +107,7 @@ class _Printable:
         self._stream = stream
 
     def write(self, text: str) -> int:
-        from lineshift.run.pipeline import printable
+        from lineshift.io.table import printable
 
         return self._stream.write(printable(text))
 
