@@ -171,6 +171,16 @@ def test_nuisance_cost(batch, tmp_path_factory, name, method, request):
     assert cost <= TARGET[method] + nr.ratio_tolerance(r, dmg.n) / _measure(batch, tmp_path_factory, "clean")[
         method].ratio()
     assert abs(dmg.pull() - 1.0) <= nr.pull_tolerance(dmg.n)
+    # issue target 0.95-1.05, on the paired pull (efficient estimator as control variate)
+    assert abs(dmg.paired_pull() - 1.0) <= nr.paired_pull_tolerance(r, dmg.n)
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("method", ["mask", "template"])
+def test_clean_paired_pulls(batch, tmp_path_factory, method):
+    # error calibration on the clean set: the band 0.95-1.05 within the draws' tolerance
+    c = _measure(batch, tmp_path_factory, "clean")[method]
+    assert abs(c.paired_pull() - 1.0) <= nr.paired_pull_tolerance(c.ratio(), c.n)
 
 
 def _shift(batch, tmp_path_factory, name, method):
@@ -213,5 +223,6 @@ def test_report_nuisance_figures(batch, tmp_path_factory, capsys):
                 c = _measure(batch, tmp_path_factory, "clean")[m]
                 dz = (r.rv - c.rv) / c.err
                 print(f"{name:22s} {m:8s} ratio {r.ratio():.3f} x{r.ratio() / c.ratio():.3f} pull {r.pull():.2f} "
+                      f"paired pull {r.paired_pull():.3f} "
                       f"zp {r.zero_point():+.1f}+-{r.zero_point_err():.1f} rejected {r.rejected.mean():.0f} "
                       f"shift/err rms {np.sqrt(np.mean(dz**2)):.2f} err {np.median(c.err):.1f}")
