@@ -7,33 +7,35 @@ Brennick Observatory*.  The simulator builds a rest-frame stellar spectrum from 
 (``star``), observes it through an instrument (``instrument``: blaze, continuum slope, resolving power,
 pixel integration) with the exact Doppler shift (``observe``), adds photon and read noise and computes the
 photon-noise bound of the noise-free model (``noise``), and writes files in every layout lineshift reads
-(``writers``).  ``from lineshift import sim`` gives all of it in one namespace.
+(``writers``).  ``from lineshift import sim`` gives all of it in one namespace; each part is imported on first use
+(PEP 562), so the command line's parser does not pay for the simulator's SciPy imports.
 """
 
-from lineshift.sim.instrument import INSTRUMENTS, Instrument, replace_instrument
-from lineshift.sim.noise import photon_noise_bound
-from lineshift.sim.observe import (
-    Exposure,
-    barycentric_truth,
-    epochs,
-    lamp_exposure,
-    observe,
-    observe_binary,
-    to_spectrum,
-)
-from lineshift.sim.star import (
-    DEMO_BINARY,
-    DEMO_LAMP,
-    DEMO_SITE,
-    DEMO_STAR,
-    Binary,
-    Site,
-    Star,
-    StarModel,
-    invented_lamp_lines,
-    with_lab_lines,
-)
-from lineshift.sim.writers import simulate_set, write_mask, write_observation, write_truth
+import importlib
+
+#: public name -> the submodule that defines it
+_HOME = {
+    "INSTRUMENTS": "instrument", "Instrument": "instrument", "replace_instrument": "instrument",
+    "photon_noise_bound": "noise",
+    "Exposure": "observe", "barycentric_truth": "observe", "epochs": "observe", "lamp_exposure": "observe",
+    "observe": "observe", "observe_binary": "observe", "to_spectrum": "observe",
+    "DEMO_BINARY": "star", "DEMO_LAMP": "star", "DEMO_SITE": "star", "DEMO_STAR": "star", "Binary": "star",
+    "Site": "star", "Star": "star", "StarModel": "star", "invented_lamp_lines": "star", "with_lab_lines": "star",
+    "simulate_set": "writers", "write_mask": "writers", "write_observation": "writers", "write_truth": "writers",
+}
+
+
+def __getattr__(name: str):
+    if name in _HOME:
+        value = getattr(importlib.import_module(f"lineshift.sim.{_HOME[name]}"), name)
+        globals()[name] = value
+        return value
+    raise AttributeError(f"module 'lineshift.sim' has no attribute {name!r}")
+
+
+def __dir__() -> list[str]:
+    return sorted(set(globals()) | set(_HOME))
+
 
 __all__ = [
     "DEMO_BINARY", "DEMO_LAMP", "DEMO_SITE", "DEMO_STAR", "INSTRUMENTS",
