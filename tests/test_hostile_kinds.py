@@ -160,3 +160,15 @@ def test_every_hostile_kind_in_one_batch_leaves_the_good_rows_identical(sample_s
         for col in a.columns:
             if col != "file":
                 assert other[col] == row[col], col  # identical text: every digit the table holds
+
+
+@pytest.mark.parametrize("kind", ["zero_flux", "zero_err"])
+def test_inspect_fails_a_file_no_engine_can_use(kind, sample_set, tmp_path, capfd):
+    # inspect gives the verdict measure would: a file readable but without one usable pixel is a
+    # problem (exit 1, the measure table's reason words), not "missing: nothing"
+    good, _ = _good_1d(sample_set)
+    path = build(kind, str(tmp_path), good)
+    assert main(["inspect", str(path)]) == 1
+    out = capfd.readouterr().out
+    problem = [line for line in out.splitlines() if line.startswith("problem:")]
+    assert len(problem) == 1 and KINDS[kind][1] in problem[0], out

@@ -40,7 +40,16 @@ def _describe(path: str, medium) -> tuple[list[str], bool]:
         snr = np.concatenate([o.flux[g] / np.sqrt(o.var[g]) for o, g in zip(spectrum.orders, good, strict=True)])
         lines.append(f"orders:   {spectrum.n_orders} ({'/'.join(map(str, sizes))} pixels)")
         lines.append(f"range:    {lo:.3f} - {hi:.3f} A (vacuum)")
-        lines.append(f"snr:      median {np.median(snr):.1f} per pixel")
+        lines.append(f"snr:      median {np.median(snr):.1f} per pixel" if snr.size else "snr:      no valid pixel")
+        if error is None:
+            from lineshift.measure.prepare import prepare_spectrum
+
+            try:  # the same preparation the engines start from: bad pixels, continuum, photon weights
+                usable = len(prepare_spectrum(spectrum))
+            except LineshiftError as exc:
+                error, usable = exc, None
+            if usable == 0:
+                error = LineshiftError("no usable order (too few valid pixels: zero, negative or NaN flux)")
     lines.append(f"medium:   {obs.medium} in the file" + (" (converted to vacuum)" if obs.medium == "air" else ""))
     from lineshift.calib.barycentric import check_mjd
 
