@@ -37,6 +37,8 @@ _NUMBER = re.compile(r" *([+-]?(?:\.\d+|\d+(?:\.\d*)?)(?:E[+-]?\d+)?) *(?:/.*)?"
 _LOGICAL = re.compile(r" *([TF]) *(?:/.*)?")
 _PRINTABLE = re.compile(rb"[ -~]*")
 _COMMENTARY = ("COMMENT", "HISTORY")
+_END = f"{'END':<{CARD}}"
+_BLANKS = " " * BLOCK
 #: Keywords whose presence makes a file not plain (scaled data, random groups, tiled compression).
 _NOT_PLAIN = ("BSCALE", "BZERO", "BLANK", "GROUPS", "ZIMAGE", "ZBITPIX", "CONTINUE", "HIERARCH")
 
@@ -73,19 +75,18 @@ class PlainHDU:
 
 def _value(field: str):
     """The value of a card's value field (columns 11-80), astropy's way, or raise _NotPlainError."""
-    m = _NUMBER.fullmatch(field)
-    if m:
+    s = field.lstrip(" ")
+    if not s.startswith("'"):
+        m = _NUMBER.fullmatch(s) or _LOGICAL.fullmatch(s)
+        if m is None:
+            raise _NotPlainError      # undefined, complex, D exponent, free text
         text = m.group(1)
+        if text in ("T", "F"):
+            return text == "T"
         try:
             return int(text)
         except ValueError:
             return float(text)
-    m = _LOGICAL.fullmatch(field)
-    if m:
-        return m.group(1) == "T"
-    s = field.lstrip(" ")
-    if not s.startswith("'"):
-        raise _NotPlainError          # undefined, complex, D exponent, free text
     end = s.find("'", 1)
     if end < 0 or s[end + 1:end + 2] not in ("", " ", "/"):
         raise _NotPlainError          # unterminated, or a quote inside the string ('' escapes)
@@ -115,7 +116,7 @@ def _header(read: Callable[[int, int], bytes], start: int, size: int) -> tuple[d
             card = text[i:i + CARD]
             key = card[:8].rstrip(" ")
             if key == "END":
-                if card.strip(" ") != "END" or text[i + CARD:].strip(" "):
+                if card != _END or text[i + CARD:] != _BLANKS[i + CARD:]:
                     raise _NotPlainError
                 return header, order, pos
             if not key or key in _COMMENTARY:
