@@ -316,6 +316,32 @@ def _variants(tmp_path) -> dict[str, str]:
         h[2].name = "WAVELENGTH"
     put("wavelength_extname", wave_name)
 
+    def lower_extnames(h):
+        for k in (1, 2, 3, 4):
+            h[k].header["EXTNAME"] = h[k].header["EXTNAME"].lower()
+    put("lower_extnames", lower_extnames)
+
+    with open(base, "rb") as fh:      # astropy writes EXTEND itself: blank the card in the bytes
+        raw = fh.read()
+    card = next(raw[i:i + 80] for i in range(0, 2880, 80) if raw[i:i + 8] == b"EXTEND  ")
+    out["no_extend"] = os.path.join(d, "no_extend.fits")
+    with open(out["no_extend"], "wb") as fh:
+        fh.write(raw.replace(card, b" " * 80, 1))
+
+    def extra_hdus(h):
+        h.insert(1, fits.ImageHDU(name="EMPTY"))
+        h.append(fits.ImageHDU(np.zeros((2, 3), dtype=np.int16), name="QUALITY"))
+        h.append(fits.ImageHDU(h[2].data * 2, name="FLUX"))   # a second FLUX: the first one counts
+        h[0].data = np.ones(5, dtype=np.float32)
+    put("extra_hdus", extra_hdus)
+
+    def keys_in_flux_header(h):
+        h[1].header["SATURATE"] = 1e9
+        h[1].header["MJD-AVG"] = 61000.9      # the primary's time rules come first
+        h[0].header["COMMENT"] = "a comment with 'quotes' and = signs"
+        h[0].header["HISTORY"] = "made by a test"
+    put("keys_in_flux_header", keys_in_flux_header)
+
     def hierarch(h):
         h[0].header["HIERARCH ESO OBS NAME"] = "x"
     put("hierarch", hierarch)

@@ -138,8 +138,12 @@ def _plain_headers(path: str):
             size = os.fstat(fh.fileno()).st_size
             if not 0 < size <= MAX_INPUT_BYTES or fh.read(9) != b"SIMPLE  =":
                 return None
-            fd = fh.fileno()
-            return _plain_multi_order(plainfits.scan(lambda offset, n: os.pread(fd, n, offset), size), path)
+
+            def read(offset: int, n: int) -> bytes:
+                fh.seek(offset)
+                return fh.read(n)
+
+            return _plain_multi_order(plainfits.scan(read, size), path)
     except OSError:
         return None
 
