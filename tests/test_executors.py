@@ -59,3 +59,38 @@ def test_survey_on_workers_equals_the_serial_survey(tmp_path):
     for k, (_o, h) in enumerate(with_hash):
         with open(paths[k], "rb") as fh:
             assert h == ("" if k == 1 else hashlib.sha256(fh.read()).hexdigest())
+
+
+def test_survey_hands_the_rest_to_the_workers_only_when_slow(tmp_path, monkeypatch):
+    import numpy as np
+
+    from lineshift import sim
+    from lineshift.run import pipeline
+
+    rng = np.random.default_rng(2)
+    paths = []
+    for k in range(3):
+        exp = sim.observe(sim.DEMO_STAR, sim.INSTRUMENTS["echelle"], sim.DEMO_SITE, 61020.8 + k, rng)
+        paths.append(sim.write_observation(exp, str(tmp_path / f"e{k}.fits")))
+    (tmp_path / "broken.fits").write_bytes(b"SIMPLE  =    T" + b" " * 100)
+    paths.insert(2, str(tmp_path / "broken.fits"))
+    handed = []
+    real = pipeline.run_tasks
+
+    def spy(fn, tasks, ctx, **kw):
+        handed.append([t[0] for t in tasks])
+        return real(fn, tasks, ctx, **kw)
+
+    monkeypatch.setattr(pipeline, "run_tasks", spy)
+    serial = pipeline.survey(paths, pipeline.MeasureSettings(), workers=1)
+    quick = pipeline.survey(paths, pipeline.MeasureSettings(), workers=2)
+    assert handed == []      # four headers take far less than starting the workers
+    monkeypatch.setattr(pipeline, "SURVEY_PROBE", 1)
+    monkeypatch.setattr(pipeline, "SURVEY_POOL_SECONDS", 0.0)
+    mixed = pipeline.survey(paths, pipeline.MeasureSettings(), workers=2, hashes=True)
+    assert handed == [[1, 2, 3]]   # the first in this process, the rest on the workers
+    assert [str(o) for o in quick] == [str(o) for o, _h in mixed] == [str(o) for o in serial]
+    assert [type(o) for o in quick] == [type(o) for o, _h in mixed] == [type(o) for o in serial]
+    assert mixed[2][0].status == "truncated" and mixed[2][1] == ""
+    times = [o.mjd_mid for k, (o, _h) in enumerate(mixed) if k != 2]
+    assert [o.mjd_mid for k, o in enumerate(serial) if k != 2] == times

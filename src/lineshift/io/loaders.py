@@ -36,7 +36,7 @@ from dataclasses import replace
 import numpy as np
 
 from lineshift.errors import LineshiftError, MetadataError, SpectrumFormatError
-from lineshift.io import airvac
+from lineshift.io import airvac, plainfits
 from lineshift.io.metadata import read_site, read_spec_frame, read_target, read_time
 from lineshift.io.wcs import angstrom_factor, is_multispec, multispec_orders, wcs_wavelengths
 from lineshift.model import Observation, Order, Spectrum
@@ -73,9 +73,14 @@ def _too_large(path: str, what: str) -> SpectrumFormatError:
 def _read_bytes(path: str) -> bytes:
     try:
         with open(path, "rb") as fh:
-            if os.fstat(fh.fileno()).st_size > MAX_INPUT_BYTES:
+            size = os.fstat(fh.fileno()).st_size
+            if size > MAX_INPUT_BYTES:
                 raise _too_large(path, "the file")
-            raw = fh.read(MAX_INPUT_BYTES + 1)
+            # read(n) allocates n bytes up front: ask for what the file holds (one byte more shows a
+            # file that grew meanwhile; a size of 0 is a pipe or special file: read it to the limit)
+            raw = fh.read(size + 1 if size else MAX_INPUT_BYTES + 1)
+            if size and len(raw) > size:
+                raw += fh.read(MAX_INPUT_BYTES + 1 - len(raw))
     except IsADirectoryError:
         raise SpectrumFormatError("is a directory, not a spectrum", path=path) from None
     except OSError as exc:
@@ -100,6 +105,49 @@ def _is_fits(raw: bytes) -> bool:
     return raw[:9] == b"SIMPLE  ="
 
 
+def _check_pixels(hdus, path: str) -> None:
+    """Refuse a file whose image extensions together hold more than :data:`MAX_PIXELS` elements."""
+    pixels = sum(math.prod(h.header.get(f"NAXIS{i}", 0) or 0 for i in range(1, h.header.get("NAXIS", 0) + 1))
+                 for h in hdus if h.header.get("NAXIS", 0))
+    if pixels > MAX_PIXELS:
+        raise SpectrumFormatError(f"holds {pixels:,} pixels, more than the limit of {MAX_PIXELS:,} "
+                                  "(LINESHIFT_MAX_PIXELS)", path=path, status="too large")
+
+
+#: Read plain multi-order FITS files with :mod:`.plainfits` (astropy.io.fits reads every other
+#: file, and all files when this is False; tests/test_plainfits.py runs both on the same files).
+PLAIN_FITS = True
+
+
+def _plain_multi_order(hdus, path: str):
+    """The HDUs of a plain file (:mod:`.plainfits`) in the multi-order layout, else None."""
+    if hdus is None:
+        return None
+    flux_ext, wave_ext = _find_ext(hdus, ("FLUX",)), _find_ext(hdus, ("WAVE", "WAVELENGTH"))
+    if flux_ext is None or wave_ext is None:
+        return None
+    _check_pixels(hdus, path)
+    return hdus
+
+
+def _plain_headers(path: str):
+    """The HDUs of a plain, uncompressed multi-order FITS file, from its header blocks alone; None
+    for any other file (which is then read in full, with the checks and messages of that path)."""
+    try:
+        with open(path, "rb") as fh:
+            size = os.fstat(fh.fileno()).st_size
+            if not 0 < size <= MAX_INPUT_BYTES or fh.read(9) != b"SIMPLE  =":
+                return None
+
+            def read(offset: int, n: int) -> bytes:
+                fh.seek(offset)
+                return fh.read(n)
+
+            return _plain_multi_order(plainfits.scan(read, size), path)
+    except OSError:
+        return None
+
+
 def _open_fits(raw: bytes, path: str, *, read_data: bool = True):
     from astropy.io import fits
 
@@ -111,11 +159,7 @@ def _open_fits(raw: bytes, path: str, *, read_data: bool = True):
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
             hdul = fits.open(io.BytesIO(raw), memmap=False, lazy_load_hdus=False)
-            pixels = sum(math.prod(h.header.get(f"NAXIS{i}", 0) or 0 for i in range(1, h.header.get("NAXIS", 0) + 1))
-                         for h in hdul if h.header.get("NAXIS", 0))
-            if pixels > MAX_PIXELS:
-                raise SpectrumFormatError(f"holds {pixels:,} pixels, more than the limit of {MAX_PIXELS:,} "
-                                          "(LINESHIFT_MAX_PIXELS)", path=path, status="too large")
+            _check_pixels(hdul, path)
             if read_data:
                 for hdu in hdul:
                     _ = hdu.data  # force reading: a damaged data unit fails here, not later
@@ -203,9 +247,15 @@ def load_spectrum(path: str, *, medium: str | None = None, flux_time_key: str | 
 def _load(path: str, *, medium: str | None, arrays: bool,
                time_key: str | None = None):
     path = os.fsdecode(os.fspath(path))  # bytes names (any bytes) as str with surrogate escapes
-    raw = _read_bytes(path)
-    if _is_fits(raw):
-        hdul, fits_notes = _open_fits(raw, path, read_data=arrays)
+    # the observation record of a plain FITS file needs its header blocks only
+    hdul = _plain_headers(path) if PLAIN_FITS and not arrays else None
+    raw = _read_bytes(path) if hdul is None else b""
+    if hdul is not None or _is_fits(raw):
+        if hdul is None and PLAIN_FITS:
+            hdul = _plain_multi_order(plainfits.scan_bytes(raw), path)
+        fits_notes: list[str] = []
+        if hdul is None:
+            hdul, fits_notes = _open_fits(raw, path, read_data=arrays)
         try:
             obs, orders = _load_fits(hdul, path, medium=medium, arrays=arrays, time_key=time_key)
             if fits_notes:
@@ -261,7 +311,7 @@ def _variance(find, flux: np.ndarray, notes: list) -> np.ndarray:
     for names, kind in _UNCERTAINTY_KINDS:
         arr = find(names)
         if arr is not None:
-            return _to_variance(np.asarray(arr, dtype=float), kind)
+            return _to_variance(arr, kind)
     notes.append(_POISSON_NOTE)
     return np.where(flux > 0, flux, np.nan)
 
@@ -279,13 +329,27 @@ def _uncertainty_from_ext(hdul, flux: np.ndarray, path: str, notes: list):
     return _variance(find, flux, notes)
 
 
-def _to_variance(arr: np.ndarray, kind: str) -> np.ndarray:
+def _to_variance(arr, kind: str) -> np.ndarray:
+    """Variance (a new float64 array) from a standard deviation (``std``), a variance (``var``) or an
+    inverse variance (``ivar``); NaN where the value given is not positive.
+
+    The same as ``np.where(a > 0, a * a, nan)`` etc. on ``a = arr`` as float64, computed into one new
+    array: the ufuncs convert a narrower or byte-swapped input to float64 on the fly (exactly).
+    """
+    arr = np.asarray(arr)
+    if arr.dtype.kind not in "fiu":
+        arr = np.asarray(arr, dtype=float)
     with np.errstate(divide="ignore", invalid="ignore"):
         if kind == "std":
-            return np.where(arr > 0, arr * arr, np.nan)
-        if kind == "var":
-            return np.where(arr > 0, arr, np.nan)
-        return np.where(arr > 0, 1.0 / arr, np.nan)
+            out = np.multiply(arr, arr, dtype=float)
+        elif kind == "var":
+            out = np.array(arr, dtype=float)
+        else:
+            out = np.divide(1.0, arr, dtype=float)
+        bad = arr > 0
+    np.logical_not(bad, out=bad)
+    np.copyto(out, np.nan, where=bad)
+    return out
 
 
 def _saturated(get, flux: np.ndarray, var: np.ndarray, path: str, notes: list) -> np.ndarray:
@@ -322,7 +386,8 @@ def _load_fits(hdul, path: str, *, medium: str | None, arrays: bool,
     primary = hdul[0].header
     flux_ext = _find_ext(hdul, ("FLUX",))
     wave_ext = _find_ext(hdul, ("WAVE", "WAVELENGTH"))
-    if flux_ext is not None and wave_ext is not None and isinstance(flux_ext, fits.ImageHDU):
+    if flux_ext is not None and wave_ext is not None and (
+            isinstance(flux_ext, fits.ImageHDU) or getattr(flux_ext, "kind", None) == "IMAGE"):
         get = _header_getter(primary, flux_ext.header)
         file_medium = medium or _medium_from_ctype(get("CTYPE1"))
         notes: list[str] = []
@@ -333,8 +398,9 @@ def _load_fits(hdul, path: str, *, medium: str | None, arrays: bool,
         wave = np.atleast_2d(np.asarray(wave_ext.data, dtype=float))
         if wave.shape != flux.shape:
             raise SpectrumFormatError(f"WAVE has shape {wave.shape}, FLUX has {flux.shape}", path=path)
-        wave = wave * _wave_factor(wave_ext.header.get("BUNIT") or wave_ext.header.get("CUNIT1"),
-                                   path, "WAVE unit")
+        factor = _wave_factor(wave_ext.header.get("BUNIT") or wave_ext.header.get("CUNIT1"), path, "WAVE unit")
+        if factor != 1.0:     # x * 1.0 is x for every float: no copy in Angstrom
+            wave = wave * factor
         var = np.atleast_2d(_uncertainty_from_ext(hdul, flux, path, notes))
         var = _saturated(get, flux, var, path, notes)
         blaze_ext = _find_ext(hdul, ("BLAZE",))
@@ -343,8 +409,7 @@ def _load_fits(hdul, path: str, *, medium: str | None, arrays: bool,
             blaze = np.atleast_2d(np.asarray(blaze_ext.data, dtype=float))
             if blaze.shape != flux.shape:
                 raise SpectrumFormatError(f"BLAZE has shape {blaze.shape}, FLUX has {flux.shape}", path=path)
-        orders = [(wave[i], flux[i], var[i], None if blaze is None else blaze[i]) for i in range(flux.shape[0])]
-        orders = _build_orders(orders, file_medium, path, notes)
+        orders = _build_orders_2d(wave, flux, var, blaze, file_medium, path, notes)
         return replace(obs, notes=tuple(notes)), orders
 
     for hdu in hdul:
@@ -563,6 +628,39 @@ def _observation(get, path: str, layout: str, medium: str, notes: list,
         notes=tuple(notes))
 
 
+def _build_orders_2d(wave: np.ndarray, flux: np.ndarray, var: np.ndarray, blaze: np.ndarray | None,
+                     medium: str, path: str, notes: list) -> list[Order]:
+    """:func:`_build_orders` of the rows of (orders x pixels) arrays, validated all at once.
+
+    When every order passes every check with its wavelengths increasing (the usual file), the orders
+    are made here from one pass over the whole arrays; otherwise :func:`_build_orders` takes them one
+    by one and says what is wrong (tests/test_plainfits.py compares the two).
+    """
+    if wave.ndim == 2 and wave.shape[1] >= 8 and np.isfinite(wave).all():
+        with np.errstate(invalid="ignore"):
+            step_ok = (wave[:, 1:] > wave[:, :-1]).all()
+        if step_ok and (wave[:, 0] > 0).all() and (wave[:, -1] <= MAX_WAVELENGTH).all():
+            orders = [Order(wave=airvac.air_to_vacuum(wave[i]) if medium == "air" else wave[i], flux=flux[i],
+                            var=var[i], blaze=None if blaze is None else blaze[i], index=i)
+                      for i in range(wave.shape[0])]
+            _check_orders(orders, path)
+            return orders
+    parts = [(wave[i], flux[i], var[i], None if blaze is None else blaze[i]) for i in range(flux.shape[0])]
+    return _build_orders(parts, medium, path, notes)
+
+
+def _check_orders(orders: list[Order], path: str) -> None:
+    """Refuse a spectrum without orders, without finite flux or without usable uncertainties."""
+    if not orders:
+        raise SpectrumFormatError("contains no orders", path=path)
+    if all(not np.any(np.isfinite(o.flux)) for o in orders):
+        kind = "NaN" if all(np.all(np.isnan(o.flux)) for o in orders) else "NaN or infinite"
+        raise SpectrumFormatError(f"all flux values are {kind}", path=path, status="no valid flux")
+    if all(not np.any(np.isfinite(o.var) & (o.var > 0)) for o in orders):
+        raise SpectrumFormatError("no valid uncertainties (zero, negative or NaN everywhere)", path=path,
+                                  status="no valid uncertainties")
+
+
 def _build_orders(parts, medium: str, path: str, notes: list) -> list[Order]:
     """Validate each order's arrays, convert air to vacuum, return :class:`Order` records."""
     orders = []
@@ -600,12 +698,5 @@ def _build_orders(parts, medium: str, path: str, notes: list) -> list[Order]:
             wave = airvac.air_to_vacuum(wave)
         orders.append(Order(wave=wave, flux=flux, var=var,
                             blaze=None if blaze is None else np.asarray(blaze, dtype=float), index=index))
-    if not orders:
-        raise SpectrumFormatError("contains no orders", path=path)
-    if all(not np.any(np.isfinite(o.flux)) for o in orders):
-        kind = "NaN" if all(np.all(np.isnan(o.flux)) for o in orders) else "NaN or infinite"
-        raise SpectrumFormatError(f"all flux values are {kind}", path=path, status="no valid flux")
-    if all(not np.any(np.isfinite(o.var) & (o.var > 0)) for o in orders):
-        raise SpectrumFormatError("no valid uncertainties (zero, negative or NaN everywhere)", path=path,
-                                  status="no valid uncertainties")
+    _check_orders(orders, path)
     return orders

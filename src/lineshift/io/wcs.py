@@ -36,6 +36,7 @@ only for the wavelengths in the file's own medium.
 
 from __future__ import annotations
 
+import functools
 import math
 import re
 import warnings
@@ -64,11 +65,22 @@ def angstrom_factor(unit, path: str = "", what: str = "unit") -> float:
     astropy's generic format, then with a plural ``s`` removed (IRAF writes ``angstroms``).  Blank
     means Angstrom.  Anything that is not a length is refused.
     """
-    import astropy.units as u
-
     text = "" if unit is None else str(unit).strip()
     if not text:
         return 1.0
+    factor = _length_factor(text)
+    if factor is None:
+        raise _error(f"{what} = {unit!r} is not a wavelength unit (Angstrom, nm, um, m)", path)
+    return factor
+
+
+@functools.lru_cache(maxsize=256)
+def _length_factor(text: str) -> float | None:
+    """Angstrom per unit of a non-blank unit string, or None when it is not a length (kept per
+    string: every file of a batch names the same unit, and parsing it costs more than the rest of the
+    wavelength step)."""
+    import astropy.units as u
+
     parsed = None
     for candidate, fmt in ((text, "fits"), (text, None), (text[:-1], None) if text.endswith("s") else (None, None)):
         if candidate is None:
@@ -82,9 +94,7 @@ def angstrom_factor(unit, path: str = "", what: str = "unit") -> float:
         if parsed.physical_type == "length":
             break
         parsed = None
-    if parsed is None:
-        raise _error(f"{what} = {unit!r} is not a wavelength unit (Angstrom, nm, um, m)", path)
-    return float(parsed.to(u.AA))
+    return None if parsed is None else float(parsed.to(u.AA))
 
 
 # --------------------------------------------------------------------------- FITS WCS

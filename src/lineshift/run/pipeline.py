@@ -20,6 +20,7 @@ from __future__ import annotations
 
 import glob
 import os
+import time
 import warnings
 from collections.abc import Callable, Iterable
 from dataclasses import dataclass, field, replace
@@ -252,19 +253,36 @@ def _survey_task(task: tuple, settings: MeasureSettings):
         return SpectrumFormatError(f"cannot be read ({exc.strerror or exc})", path=path), ""
 
 
+#: Seconds of survey left (at the rate of the files surveyed so far) above which the rest goes to the
+#: workers: starting them costs ~2 s, the headers of a plain FITS file ~0.3 ms, a file astropy.io.fits
+#: must read or unpack a few ms, a content hash ~3 ms (2.9 MB).
+SURVEY_POOL_SECONDS = 4.0
+#: Files surveyed in this process before their rate decides.
+SURVEY_PROBE = 16
+
+
 def survey(paths: list[str], settings: MeasureSettings, *, workers: int | None = 1, hashes: bool = False
            ) -> list:
     """Phase 1: the observation record of every input (or the error that prevents reading it).
 
-    ``workers`` as in :func:`measure_files` (reading and parsing every header costs a few ms per file,
-    so a large batch surveys on all cores); the result is the same list whichever runs it.  With
-    ``hashes`` each item is ``(record, content hash)`` (for the results store; "" after an error)."""
+    ``workers`` as in :func:`measure_files`: with more than one, the survey runs in this process while
+    what is left would take less than :data:`SURVEY_POOL_SECONDS`, and hands the rest to the workers
+    otherwise (a large batch of slow files, or content hashes); the result is the same list whichever
+    runs it.  With ``hashes`` each item is ``(record, content hash)`` (for the results store; "" after
+    an error)."""
     tasks = [(i, p, True) if hashes else (i, p) for i, p in enumerate(paths)]
     n = default_workers(len(paths)) if workers is None else workers
-    if n <= 1:
-        return [_survey_task(task, settings) for task in tasks]
-    out: list = [None] * len(paths)
-    for task, obs in run_tasks(_survey_task, tasks, settings, workers=n):
+    out: list = []
+    start = time.perf_counter()
+    for task in tasks:
+        out.append(_survey_task(task, settings))
+        done = len(out)
+        if n > 1 and done >= SURVEY_PROBE and (
+                (time.perf_counter() - start) / done * (len(tasks) - done) > SURVEY_POOL_SECONDS):
+            break
+    rest = tasks[len(out):]
+    out.extend([None] * len(rest))
+    for task, obs in run_tasks(_survey_task, rest, settings, workers=n) if rest else ():
         out[task[0]] = obs
     return out
 
