@@ -1,0 +1,182 @@
+"""Compiled forms (numba) of the mask engine's innermost loops, each with a plain NumPy form beside
+its caller that it is tested against (tests/test_fast_kernels.py).
+
+* :func:`ccf_pairs`: the box edges in pixel coordinate of every (order, line) pair of a CCF and
+  their cumulative-sum box integrals (:func:`.ccf.correlate`; plain form: ``np.interp`` and
+  ``_cum`` per order).  It does the same floating-point operations as the plain form, in the same
+  order, so the CCF is the same to the last bit.
+* :func:`term_variances`: ``sum_p h_p^2 var_p`` of the pixel sensitivities of a CCF, for every
+  order at once (:meth:`.ccf.CorrelationData.variances`; plain form: the adjoint of the box
+  integrals, one row at a time).  Same arithmetic, summed in another order (differences ~1e-15).
+
+The compiled forms are used when numba imports and the environment variable ``LINESHIFT_JIT`` is
+not ``0``.  Each is compiled on first use and cached on disk by numba (beside this file, or in the
+user's cache directory when that is read-only, or in ``NUMBA_CACHE_DIR``), so later runs load it.
+"""
+
+from __future__ import annotations
+
+import os
+from types import SimpleNamespace
+
+import numpy as np
+
+__all__ = ["ccf_pairs", "compiled", "cumsums", "term_variances"]
+
+_COMPILED: SimpleNamespace | bool | None = None
+
+
+def _ccf_pairs(edges, estart, snum, gnum, sden, gden, porder, plam, fac, r, m):   # pragma: no cover (compiled)
+    npair = plam.size
+    ncol = fac.size
+    x = np.empty((npair, ncol))
+    bnum = np.empty((npair, m))
+    bden = np.empty((npair, m))
+    cnum = np.empty(ncol)
+    cden = np.empty(ncol)
+    for p in range(npair):
+        o = porder[p]
+        e0 = estart[o]
+        ne = estart[o + 1] - e0          # n + 1 edges
+        n = ne - 1
+        g0 = e0 - o                      # pixel arrays hold n per order, edge arrays n + 1
+        # the first edge by bisection, the others by walking on from the previous one
+        j = max(np.searchsorted(edges[e0:e0 + ne], plam[p] * fac[0], side="right") - 1, 0)
+        for c in range(ncol):
+            q = plam[p] * fac[c]
+            # np.interp(q, edges, arange(n + 1)): the same search result and the same formula
+            if q < edges[e0]:
+                xv = 0.0
+            elif q > edges[e0 + n]:
+                xv = float(n)
+            else:
+                while j < n and edges[e0 + j + 1] <= q:
+                    j += 1
+                while j > 0 and edges[e0 + j] > q:
+                    j -= 1
+                if j == n or edges[e0 + j] == q:
+                    xv = float(j)
+                else:
+                    slope = ((j + 1.0) - j) / (edges[e0 + j + 1] - edges[e0 + j])
+                    xv = slope * (q - edges[e0 + j]) + j
+            x[p, c] = xv
+            i = min(int(xv), n - 1)
+            f = xv - i
+            cnum[c] = snum[e0 + i] + f * gnum[g0 + i]
+            cden[c] = sden[e0 + i] + f * gden[g0 + i]
+        for k in range(m):
+            hi = k + r if r else m + k
+            bnum[p, k] = cnum[hi] - cnum[k]
+            bden[p, k] = cden[hi] - cden[k]
+    return x, bnum, bden
+
+
+def _term_variances(x, r, w, lstart, pstart, qv, sens, own, has_own):   # pragma: no cover (compiled)
+    nterm = lstart.size - 1
+    nsens, m = sens.shape
+    rows = nsens + 1 if has_own else nsens
+    ncol = x.shape[1]
+    out = np.zeros(nsens)
+    per = np.zeros(nterm)
+    nmax = 0
+    for t in range(nterm):
+        nmax = max(nmax, pstart[t + 1] - pstart[t])
+    cnt = np.empty((nmax, rows))
+    hf = np.empty((nmax, rows))
+    e = np.empty((rows, ncol))
+    acc = np.empty(rows)
+    run = np.empty(rows)
+    for t in range(nterm):
+        n = pstart[t + 1] - pstart[t]
+        for row in range(rows):      # each edge column's sensitivity: an end adds, a start subtracts
+            for c in range(ncol):
+                e[row, c] = 0.0
+            for k in range(m):
+                s = sens[row, k] if row < nsens else own[t, k]
+                if r:
+                    e[row, k + r] += s
+                    e[row, k] -= s
+                else:
+                    e[row, k] = -s
+                    e[row, m + k] = s
+        cnt[:n, :] = 0.0
+        hf[:n, :] = 0.0
+        for ln in range(lstart[t], lstart[t + 1]):
+            for c in range(ncol):
+                xv = x[ln, c]
+                i = min(int(xv), n - 1)
+                f = xv - i
+                for row in range(rows):
+                    a = w[ln] * e[row, c]
+                    cnt[i, row] += a
+                    hf[i, row] += a * f
+        # h_p = (fractions at p) + (everything at pixels above p): _cum(x) = sum_{p < i} g_p + f g_i
+        acc[:] = 0.0
+        run[:] = 0.0
+        for p in range(n - 1, -1, -1):
+            q = qv[pstart[t] + p]
+            for row in range(rows):
+                h = hf[p, row] + run[row]
+                acc[row] += h * h * q
+                run[row] += cnt[p, row]
+        for row in range(nsens):
+            out[row] += acc[row]
+        if has_own:
+            per[t] = acc[nsens]
+    return out, per
+
+
+def compiled() -> SimpleNamespace | None:
+    """The compiled kernels, or None when numba is missing or ``LINESHIFT_JIT=0``."""
+    global _COMPILED
+    if _COMPILED is None:
+        _COMPILED = False
+        if os.environ.get("LINESHIFT_JIT", "1").strip() != "0":
+            try:
+                import numba
+            except ImportError:
+                pass
+            else:
+                jit = numba.njit(cache=True, nogil=True)
+                _COMPILED = SimpleNamespace(ccf_pairs=jit(_ccf_pairs), term_variances=jit(_term_variances),
+                                            cumsums=jit(_cumsums))
+    return _COMPILED or None
+
+
+def ccf_pairs(edges, estart, snum, gnum, sden, gden, porder, plam, fac, r, m):
+    """Pixel coordinates ``x`` (pairs, edge columns) of the box edges of each (order, line) pair and
+    the box integrals of the numerator and denominator (pairs, m).
+
+    ``edges``, ``snum``, ``sden`` are the orders' pixel edges and cumulative sums concatenated
+    (``n + 1`` per order, order ``o`` from ``estart[o]``), ``gnum``, ``gden`` their pixel values
+    (``n`` per order); pair ``p`` is line wavelength ``plam[p]`` on order ``porder[p]``, its edge
+    ``c`` at ``plam[p] * fac[c]``; ``r`` is the edge layout of :func:`.ccf._edge_layout`."""
+    return compiled().ccf_pairs(edges, estart, snum, gnum, sden, gden, porder, plam, fac, int(r), int(m))
+
+
+def term_variances(x, r, w, lstart, pstart, qv, sens, own=None):
+    """(``sum_p h_p^2 qv_p`` over all orders for each row of ``sens``, and for each order ``t`` the
+    same for ``own[t]`` on its own pixels); box edges ``x`` of every line of every order stacked
+    (order ``t``'s lines from ``lstart[t]``, its pixels from ``pstart[t]`` in ``qv``), weights ``w``."""
+    has_own = own is not None
+    own = own if has_own else np.zeros((lstart.size - 1, sens.shape[1]))
+    return compiled().term_variances(x, int(r), w, lstart, pstart, qv, sens, own, has_own)
+
+
+def _cumsums(g, estart):   # pragma: no cover (compiled)
+    out = np.empty(estart[-1])
+    for o in range(estart.size - 1):
+        e0 = estart[o]
+        g0 = e0 - o
+        s = 0.0
+        out[e0] = 0.0
+        for i in range(estart[o + 1] - e0 - 1):
+            s += g[g0 + i]
+            out[e0 + i + 1] = s
+    return out
+
+
+def cumsums(g, estart):
+    """Each order's ``concatenate(([0], np.cumsum(g_o)))``, concatenated (``estart`` as in
+    :func:`ccf_pairs`); sequential sums, as ``np.cumsum`` adds."""
+    return compiled().cumsums(g, estart)
