@@ -221,3 +221,29 @@ def test_compiled_cumulative_sums_equal_numpy_cumsum_exactly():
     estart = np.concatenate(([0], np.cumsum([p.size + 1 for p in parts])))
     expect = np.concatenate([np.concatenate(([0.0], np.cumsum(p))) for p in parts])
     np.testing.assert_array_equal(kernels.cumsums(np.concatenate(parts), estart), expect)
+
+
+@pytest.mark.parametrize("width", [1, 3, 5, 7, 9, 15])
+def test_running_minimum_by_doubling_equals_scipy_minimum_filter(width):
+    from scipy.ndimage import minimum_filter1d
+
+    from lineshift.measure.outliers import _running_min
+
+    rng = np.random.default_rng(width)
+    a = rng.normal(size=500)
+    a[rng.random(500) < 0.05] = np.inf
+    np.testing.assert_array_equal(_running_min(a, width), minimum_filter1d(a, width, mode="nearest"))
+
+
+def test_flat_top_search_on_a_block_equals_each_row():
+    from lineshift.measure.badpixels import clipped_pixels
+
+    rng = np.random.default_rng(12)
+    flux = np.round(rng.normal(1000.0, 30.0, (6, 400)))       # integer counts: ties are common
+    flux[1, 100:106] = flux[1].max() + 5                       # a clipped top
+    flux[2] = rng.normal(1000.0, 30.0, 400)                    # no tie at all
+    flux[3, 50:53] = np.nan
+    block = clipped_pixels(flux)
+    for r in range(6):
+        np.testing.assert_array_equal(block[r], clipped_pixels(flux[r]))
+    assert block[1, 100:106].all()
