@@ -247,3 +247,24 @@ def test_flat_top_search_on_a_block_equals_each_row():
     for r in range(6):
         np.testing.assert_array_equal(block[r], clipped_pixels(flux[r]))
     assert block[1, 100:106].all()
+
+
+def test_compiled_preparation_equals_the_numpy_form_to_the_last_bit():
+    pytest.importorskip("numba")
+    from lineshift.measure.prepare import _prepare_block, pixel_edges
+    from lineshift.model import Order
+
+    rng = np.random.default_rng(14)
+    flux, var, _ = _orders(rng, rows=5, n=1200)
+    wave = 5000.0 + 0.02 * np.arange(1200)
+    blaze = 0.5 + np.sin(np.linspace(0.3, 2.8, 1200))
+    orders = [Order(wave + 30.0 * k, flux[k], var[k], index=k, blaze=blaze if k % 2 else None) for k in range(5)]
+    orders[3] = Order(orders[3].wave, np.full(1200, np.nan), var[3], index=3)       # nothing usable
+    fast = _prepare_block(orders, 4, compiled=True)
+    plain = _prepare_block(orders, 4, compiled=False)
+    assert fast[3] is None and plain[3] is None and sum(p is not None for p in fast) == 4
+    for a, b in zip(fast, plain, strict=True):
+        if a is not None:
+            for name in ("flux", "var", "weight", "good", "continuum", "edges"):
+                np.testing.assert_array_equal(getattr(a, name), getattr(b, name), err_msg=name)
+    np.testing.assert_array_equal(pixel_edges(np.vstack([wave, wave + 1])), [pixel_edges(wave), pixel_edges(wave + 1)])

@@ -8,6 +8,9 @@ its caller that it is tested against (tests/test_fast_kernels.py).
 * :func:`term_variances`: ``sum_p h_p^2 var_p`` of the pixel sensitivities of a CCF, for every
   order at once (:meth:`.ccf.CorrelationData.variances`; plain form: the adjoint of the box
   integrals, one row at a time).  Same arithmetic, summed in another order (differences ~1e-15).
+* :func:`prepare_finish`: the normalised flux, its variance and the photon weight of every pixel
+  (:func:`.prepare._prepare_block`; plain form :func:`.prepare._finish_numpy`), the same operations
+  pixel by pixel instead of array by array: the same results to the last bit.
 
 The compiled forms are used when numba imports and the environment variable ``LINESHIFT_JIT`` is
 not ``0``.  Each is compiled on first use and cached on disk by numba (beside this file, or in the
@@ -21,7 +24,7 @@ from types import SimpleNamespace
 
 import numpy as np
 
-__all__ = ["ccf_pairs", "compiled", "cumsums", "term_variances"]
+__all__ = ["ccf_pairs", "compiled", "cumsums", "prepare_finish", "term_variances"]
 
 _COMPILED: SimpleNamespace | bool | None = None
 
@@ -139,7 +142,7 @@ def compiled() -> SimpleNamespace | None:
             else:
                 jit = numba.njit(cache=True, nogil=True)
                 _COMPILED = SimpleNamespace(ccf_pairs=jit(_ccf_pairs), term_variances=jit(_term_variances),
-                                            cumsums=jit(_cumsums))
+                                            cumsums=jit(_cumsums), prepare_finish=jit(_prepare_finish))
     return _COMPILED or None
 
 
@@ -180,3 +183,34 @@ def cumsums(g, estart):
     """Each order's ``concatenate(([0], np.cumsum(g_o)))``, concatenated (``estart`` as in
     :func:`ccf_pairs`); sequential sums, as ``np.cumsum`` adds."""
     return compiled().cumsums(g, estart)
+
+
+def _prepare_finish(f, v, good, cont, mc, mv, alpha, floor):   # pragma: no cover (compiled)
+    rows, n = f.shape
+    gout = np.empty((rows, n), dtype=np.bool_)
+    fn = np.empty((rows, n))
+    vn = np.empty((rows, n))
+    q = np.empty((rows, n))
+    for r in range(rows):
+        for i in range(n):
+            cn = cont[r, i]
+            gd = good[r, i] and np.isfinite(cn) and cn > 0
+            c = cn if gd else 1.0
+            c2 = c * c
+            gout[r, i] = gd
+            fn[r, i] = f[r, i] / c if gd else 0.0
+            vn[r, i] = v[r, i] / c2 if gd else 0.0
+            vcont = mv[r] + alpha[r] * (c - mc[r])
+            if np.isnan(vcont) or np.isnan(floor[r]):
+                den = np.nan                       # np.maximum propagates NaN
+            else:
+                den = max(vcont, floor[r])
+            q[r, i] = c2 / den if (gd and den > 0) else 0.0
+    return gout, fn, vn, q
+
+
+def prepare_finish(f, v, good, cont, mc, mv, alpha, floor):
+    """(good, normalised flux, its variance, photon weight) of every pixel of a block of orders
+    (:func:`.prepare._finish_numpy` is the plain form: the same operations on whole arrays)."""
+    return compiled().prepare_finish(np.ascontiguousarray(f), np.ascontiguousarray(v), np.ascontiguousarray(good),
+                                     np.ascontiguousarray(cont), mc, mv, alpha, floor)
