@@ -79,12 +79,26 @@ def _legendre_design(n: int, degree: int) -> np.ndarray:
     return _DESIGN_CACHE[key]
 
 
-def _weighted_polyfit(V: np.ndarray, y: np.ndarray, w: np.ndarray) -> np.ndarray:
-    """Batched weighted least squares: rows of ``y`` (orders x pixels) with 0/1 weights ``w``."""
+_VV_CACHE: dict[tuple, np.ndarray] = {}
+
+
+def _outer_rows(V: np.ndarray) -> np.ndarray:
+    """Each row's outer product with itself, flattened (kept per design: the designs are few)."""
+    key = (V.shape, V[0].tobytes(), V[-1].tobytes())
+    if key not in _VV_CACHE:
+        if len(_VV_CACHE) > 32:
+            _VV_CACHE.clear()
+        k = V.shape[1]
+        _VV_CACHE[key] = (V[:, :, None] * V[:, None, :]).reshape(V.shape[0], k * k)
+    return _VV_CACHE[key]
+
+
+def _weighted_polyfit(V: np.ndarray, y: np.ndarray, w: np.ndarray, work: np.ndarray | None = None) -> np.ndarray:
+    """Batched weighted least squares: rows of ``y`` (orders x pixels) with 0/1 weights ``w``
+    (``work``: an array of y's shape to hold ``w * y``)."""
     k = V.shape[1]
-    VV = (V[:, :, None] * V[:, None, :]).reshape(V.shape[0], k * k)
-    A = (w @ VV).reshape(-1, k, k)
-    b = (w * y) @ V
+    A = (w @ _outer_rows(V)).reshape(-1, k, k)
+    b = np.multiply(w, y, out=work) @ V
     A += np.eye(V.shape[1])[None] * 1e-12 * np.trace(A, axis1=1, axis2=2)[:, None, None]
     A[np.trace(A, axis1=1, axis2=2) == 0] = np.eye(k)   # an order with no usable pixel: coefficients 0
     return np.linalg.solve(A, b[..., None])[..., 0]
@@ -93,27 +107,34 @@ def _weighted_polyfit(V: np.ndarray, y: np.ndarray, w: np.ndarray) -> np.ndarray
 def _continuum_core(flux, var, good, degree, clip_low, clip_high, max_iter, n=None):
     """Clipping iterations on every ``stride``-th pixel; returns (coef, used, stride, scatter^2).
 
-    With ``n`` the arrays are already that subset of orders of ``n`` pixels."""
+    With ``n`` the arrays are already that subset of orders of ``n`` pixels.  The iterations reuse
+    their work arrays (the same operations, without a fresh allocation per step)."""
     # a degree-4 polynomial needs no more than ~1000 points: the iterations run on a subset
     stride = max(1, (flux.shape[1] if n is None else n) // 1024)
     if n is None:
         n = flux.shape[1]
         flux, var, good = flux[:, ::stride], var[:, ::stride], good[:, ::stride]
     V = _legendre_design(n, degree)[::stride]
+    VT = V.T
     g = good
     y = np.where(g, flux, 0.0)
     v0 = np.where(g, var, 0.0)
     used = g.copy()
     coef = np.zeros((flux.shape[0], degree + 1))
     scatter2 = np.zeros(flux.shape[0])
+    w, work, resid, sigma = (np.empty(y.shape) for _ in range(4))
     for _ in range(max_iter):
         enough = used.sum(axis=1) > degree + 1
-        coef = _weighted_polyfit(V, y, np.where(enough[:, None], used, g).astype(float))
-        resid = y - coef @ V.T
+        np.copyto(w, used if enough.all() else np.where(enough[:, None], used, g))
+        coef = _weighted_polyfit(V, y, w, work)
+        np.subtract(y, np.matmul(coef, VT, out=resid), out=resid)
         nused = np.maximum(used.sum(axis=1), 1)
-        scatter2 = np.maximum(np.sum(np.where(used, resid**2 - v0, 0.0), axis=1) / nused, 0.0)
-        sigma = np.sqrt(v0 + scatter2[:, None])
-        new = g & (resid > -clip_low * sigma) & (resid < clip_high * sigma)
+        np.subtract(np.square(resid, out=work), v0, out=work)
+        np.copyto(work, 0.0, where=~used)
+        scatter2 = np.maximum(np.sum(work, axis=1) / nused, 0.0)
+        np.sqrt(np.add(v0, scatter2[:, None], out=sigma), out=sigma)
+        new = g & (resid > np.multiply(sigma, -clip_low, out=work))
+        new &= resid < np.multiply(sigma, clip_high, out=work)
         changed = np.count_nonzero(new != used)
         used = new
         if changed <= 1e-3 * new.size:  # converged (a few pixels may flip back and forth)
@@ -220,8 +241,7 @@ def _prepare_block(orders: list[Order], degree: int, compiled: bool | None = Non
     else:
         good, fn, vn, q = _finish_numpy(f, v, good, cont, mc, mv, alpha, floor)
     usable = (good.sum(axis=1) >= max(32, 4 * (degree + 1))) & (used.sum(axis=1) * stride >= 10)
-    edges = pixel_edges(np.vstack([o.wave for o in orders]))
-    return [PreparedOrder(o.wave, edges[k], fn[k], vn[k], q[k], good[k], o.index, cont[k]) if usable[k]
+    return [PreparedOrder(o.wave, pixel_edges(o.wave), fn[k], vn[k], q[k], good[k], o.index, cont[k]) if usable[k]
             else None
             for k, o in enumerate(orders)]
 
