@@ -218,8 +218,6 @@ def find_spikes(flux: np.ndarray, var: np.ndarray, good: np.ndarray | None = Non
     if good is not None:
         base_bad |= ~np.atleast_2d(np.asarray(good, dtype=bool))
     spikes = np.zeros(flux.shape, dtype=bool)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        sig = nsigma * np.sqrt(var)
     n = flux.shape[1]
     if model is None:
         # The median of a window's good pixels is at least their minimum, so a pixel can only stand
@@ -227,24 +225,30 @@ def find_spikes(flux: np.ndarray, var: np.ndarray, good: np.ndarray | None = Non
         # The minimum (over the good pixels at the start, a superset of those left later, and
         # across row ends, a superset again) is cheap; the median is taken only where it can matter,
         # and only there can a pixel be high (the reference is NaN elsewhere).
+        with np.errstate(invalid="ignore", divide="ignore"):
+            sig = nsigma * np.sqrt(var)
         low = _running_min(np.where(base_bad, np.inf, flux).ravel(), 2 * max_width + 1).reshape(flux.shape)
         with np.errstate(invalid="ignore"):
             lift = flux - low
             cand = np.flatnonzero((lift > sig) & (lift > contrast * np.maximum(low, 0.0)) & ~base_bad)
         cand_r, cand_i = cand // n, cand % n
-        x = np.pad(np.where(base_bad, np.nan, flux), ((0, 0), (max_width, max_width)), constant_values=np.nan)
-        cols = cand_i[:, None] + np.arange(2 * max_width + 1)[None, :]
-        inside = (cols >= max_width) & (cols < n + max_width)
-        hit_cols = np.clip(cols - max_width, 0, n - 1)
+        sig_c = nsigma * np.sqrt(var[cand_r, cand_i])
+        # each candidate's window of good pixels (NaN for bad ones and beyond the row's ends)
+        src = cand_i[:, None] + np.arange(-max_width, max_width + 1)[None, :]
+        inside = (src >= 0) & (src < n)
+        src = np.clip(src, 0, n - 1)
+        win = np.where(inside & ~base_bad[cand_r[:, None], src], flux[cand_r[:, None], src], np.nan)
+    else:
+        with np.errstate(invalid="ignore", divide="ignore"):
+            sig = nsigma * np.sqrt(var)
     for _ in range(max_iter if model is None else 1):
         if model is None:
             if cand.size == 0:
                 break
-            ref = median_of_finite(np.where(spikes[cand_r[:, None], hit_cols] & inside, np.nan,
-                                            x[cand_r[:, None], cols]))
+            ref = median_of_finite(np.where(spikes[cand_r[:, None], src] & inside, np.nan, win))
             with np.errstate(invalid="ignore"):
                 excess = flux[cand_r, cand_i] - ref
-                high = cand[(excess > sig[cand_r, cand_i]) & (excess > contrast * np.abs(ref)) & np.isfinite(ref)]
+                high = cand[(excess > sig_c) & (excess > contrast * np.abs(ref)) & np.isfinite(ref)]
         else:
             ref = np.atleast_2d(np.asarray(model, dtype=float))
             with np.errstate(invalid="ignore", divide="ignore"):
