@@ -13,9 +13,10 @@ its caller that it is tested against (tests/test_fast_kernels.py).
   (:func:`.prepare._prepare_block`; plain form :func:`.prepare._finish_numpy`), the same operations
   pixel by pixel instead of array by array: the same results to the last bit.
 
-The compiled forms are used when numba imports and the environment variable ``LINESHIFT_JIT`` is
-not ``0``.  Each is compiled on first use and cached on disk by numba (beside this file, or in the
-user's cache directory when that is read-only, or in ``NUMBA_CACHE_DIR``), so later runs load it.
+The compiled forms are used when numba imports, from the :data:`WARMUP_SPECTRA`-th spectrum a process
+prepares on (``LINESHIFT_JIT=1``: from the first, ``0``: never; see :func:`compiled`).  Each is
+compiled on first use and cached on disk by numba (beside this file, or in the user's cache directory
+when that is read-only, or in ``NUMBA_CACHE_DIR``), so later runs load it.
 """
 
 from __future__ import annotations
@@ -25,7 +26,8 @@ from types import SimpleNamespace
 
 import numpy as np
 
-__all__ = ["ccf_pairs", "compiled", "cumsums", "prepare_finish", "term_variances"]
+__all__ = ["WARMUP_SPECTRA", "ccf_pairs", "compiled", "count_spectrum", "cumsums", "prepare_finish",
+           "term_variances"]
 
 _COMPILED: SimpleNamespace | bool | None = None
 
@@ -145,21 +147,52 @@ def _term_variances(x, r, w, lstart, pstart, qv, sens, own, has_own):   # pragma
     return out, per
 
 
-def compiled() -> SimpleNamespace | None:
-    """The compiled kernels, or None when numba is missing or ``LINESHIFT_JIT=0``."""
+#: Spectra a process prepares with the NumPy forms before it turns to the compiled kernels (when
+#: ``LINESHIFT_JIT`` is unset): loading numba and the cached kernels costs ~0.4 s once per process,
+#: what the kernels save on some 50-70 spectra of 36 x 4096 pixels, so a small run never pays it.
+WARMUP_SPECTRA = 48
+_prepared = 0
+
+
+def count_spectrum() -> None:
+    """Note one more prepared spectrum in this process (:data:`WARMUP_SPECTRA`)."""
+    global _prepared
+    _prepared += 1
+
+
+def _load() -> SimpleNamespace | None:
+    """The compiled kernels (compiled or loaded from numba's cache on first use), None without numba."""
     global _COMPILED
     if _COMPILED is None:
         _COMPILED = False
-        if os.environ.get("LINESHIFT_JIT", "1").strip() != "0":
-            try:
-                import numba
-            except ImportError:
-                pass
-            else:
-                jit = numba.njit(cache=True, nogil=True)
-                _COMPILED = SimpleNamespace(ccf_pairs=jit(_ccf_pairs), term_variances=jit(_term_variances),
-                                            cumsums=jit(_cumsums), prepare_finish=jit(_prepare_finish))
+        try:
+            import numba
+        except ImportError:
+            pass
+        else:
+            jit = numba.njit(cache=True, nogil=True)
+            _COMPILED = SimpleNamespace(ccf_pairs=jit(_ccf_pairs), term_variances=jit(_term_variances),
+                                        cumsums=jit(_cumsums), prepare_finish=jit(_prepare_finish))
     return _COMPILED or None
+
+
+def compiled() -> SimpleNamespace | None:
+    """The compiled kernels if the callers should use them now, else None.
+
+    ``LINESHIFT_JIT=0``: never; ``LINESHIFT_JIT=1``: always (when numba is installed); unset: once
+    this process has prepared :data:`WARMUP_SPECTRA` spectra.  Either way the results are the same
+    (tests/test_fast_kernels.py)."""
+    mode = os.environ.get("LINESHIFT_JIT", "").strip()
+    if mode == "0" or (mode != "1" and _prepared < WARMUP_SPECTRA):
+        return None
+    return _load()
+
+
+def _kernels() -> SimpleNamespace:
+    k = _load()
+    if k is None:
+        raise RuntimeError("the compiled kernels need numba (pip install numba)")
+    return k
 
 
 def ccf_pairs(edges, estart, snum, gnum, sden, gden, porder, plam, fac, r, m):
@@ -170,7 +203,7 @@ def ccf_pairs(edges, estart, snum, gnum, sden, gden, porder, plam, fac, r, m):
     (``n + 1`` per order, order ``o`` from ``estart[o]``), ``gnum``, ``gden`` their pixel values
     (``n`` per order); pair ``p`` is line wavelength ``plam[p]`` on order ``porder[p]``, its edge
     ``c`` at ``plam[p] * fac[c]``; ``r`` is the edge layout of :func:`.ccf._edge_layout`."""
-    return compiled().ccf_pairs(edges, estart, snum, gnum, sden, gden, porder, plam, fac, int(r), int(m))
+    return _kernels().ccf_pairs(edges, estart, snum, gnum, sden, gden, porder, plam, fac, int(r), int(m))
 
 
 def term_variances(x, r, w, lstart, pstart, qv, sens, own=None):
@@ -179,7 +212,7 @@ def term_variances(x, r, w, lstart, pstart, qv, sens, own=None):
     (order ``t``'s lines from ``lstart[t]``, its pixels from ``pstart[t]`` in ``qv``), weights ``w``."""
     has_own = own is not None
     own = own if has_own else np.zeros((lstart.size - 1, sens.shape[1]))
-    return compiled().term_variances(x, int(r), w, lstart, pstart, qv, sens, own, has_own)
+    return _kernels().term_variances(x, int(r), w, lstart, pstart, qv, sens, own, has_own)
 
 
 def _cumsums(g, estart):   # pragma: no cover (compiled)
@@ -198,7 +231,7 @@ def _cumsums(g, estart):   # pragma: no cover (compiled)
 def cumsums(g, estart):
     """Each order's ``concatenate(([0], np.cumsum(g_o)))``, concatenated (``estart`` as in
     :func:`ccf_pairs`); sequential sums, as ``np.cumsum`` adds."""
-    return compiled().cumsums(g, estart)
+    return _kernels().cumsums(g, estart)
 
 
 def _prepare_finish(f, v, good, cont, mc, mv, alpha, floor):   # pragma: no cover (compiled)
@@ -228,5 +261,5 @@ def _prepare_finish(f, v, good, cont, mc, mv, alpha, floor):   # pragma: no cove
 def prepare_finish(f, v, good, cont, mc, mv, alpha, floor):
     """(good, normalised flux, its variance, photon weight) of every pixel of a block of orders
     (:func:`.prepare._finish_numpy` is the plain form: the same operations on whole arrays)."""
-    return compiled().prepare_finish(np.ascontiguousarray(f), np.ascontiguousarray(v), np.ascontiguousarray(good),
+    return _kernels().prepare_finish(np.ascontiguousarray(f), np.ascontiguousarray(v), np.ascontiguousarray(good),
                                      np.ascontiguousarray(cont), mc, mv, alpha, floor)

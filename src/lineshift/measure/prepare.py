@@ -257,6 +257,7 @@ def prepare_spectrum(spectrum: Spectrum, *, degree: int = 4) -> list[PreparedOrd
     Bad pixels (NaN flux, NaN or non-positive variance, zero inverse variance) get zero weight.
     Orders of equal length are processed together.
     """
+    kernels.count_spectrum()
     by_len: dict[int, list[int]] = {}
     for k, o in enumerate(spectrum.orders):
         by_len.setdefault(o.flux.size, []).append(k)
