@@ -203,7 +203,7 @@ def _per_order(data, rv, err):
     ok = np.isfinite(rv) & np.isfinite(err)
     rows = []
     for k, t in enumerate(data.terms):
-        lam = float(np.average(t.line_wavelengths, weights=t.weights))
+        lam = float(np.multiply(t.line_wavelengths, t.weights).sum() / t.weights.sum())   # np.average's own steps
         rows.append({"order": int(t.order.index), "wavelength": lam, "rv": float(rv[k]), "rv_err": float(err[k]),
                      "n_lines": int(t.lines.size)})
     use = ok & np.isfinite(err) & (err > 0)
