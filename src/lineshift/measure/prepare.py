@@ -99,8 +99,9 @@ def _weighted_polyfit(V: np.ndarray, y: np.ndarray, w: np.ndarray, work: np.ndar
     k = V.shape[1]
     A = (w @ _outer_rows(V)).reshape(-1, k, k)
     b = np.multiply(w, y, out=work) @ V
-    A += np.eye(V.shape[1])[None] * 1e-12 * np.trace(A, axis1=1, axis2=2)[:, None, None]
-    A[np.trace(A, axis1=1, axis2=2) == 0] = np.eye(k)   # an order with no usable pixel: coefficients 0
+    trace = np.trace(A, axis1=1, axis2=2)                 # >= 0: zero before the ridge iff zero after it
+    A += np.eye(V.shape[1])[None] * 1e-12 * trace[:, None, None]
+    A[trace == 0] = np.eye(k)   # an order with no usable pixel: coefficients 0
     return np.linalg.solve(A, b[..., None])[..., 0]
 
 
@@ -124,11 +125,12 @@ def _continuum_core(flux, var, good, degree, clip_low, clip_high, max_iter, n=No
     scatter2 = np.zeros(flux.shape[0])
     w, work, resid, sigma = (np.empty(y.shape) for _ in range(4))
     for _ in range(max_iter):
-        enough = used.sum(axis=1) > degree + 1
+        count = used.sum(axis=1)
+        enough = count > degree + 1
         np.copyto(w, used if enough.all() else np.where(enough[:, None], used, g))
         coef = _weighted_polyfit(V, y, w, work)
         np.subtract(y, np.matmul(coef, VT, out=resid), out=resid)
-        nused = np.maximum(used.sum(axis=1), 1)
+        nused = np.maximum(count, 1)
         np.subtract(np.square(resid, out=work), v0, out=work)
         np.copyto(work, 0.0, where=~used)
         scatter2 = np.maximum(np.sum(work, axis=1) / nused, 0.0)
