@@ -148,9 +148,10 @@ def _term_variances(x, r, w, lstart, pstart, qv, sens, own, has_own):   # pragma
 
 
 #: Spectra a process prepares with the NumPy forms before it turns to the compiled kernels (when
-#: ``LINESHIFT_JIT`` is unset): loading numba and the cached kernels costs ~0.4 s once per process,
-#: what the kernels save on some 50-70 spectra of 36 x 4096 pixels, so a small run never pays it.
-WARMUP_SPECTRA = 48
+#: ``LINESHIFT_JIT`` is unset): loading numba and the cached kernels costs 0.4-0.8 s once per process,
+#: what the kernels save (~6 ms each) on some 60-120 spectra of 36 x 4096 pixels, so a small run
+#: never pays it.
+WARMUP_SPECTRA = 64
 _prepared = 0
 
 
