@@ -131,3 +131,140 @@ def test_template_run_with_kept_spectra_equals_reading_each_time(sample_set, mon
     for a, b in zip(kept, read, strict=True):
         assert {k: v for k, v in a.items() if k != "_span"} == {k: v for k, v in b.items() if k != "_span"}
     assert reuse._KEPT is None                               # dropped at the end of the batch
+
+
+def _holed_orders():
+    """Three prepared orders of different lengths, one with bad pixels inside its good span (invented)."""
+    from dataclasses import replace
+
+    a, b, c = _prepared(11), _prepared(12, lam0=5008.0, index=1), _prepared(13, n=300, lam0=5003.0, index=2)
+    good = a.good.copy()
+    good[[57, 58, 203]] = False
+    a = replace(a, good=good, weight=np.where(good, a.weight, 0.0), flux=np.where(good, a.flux, 0.0))
+    return [a, b, c]
+
+
+@pytest.mark.parametrize("width", [300.0, 1000.0, 2000.0])
+def test_compiled_ccf_equals_the_numpy_form_to_the_last_bit(width):
+    pytest.importorskip("numba")
+    from lineshift.measure.ccf import correlate
+    from lineshift.model import LineMask
+
+    orders = _holed_orders()
+    # lines inside one order, in two overlapping ones, near the ends (boxes leave the order) and outside
+    mask = LineMask(np.array([4999.0, 5000.4, 5001.0, 5002.5, 5003.0, 5004.1, 5008.1, 5009.2, 5011.9, 5013.0,
+                              5015.9, 5020.0]), np.linspace(0.2, 1.0, 12))
+    v = np.linspace(-10e3, 10e3, 21)
+    for kwargs in ({}, {"keep_lines": True, "clear_of_bad": True}, {"keep_lines": True, "clear_of_bad": (-3e3, 3e3)},
+                   {"lines": np.array([1, 3, 7, 8])}):
+        fast = correlate(orders, mask, v, width, compiled=True, **kwargs)
+        plain = correlate(orders, mask, v, width, compiled=False, **kwargs)
+        assert fast.n_cleared == plain.n_cleared and len(fast.terms) == len(plain.terms) > 0
+        for tf, tp in zip(fast.terms, plain.terms, strict=True):
+            np.testing.assert_array_equal(tf.lines, tp.lines)
+            for name in ("edges_x", "num", "den", "line_num", "line_den"):
+                if getattr(tp, name) is None:
+                    assert getattr(tf, name) is None
+                else:
+                    np.testing.assert_array_equal(getattr(tf, name), getattr(tp, name), err_msg=name)
+    # outside reference for both: the explicit overlap-fraction loop (test_ccf.py does the same)
+    from lineshift.measure.ccf import reference_ccf
+
+    np.testing.assert_allclose(correlate(orders, mask, v, width, compiled=True).ccf,
+                               reference_ccf(orders, mask, v, width), rtol=1e-12)
+
+
+@pytest.mark.parametrize("width", [300.0, 1000.0])
+def test_compiled_error_propagation_equals_the_row_by_row_adjoint(width):
+    pytest.importorskip("numba")
+    from lineshift.measure.ccf import CorrelationData, correlate
+    from lineshift.model import LineMask
+
+    orders = _holed_orders()
+    mask = LineMask(np.array([5001.0, 5002.5, 5003.0, 5004.1, 5009.2, 5011.9, 5013.0]), np.linspace(0.3, 1.0, 7))
+    v = np.linspace(-10e3, 10e3, 21)
+    data = correlate(orders, mask, v, width, compiled=True)
+    assert data.compiled and len(data.terms) == 3
+    rng = np.random.default_rng(8)
+    sens = rng.normal(size=(4, v.size))
+    own = rng.normal(size=(3, v.size))
+    total, per_order = data.variances(sens, own)
+    plain_total = sum(CorrelationData._term_variance_reference(t, sens / data.denominator) for t in data.terms)
+    plain_own = [CorrelationData._term_variance_reference(t, own[k:k + 1] / t.den)[0] for k, t in enumerate(data.terms)]
+    np.testing.assert_allclose(total, plain_total, rtol=1e-12)
+    np.testing.assert_allclose(per_order, plain_own, rtol=1e-12)
+    np.testing.assert_allclose(data.variance_of(sens[0]), plain_total[0], rtol=1e-12)
+
+
+def test_all_orders_line_selection_equals_select_lines_order_by_order():
+    from lineshift.measure.ccf import _inside, _Orders, select_lines
+    from lineshift.model import LineMask
+
+    orders = _holed_orders()
+    mask = LineMask(np.linspace(4999.0, 5016.0, 60), np.ones(60))
+    info = _Orders(orders, compiled=False)
+    for clear in (False, True, (-2e3, 1e3)):
+        inside = _inside(info, mask, -8e3, 9e3, 1000.0, clear, orders)
+        for k, o in enumerate(orders):
+            np.testing.assert_array_equal(np.flatnonzero(inside[k]),
+                                          select_lines(o, mask, -8e3, 9e3, 1000.0, clear_of_bad=clear))
+    held = _inside(info, mask, -8e3, 9e3, 1000.0, True, orders)[0].sum()
+    assert held < select_lines(orders[0], mask, -8e3, 9e3, 1000.0).size   # the holes cost lines
+
+
+def test_compiled_cumulative_sums_equal_numpy_cumsum_exactly():
+    pytest.importorskip("numba")
+    from lineshift.measure import kernels
+
+    rng = np.random.default_rng(10)
+    parts = [rng.normal(size=n) * 10.0 ** rng.uniform(-3, 6, n) for n in (5, 1000, 1)]
+    estart = np.concatenate(([0], np.cumsum([p.size + 1 for p in parts])))
+    expect = np.concatenate([np.concatenate(([0.0], np.cumsum(p))) for p in parts])
+    np.testing.assert_array_equal(kernels.cumsums(np.concatenate(parts), estart), expect)
+
+
+@pytest.mark.parametrize("width", [1, 3, 5, 7, 9, 15])
+def test_running_minimum_by_doubling_equals_scipy_minimum_filter(width):
+    from scipy.ndimage import minimum_filter1d
+
+    from lineshift.measure.outliers import _running_min
+
+    rng = np.random.default_rng(width)
+    a = rng.normal(size=500)
+    a[rng.random(500) < 0.05] = np.inf
+    np.testing.assert_array_equal(_running_min(a, width), minimum_filter1d(a, width, mode="nearest"))
+
+
+def test_flat_top_search_on_a_block_equals_each_row():
+    from lineshift.measure.badpixels import clipped_pixels
+
+    rng = np.random.default_rng(12)
+    flux = np.round(rng.normal(1000.0, 30.0, (6, 400)))       # integer counts: ties are common
+    flux[1, 100:106] = flux[1].max() + 5                       # a clipped top
+    flux[2] = rng.normal(1000.0, 30.0, 400)                    # no tie at all
+    flux[3, 50:53] = np.nan
+    block = clipped_pixels(flux)
+    for r in range(6):
+        np.testing.assert_array_equal(block[r], clipped_pixels(flux[r]))
+    assert block[1, 100:106].all()
+
+
+def test_compiled_preparation_equals_the_numpy_form_to_the_last_bit():
+    pytest.importorskip("numba")
+    from lineshift.measure.prepare import _prepare_block, pixel_edges
+    from lineshift.model import Order
+
+    rng = np.random.default_rng(14)
+    flux, var, _ = _orders(rng, rows=5, n=1200)
+    wave = 5000.0 + 0.02 * np.arange(1200)
+    blaze = 0.5 + np.sin(np.linspace(0.3, 2.8, 1200))
+    orders = [Order(wave + 30.0 * k, flux[k], var[k], index=k, blaze=blaze if k % 2 else None) for k in range(5)]
+    orders[3] = Order(orders[3].wave, np.full(1200, np.nan), var[3], index=3)       # nothing usable
+    fast = _prepare_block(orders, 4, compiled=True)
+    plain = _prepare_block(orders, 4, compiled=False)
+    assert fast[3] is None and plain[3] is None and sum(p is not None for p in fast) == 4
+    for a, b in zip(fast, plain, strict=True):
+        if a is not None:
+            for name in ("flux", "var", "weight", "good", "continuum", "edges"):
+                np.testing.assert_array_equal(getattr(a, name), getattr(b, name), err_msg=name)
+    np.testing.assert_array_equal(pixel_edges(np.vstack([wave, wave + 1])), [pixel_edges(wave), pixel_edges(wave + 1)])

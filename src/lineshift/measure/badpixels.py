@@ -31,8 +31,13 @@ def clipped_pixels(flux: np.ndarray, *, top: float = 0.99, max_fraction: float =
     values with a spread of sigma has a chance of about 1 / (2 sqrt(pi) sigma): common practice).
     """
     flux = np.asarray(flux, dtype=float)
-    if flux.ndim > 1:   # one order per row
-        return np.stack([clipped_pixels(row, top=top, max_fraction=max_fraction) for row in flux])
+    if flux.ndim > 1:   # one order per row; only rows where two finite neighbours tie can have a flat top
+        out = np.zeros(flux.shape, dtype=bool)
+        with np.errstate(invalid="ignore"):
+            tie = ((flux[..., 1:] == flux[..., :-1]) & np.isfinite(flux[..., 1:])).any(axis=-1)
+        for k in zip(*np.nonzero(tie), strict=True):
+            out[k] = clipped_pixels(flux[k], top=top, max_fraction=max_fraction)
+        return out
     finite = np.isfinite(flux)
     out = np.zeros(flux.size, dtype=bool)
     if finite.sum() < 8:

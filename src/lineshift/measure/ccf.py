@@ -23,6 +23,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from lineshift.measure import kernels
 from lineshift.measure.prepare import PreparedOrder
 from lineshift.model import C_MS, LineMask
 
@@ -104,6 +105,7 @@ class CorrelationData:
     velocity: np.ndarray
     terms: list[_OrderTerms]
     n_cleared: int = 0    # lines left out because bad pixels meet their boxes (``clear_of_bad``)
+    compiled: bool = False   # propagate errors with the compiled kernel (measure/kernels.py)
 
     @property
     def numerator(self) -> np.ndarray:
@@ -139,14 +141,23 @@ class CorrelationData:
         sens = np.atleast_2d(np.asarray(sensitivity, dtype=float)) / self.denominator
         if not self.terms:
             return np.zeros(sens.shape[0]) if np.ndim(sensitivity) == 2 else 0.0
-        out = np.sum([self._term_variance(t, sens) for t in self.terms], axis=0)
+        if self.compiled:
+            out = _compiled_variances(self.terms, sens, None)[0]
+        else:
+            out = np.sum([self._term_variance(t, sens) for t in self.terms], axis=0)
         return out if np.ndim(sensitivity) == 2 else float(out[0])
 
     def variances(self, sensitivity: np.ndarray, order_sensitivities: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """:meth:`variance_of` for the rows of ``sensitivity``, and for each contributing order k the
         variance of ``order_sensitivities[k] @ order_ccf_k`` (that order's pixels, its own
-        denominator), in one pass over the orders (they share the per-order set-up)."""
+        denominator), in one pass over the orders (they share the per-order set-up).
+
+        With ``compiled`` every order in one call of :func:`.kernels.term_variances`; otherwise one
+        :meth:`_term_variance` per order (the NumPy form it is tested against)."""
         sens = np.atleast_2d(np.asarray(sensitivity, dtype=float)) / self.denominator
+        if self.compiled and self.terms:
+            own = np.asarray(order_sensitivities, dtype=float) / np.array([t.den for t in self.terms])
+            return _compiled_variances(self.terms, sens, own)
         total = np.zeros(sens.shape[0])
         per_order = np.zeros(len(self.terms))
         for k, t in enumerate(self.terms):
@@ -203,6 +214,17 @@ class CorrelationData:
         return out
 
 
+def _compiled_variances(terms: list[_OrderTerms], sens: np.ndarray, own: np.ndarray | None):
+    """:meth:`CorrelationData.variances` for every order in one call of the compiled kernel."""
+    x = np.concatenate([t.edges_x for t in terms]) if len(terms) > 1 else terms[0].edges_x
+    lstart = np.concatenate(([0], np.cumsum([t.lines.size for t in terms]))).astype(np.intp)
+    pstart = np.concatenate(([0], np.cumsum([t.order.flux.size for t in terms]))).astype(np.intp)
+    qv = np.concatenate([t.order.weight * t.order.weight * t.order.var for t in terms])
+    w = np.concatenate([t.weights for t in terms])
+    return kernels.term_variances(np.ascontiguousarray(x, dtype=float), terms[0].r, w, lstart, pstart, qv,
+                                  np.ascontiguousarray(sens), None if own is None else np.ascontiguousarray(own))
+
+
 def select_lines(order: PreparedOrder, mask: LineMask, v_lo: float, v_hi: float,
                  box_width: float, *, clear_of_bad: bool | tuple[float, float] = False) -> np.ndarray:
     """Indices of mask lines whose box stays inside the order's good pixels for all v in [v_lo, v_hi].
@@ -232,9 +254,72 @@ def select_lines(order: PreparedOrder, mask: LineMask, v_lo: float, v_hi: float,
     return np.flatnonzero(inside)
 
 
+class _Orders:
+    """What every CCF of one prepared spectrum needs of its orders, computed once and kept in the
+    caller's ``sums`` across the coarse and fine grids: each order's span of good pixels, whether a
+    bad pixel lies inside it, the pixel arrays ``q f`` and ``q`` with their cumulative sums, and
+    (for the compiled kernel) all of it concatenated."""
+
+    def __init__(self, orders: list[PreparedOrder], compiled: bool):
+        self.orders = tuple(orders)
+        lo, hi, holes = [], [], []
+        for o in orders:
+            good = np.flatnonzero(o.good)
+            lo.append(o.edges[good[0]])
+            hi.append(o.edges[good[-1] + 1])
+            holes.append(good[-1] + 1 - good[0] != good.size)
+        self.lam_min, self.lam_max, self.holes = np.array(lo), np.array(hi), np.array(holes, dtype=bool)
+        self.sums: list | None = None
+        self.packed: tuple | None = None
+        if compiled:
+            edges = np.concatenate([o.edges for o in orders])
+            estart = np.concatenate(([0], np.cumsum([o.edges.size for o in orders]))).astype(np.intp)
+            gden = np.concatenate([o.weight for o in orders])
+            gnum = np.concatenate([o.flux for o in orders]) * gden
+            self.packed = (edges, estart, kernels.cumsums(gnum, estart), gnum, kernels.cumsums(gden, estart), gden)
+        else:
+            self.sums = []
+            for o in orders:
+                g_num = o.flux * o.weight
+                self.sums.append([(g, np.concatenate(([0.0], np.cumsum(g)))) for g in (g_num, o.weight)])
+
+
+def _orders_of(orders: list[PreparedOrder], sums: dict | None, compiled: bool) -> _Orders:
+    key = ("orders", compiled)
+    kept = None if sums is None else sums.get(key)
+    same = kept is not None and len(kept.orders) == len(orders)
+    if same and all(a is b for a, b in zip(kept.orders, orders, strict=True)):
+        return kept
+    kept = _Orders(orders, compiled)
+    if sums is not None:
+        sums[key] = kept
+    return kept
+
+
+def _inside(info: _Orders, mask: LineMask, v_lo: float, v_hi: float, box_width: float,
+            clear_of_bad: bool | tuple[float, float], orders: list[PreparedOrder]) -> np.ndarray:
+    """:func:`select_lines` for every order at once: (orders, lines) booleans."""
+    half = 0.5 * box_width
+    lo = mask.wavelength * (1 + (v_lo - half) / C_MS)
+    hi = mask.wavelength * (1 + (v_hi + half) / C_MS)
+    inside = (lo[None, :] >= info.lam_min[:, None]) & (hi[None, :] <= info.lam_max[:, None])
+    if clear_of_bad is not False and info.holes.any():
+        if isinstance(clear_of_bad, tuple):
+            lo = mask.wavelength * (1 + (clear_of_bad[0] - half) / C_MS)
+            hi = mask.wavelength * (1 + (clear_of_bad[1] + half) / C_MS)
+        for k in np.flatnonzero(info.holes & inside.any(axis=1)):
+            order = orders[k]
+            j = np.flatnonzero(inside[k])
+            nbad = np.concatenate(([0], np.cumsum(~order.good)))
+            pa = np.clip(np.searchsorted(order.edges, lo[j], side="right") - 1, 0, order.good.size)
+            pb = np.clip(np.searchsorted(order.edges, hi[j], side="left"), 0, order.good.size)
+            inside[k, j] = nbad[pb] - nbad[pa] == 0
+    return inside
+
+
 def correlate(orders: list[PreparedOrder], mask: LineMask, velocity: np.ndarray, box_width: float,
               *, lines: np.ndarray | None = None, clear_of_bad: bool = False, sums: dict | None = None,
-              keep_lines: bool = False) -> CorrelationData:
+              keep_lines: bool = False, compiled: bool | None = None) -> CorrelationData:
     """CCF of prepared orders with a mask on a velocity grid (m/s, observatory frame).
 
     Parameters
@@ -257,43 +342,55 @@ def correlate(orders: list[PreparedOrder], mask: LineMask, velocity: np.ndarray,
     keep_lines : bool
         Keep each line's own box sums (``line_num``, ``line_den`` of each order's terms), the
         per-line CCFs that :mod:`.recentre` measures line offsets on.
+    compiled : bool, optional
+        Box integrals (and later the error propagation) by the compiled kernels of
+        :mod:`.kernels` (default: when numba is there), or by the NumPy form below (``np.interp``
+        and :func:`_cum` per order), which gives the same CCF to the last bit.
     """
     velocity = np.asarray(velocity, dtype=float)
     m = velocity.size
     edge_v, r = _edge_layout(velocity, box_width)
     lam_lines = mask.wavelength
-    terms = []
+    compiled = kernels.compiled() is not None if compiled is None else bool(compiled)
+    info = _orders_of(orders, sums, compiled)
+    inside = _inside(info, mask, velocity[0], velocity[-1], box_width, clear_of_bad, orders)
+    if lines is not None:
+        allowed = np.zeros(lam_lines.size, dtype=bool)
+        allowed[lines] = True
     n_cleared = 0
-    for order in orders:
-        idx = select_lines(order, mask, velocity[0], velocity[-1], box_width, clear_of_bad=clear_of_bad)
-        if lines is not None:
-            idx = np.intersect1d(idx, lines, assume_unique=True)
-        if keep_lines and clear_of_bad:
-            plain = select_lines(order, mask, velocity[0], velocity[-1], box_width)
-            n_cleared += plain.size - (idx.size if lines is None else np.intersect1d(plain, lines).size)
-        if idx.size == 0:
-            continue
-        # line-major layout (lines x edges): consecutive queries are neighbouring pixels, which
-        # numpy's interp finds from its previous answer without a full binary search
-        x = _pixel_coordinate(order.edges, lam_lines[idx][:, None] * (1 + edge_v[None, :] / C_MS))
+    if keep_lines and clear_of_bad:
+        plain = _inside(info, mask, velocity[0], velocity[-1], box_width, False, orders)
+        n_cleared = int(plain.sum()) - int(inside.sum() if lines is None else (plain & allowed).sum())
+    if lines is not None:
+        inside &= allowed
+    pair_order, pair_line = np.nonzero(inside)          # order by order, lines ascending
+    bounds = np.searchsorted(pair_order, np.arange(len(orders) + 1))
+    fac = 1 + edge_v / C_MS
+    if compiled and pair_line.size:
+        x_all, bnum, bden = kernels.ccf_pairs(*info.packed, pair_order.astype(np.intp), lam_lines[pair_line], fac, r, m)
+    terms = []
+    for k in np.flatnonzero(bounds[1:] > bounds[:-1]):
+        order = orders[k]
+        sl = slice(bounds[k], bounds[k + 1])
+        idx = pair_line[sl]
         w = mask.weight[idx]
-        cached = None if sums is None else sums.get(id(order))
-        if cached is None or cached[0] is not order:
-            g_num = order.flux * order.weight
-            cached = (order, [(g, np.concatenate(([0.0], np.cumsum(g)))) for g in (g_num, order.weight)])
-            if sums is not None:
-                sums[id(order)] = cached
-        totals, boxes = [], []
-        for g, S in cached[1]:
-            c = _cum(S, g, x)
-            box = c[:, r:] - c[:, :m] if r else c[:, m:] - c[:, :m]
-            totals.append(w @ box)
-            boxes.append(box if keep_lines else None)
-        num, den = totals
-        if not np.all(den > 0):
+        if compiled:
+            x = x_all[sl]
+            boxes = [bnum[sl], bden[sl]]
+        else:
+            # line-major layout (lines x edges): consecutive queries are neighbouring pixels, which
+            # numpy's interp finds from its previous answer without a full binary search
+            x = _pixel_coordinate(order.edges, lam_lines[idx][:, None] * fac[None, :])
+            boxes = []
+            for g, S in info.sums[k]:
+                c = _cum(S, g, x)
+                boxes.append(c[:, r:] - c[:, :m] if r else c[:, m:] - c[:, :m])
+        num, den = w @ boxes[0], w @ boxes[1]
+        if not (den > 0).all():
             continue
-        terms.append(_OrderTerms(order, w, idx, x, r, num, den, lam_lines[idx], *boxes))
-    return CorrelationData(velocity, terms, n_cleared)
+        terms.append(_OrderTerms(order, w, idx, x, r, num, den, lam_lines[idx],
+                                 *(boxes if keep_lines else (None, None))))
+    return CorrelationData(velocity, terms, n_cleared, compiled)
 
 
 def reference_ccf(orders: list[PreparedOrder], mask: LineMask, velocity: np.ndarray,

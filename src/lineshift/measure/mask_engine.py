@@ -62,7 +62,8 @@ CLEAR_FWHM = 2.0
 
 def pixel_velocity_width(orders: list[PreparedOrder]) -> float:
     """Median width of one pixel in velocity, m/s (from every 8th pixel: plenty for a median)."""
-    return float(np.median(np.concatenate([C_MS * np.diff(o.edges)[::8] / o.wave[::8] for o in orders])))
+    # np.diff(o.edges)[::8] without the differences left out
+    return float(np.median(np.concatenate([C_MS * (o.edges[1::8] - o.edges[:-1:8]) / o.wave[::8] for o in orders])))
 
 
 def _to_topo(v_bary: float, berv: float) -> float:
@@ -183,7 +184,11 @@ def measure_mask(orders: list[PreparedOrder], mask: LineMask, settings: SearchSe
     errs = {k: float(np.sqrt(v)) for k, v in zip(sens, var, strict=True)}
     order_rows, slope, slope_err = _per_order(data, order_rv, np.where(order_ok, np.sqrt(order_var), np.nan))
     # median SNR per pixel; every 4th pixel is plenty for a median
-    good_snr = np.concatenate([o.flux[o.good][::4] / np.sqrt(o.var[o.good][::4]) for o in orders])
+    good_snr = []
+    for o in orders:
+        at = np.flatnonzero(o.good)[::4]
+        good_snr.append(o.flux[at] / np.sqrt(o.var[at]))
+    good_snr = np.concatenate(good_snr)
     return CCFResult(
         rv=fit.mu, rv_err=errs["rv"], fwhm=fit.fwhm, fwhm_err=errs["fwhm"], contrast=fit.contrast,
         contrast_err=errs["contrast"], snr=float(np.median(good_snr)), n_lines=data.n_lines,
@@ -198,7 +203,7 @@ def _per_order(data, rv, err):
     ok = np.isfinite(rv) & np.isfinite(err)
     rows = []
     for k, t in enumerate(data.terms):
-        lam = float(np.average(t.line_wavelengths, weights=t.weights))
+        lam = float(np.multiply(t.line_wavelengths, t.weights).sum() / t.weights.sum())   # np.average's own steps
         rows.append({"order": int(t.order.index), "wavelength": lam, "rv": float(rv[k]), "rv_err": float(err[k]),
                      "n_lines": int(t.lines.size)})
     use = ok & np.isfinite(err) & (err > 0)

@@ -147,23 +147,41 @@ def find_spikes_reference(flux: np.ndarray, var: np.ndarray, good: np.ndarray | 
     return spikes
 
 
-def _spike_runs(flux, var, bad, high, max_width, nsigma, contrast) -> np.ndarray:
-    """The runs of ``high`` (per row) of at most ``max_width`` pixels that pass :func:`_steep`, all at once."""
-    rows, n = high.shape
-    edge = np.zeros((rows, 1), dtype=np.int8)
-    d = np.diff(np.concatenate([edge, high.astype(np.int8), edge], axis=1), axis=1)
-    r, a = np.nonzero(d == 1)
-    _, b = np.nonzero(d == -1)          # row-major order: the k-th stop closes the k-th start
-    out = np.zeros((rows, n), dtype=bool)
+def _running_min(a: np.ndarray, width: int) -> np.ndarray:
+    """Minimum over ``width`` (odd) neighbours of each element of the 1-D ``a``, the ends extended by
+    their own values (``scipy.ndimage.minimum_filter1d(a, width, mode="nearest")``), by doubling spans:
+    a few ``np.minimum`` over the whole array instead of ``width`` comparisons per element."""
+    h = width // 2
+    p = np.concatenate((np.full(h, a[0]), a, np.full(h, a[-1])))
+    span = 1
+    while 2 * span <= width:
+        p = np.minimum(p[:-span], p[span:])     # p[i] = min of the original p[i : i + 2 span]
+        span *= 2
+    return np.minimum(p[:a.size], p[width - span:width - span + a.size]) if span < width else p
+
+
+def _spike_runs(flux, var, bad, spikes, high, max_width, nsigma, contrast) -> tuple[np.ndarray, np.ndarray]:
+    """(rows, columns) of the pixels in runs of ``high`` (sorted flat indices into the 2-D arrays) of at
+    most ``max_width`` pixels that pass :func:`_steep`, all runs at once; ``bad | spikes`` are the
+    pixels that cannot serve as a run's outer neighbours."""
+    n = flux.shape[1]
+    if high.size == 0:
+        return high, high
+    col = high % n
+    new = np.ones(high.size, dtype=bool)        # a run starts where the previous pixel is not high
+    new[1:] = (high[1:] != high[:-1] + 1) | (col[1:] == 0)
+    first = np.flatnonzero(new)
+    last = np.concatenate((first[1:], [high.size])) - 1
+    r, a, b = high[first] // n, col[first], col[last] + 1
     short = (b - a) <= max_width
     r, a, b = r[short], a[short], b[short]
     if r.size == 0:
-        return out
+        return r, r
     # the pixels just outside each run that exist and are good, and their maximum
-    left_ok = (a - 1 >= 0) & ~bad[r, np.maximum(a - 1, 0)]
-    right_ok = (b < n) & ~bad[r, np.minimum(b, n - 1)]
-    top = np.maximum(np.where(left_ok, flux[r, np.maximum(a - 1, 0)], -np.inf),
-                     np.where(right_ok, flux[r, np.minimum(b, n - 1)], -np.inf))
+    la, rb = np.maximum(a - 1, 0), np.minimum(b, n - 1)
+    left_ok = (a - 1 >= 0) & ~(bad[r, la] | spikes[r, la])
+    right_ok = (b < n) & ~(bad[r, rb] | spikes[r, rb])
+    top = np.maximum(np.where(left_ok, flux[r, la], -np.inf), np.where(right_ok, flux[r, rb], -np.inf))
     # minimum flux and maximum variance inside each run (at most max_width pixels)
     j = a[:, None] + np.arange(max_width)[None, :]
     inside = j < b[:, None]
@@ -173,10 +191,8 @@ def _spike_runs(flux, var, bad, high, max_width, nsigma, contrast) -> np.ndarray
     with np.errstate(invalid="ignore"):
         steep = low - top > np.maximum(nsigma * np.sqrt(vmax), contrast * np.abs(top))
     steep |= ~(left_ok | right_ok)        # no usable neighbour: nothing to compare with
-    for k in range(max_width):            # mark the accepted runs, pixel by pixel of their width
-        sel = steep & (a + k < b)
-        out[r[sel], a[sel] + k] = True
-    return out
+    sel = steep[:, None] & inside
+    return np.broadcast_to(r[:, None], j.shape)[sel], j[sel]
 
 
 def find_spikes(flux: np.ndarray, var: np.ndarray, good: np.ndarray | None = None, *,
@@ -202,39 +218,47 @@ def find_spikes(flux: np.ndarray, var: np.ndarray, good: np.ndarray | None = Non
     if good is not None:
         base_bad |= ~np.atleast_2d(np.asarray(good, dtype=bool))
     spikes = np.zeros(flux.shape, dtype=bool)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        sig = nsigma * np.sqrt(var)
+    n = flux.shape[1]
     if model is None:
         # The median of a window's good pixels is at least their minimum, so a pixel can only stand
         # out of its running median if it stands out of the running minimum by the same margins.
         # The minimum (over the good pixels at the start, a superset of those left later, and
-        # across row ends, a superset again) is cheap; the median is taken only where it can matter.
-        from scipy.ndimage import minimum_filter1d
-
-        low = minimum_filter1d(np.where(base_bad, np.inf, flux).ravel(), 2 * max_width + 1,
-                               mode="nearest").reshape(flux.shape)
+        # across row ends, a superset again) is cheap; the median is taken only where it can matter,
+        # and only there can a pixel be high (the reference is NaN elsewhere).
+        with np.errstate(invalid="ignore", divide="ignore"):
+            sig = nsigma * np.sqrt(var)
+        low = _running_min(np.where(base_bad, np.inf, flux).ravel(), 2 * max_width + 1).reshape(flux.shape)
         with np.errstate(invalid="ignore"):
             lift = flux - low
-            cand_r, cand_i = np.nonzero((lift > sig) & (lift > contrast * np.maximum(low, 0.0)) & ~base_bad)
-        x = np.pad(np.where(base_bad, np.nan, flux), ((0, 0), (max_width, max_width)), constant_values=np.nan)
-        cols = cand_i[:, None] + np.arange(2 * max_width + 1)[None, :]
+            cand = np.flatnonzero((lift > sig) & (lift > contrast * np.maximum(low, 0.0)) & ~base_bad)
+        cand_r, cand_i = cand // n, cand % n
+        sig_c = nsigma * np.sqrt(var[cand_r, cand_i])
+        # each candidate's window of good pixels (NaN for bad ones and beyond the row's ends)
+        src = cand_i[:, None] + np.arange(-max_width, max_width + 1)[None, :]
+        inside = (src >= 0) & (src < n)
+        src = np.clip(src, 0, n - 1)
+        win = np.where(inside & ~base_bad[cand_r[:, None], src], flux[cand_r[:, None], src], np.nan)
+    else:
+        with np.errstate(invalid="ignore", divide="ignore"):
+            sig = nsigma * np.sqrt(var)
     for _ in range(max_iter if model is None else 1):
         if model is None:
-            ref = np.full(flux.shape, np.nan)
-            if cand_r.size:
-                win = x[cand_r[:, None], cols]
-                hit = spikes[cand_r[:, None], np.clip(cols - max_width, 0, flux.shape[1] - 1)]
-                inside = (cols >= max_width) & (cols < flux.shape[1] + max_width)
-                ref[cand_r, cand_i] = median_of_finite(np.where(hit & inside, np.nan, win))
+            if cand.size == 0:
+                break
+            ref = median_of_finite(np.where(spikes[cand_r[:, None], src] & inside, np.nan, win))
+            with np.errstate(invalid="ignore"):
+                excess = flux[cand_r, cand_i] - ref
+                high = cand[(excess > sig_c) & (excess > contrast * np.abs(ref)) & np.isfinite(ref)]
         else:
             ref = np.atleast_2d(np.asarray(model, dtype=float))
-        with np.errstate(invalid="ignore", divide="ignore"):
-            excess = flux - ref
-            high = (excess > sig) & (excess > contrast * np.abs(ref)) & ~base_bad & np.isfinite(ref)
-        new = _spike_runs(flux, var, base_bad | spikes, high, max_width, nsigma, contrast)
-        if not (new & ~spikes).any():
+            with np.errstate(invalid="ignore", divide="ignore"):
+                excess = flux - ref
+                high = np.flatnonzero((excess > sig) & (excess > contrast * np.abs(ref)) & ~base_bad
+                                      & np.isfinite(ref))
+        nr, ni = _spike_runs(flux, var, base_bad, spikes, high, max_width, nsigma, contrast)
+        if not (~spikes[nr, ni]).any():
             break
-        spikes |= new
+        spikes[nr, ni] = True
     if grow > 0 and spikes.any():
         grown = spikes.copy()
         for k in range(1, grow + 1):

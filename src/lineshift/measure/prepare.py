@@ -24,6 +24,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from lineshift.measure import kernels
 from lineshift.measure.badpixels import bad_pixels
 from lineshift.measure.outliers import find_spikes
 from lineshift.model import C_MS, LineMask, Order, Spectrum
@@ -59,9 +60,11 @@ class PreparedOrder:
 
 
 def pixel_edges(wave: np.ndarray) -> np.ndarray:
-    """Pixel edges from pixel centres: midpoints inside, half a step beyond the ends."""
-    mid = 0.5 * (wave[1:] + wave[:-1])
-    return np.concatenate(([wave[0] - (mid[0] - wave[0])], mid, [wave[-1] + (wave[-1] - mid[-1])]))
+    """Pixel edges from pixel centres: midpoints inside, half a step beyond the ends (along the last
+    axis: one row of pixel centres per order gives one row of edges per order)."""
+    mid = 0.5 * (wave[..., 1:] + wave[..., :-1])
+    return np.concatenate((wave[..., :1] - (mid[..., :1] - wave[..., :1]), mid,
+                           wave[..., -1:] + (wave[..., -1:] - mid[..., -1:])), axis=-1)
 
 
 _DESIGN_CACHE: dict[tuple[int, int], np.ndarray] = {}
@@ -76,37 +79,64 @@ def _legendre_design(n: int, degree: int) -> np.ndarray:
     return _DESIGN_CACHE[key]
 
 
-def _weighted_polyfit(V: np.ndarray, y: np.ndarray, w: np.ndarray) -> np.ndarray:
-    """Batched weighted least squares: rows of ``y`` (orders x pixels) with 0/1 weights ``w``."""
+_VV_CACHE: dict[tuple, np.ndarray] = {}
+
+
+def _outer_rows(V: np.ndarray) -> np.ndarray:
+    """Each row's outer product with itself, flattened (kept per design: the designs are few)."""
+    key = (V.shape, V[0].tobytes(), V[-1].tobytes())
+    if key not in _VV_CACHE:
+        if len(_VV_CACHE) > 32:
+            _VV_CACHE.clear()
+        k = V.shape[1]
+        _VV_CACHE[key] = (V[:, :, None] * V[:, None, :]).reshape(V.shape[0], k * k)
+    return _VV_CACHE[key]
+
+
+def _weighted_polyfit(V: np.ndarray, y: np.ndarray, w: np.ndarray, work: np.ndarray | None = None) -> np.ndarray:
+    """Batched weighted least squares: rows of ``y`` (orders x pixels) with 0/1 weights ``w``
+    (``work``: an array of y's shape to hold ``w * y``)."""
     k = V.shape[1]
-    VV = (V[:, :, None] * V[:, None, :]).reshape(V.shape[0], k * k)
-    A = (w @ VV).reshape(-1, k, k)
-    b = (w * y) @ V
-    A += np.eye(V.shape[1])[None] * 1e-12 * np.trace(A, axis1=1, axis2=2)[:, None, None]
-    A[np.trace(A, axis1=1, axis2=2) == 0] = np.eye(k)   # an order with no usable pixel: coefficients 0
+    A = (w @ _outer_rows(V)).reshape(-1, k, k)
+    b = np.multiply(w, y, out=work) @ V
+    trace = np.trace(A, axis1=1, axis2=2)                 # >= 0: zero before the ridge iff zero after it
+    A += np.eye(V.shape[1])[None] * 1e-12 * trace[:, None, None]
+    A[trace == 0] = np.eye(k)   # an order with no usable pixel: coefficients 0
     return np.linalg.solve(A, b[..., None])[..., 0]
 
 
-def _continuum_core(flux, var, good, degree, clip_low, clip_high, max_iter):
-    """Clipping iterations on every ``stride``-th pixel; returns (coef, used, stride, scatter^2)."""
-    n = flux.shape[1]
+def _continuum_core(flux, var, good, degree, clip_low, clip_high, max_iter, n=None):
+    """Clipping iterations on every ``stride``-th pixel; returns (coef, used, stride, scatter^2).
+
+    With ``n`` the arrays are already that subset of orders of ``n`` pixels.  The iterations reuse
+    their work arrays (the same operations, without a fresh allocation per step)."""
     # a degree-4 polynomial needs no more than ~1000 points: the iterations run on a subset
-    stride = max(1, n // 1024)
+    stride = max(1, (flux.shape[1] if n is None else n) // 1024)
+    if n is None:
+        n = flux.shape[1]
+        flux, var, good = flux[:, ::stride], var[:, ::stride], good[:, ::stride]
     V = _legendre_design(n, degree)[::stride]
-    g = good[:, ::stride]
-    y = np.where(g, flux[:, ::stride], 0.0)
-    v0 = np.where(g, var[:, ::stride], 0.0)
+    VT = V.T
+    g = good
+    y = np.where(g, flux, 0.0)
+    v0 = np.where(g, var, 0.0)
     used = g.copy()
     coef = np.zeros((flux.shape[0], degree + 1))
     scatter2 = np.zeros(flux.shape[0])
+    w, work, resid, sigma = (np.empty(y.shape) for _ in range(4))
     for _ in range(max_iter):
-        enough = used.sum(axis=1) > degree + 1
-        coef = _weighted_polyfit(V, y, np.where(enough[:, None], used, g).astype(float))
-        resid = y - coef @ V.T
-        nused = np.maximum(used.sum(axis=1), 1)
-        scatter2 = np.maximum(np.sum(np.where(used, resid**2 - v0, 0.0), axis=1) / nused, 0.0)
-        sigma = np.sqrt(v0 + scatter2[:, None])
-        new = g & (resid > -clip_low * sigma) & (resid < clip_high * sigma)
+        count = used.sum(axis=1)
+        enough = count > degree + 1
+        np.copyto(w, used if enough.all() else np.where(enough[:, None], used, g))
+        coef = _weighted_polyfit(V, y, w, work)
+        np.subtract(y, np.matmul(coef, VT, out=resid), out=resid)
+        nused = np.maximum(count, 1)
+        np.subtract(np.square(resid, out=work), v0, out=work)
+        np.copyto(work, 0.0, where=~used)
+        scatter2 = np.maximum(np.sum(work, axis=1) / nused, 0.0)
+        np.sqrt(np.add(v0, scatter2[:, None], out=sigma), out=sigma)
+        new = g & (resid > np.multiply(sigma, -clip_low, out=work))
+        new &= resid < np.multiply(sigma, clip_high, out=work)
         changed = np.count_nonzero(new != used)
         used = new
         if changed <= 1e-3 * new.size:  # converged (a few pixels may flip back and forth)
@@ -153,10 +183,27 @@ def fit_continuum(flux: np.ndarray, var: np.ndarray, good: np.ndarray, *, degree
     return (fit[0], used_full[0]) if one else (fit, used_full)
 
 
-def _prepare_block(orders: list[Order], degree: int) -> list[PreparedOrder | None]:
-    """Prepare orders of equal length together (array operations across orders)."""
+def _finish_numpy(f, v, good, cont, mc, mv, alpha, floor):
+    """Normalised flux and variance and the photon weight of every pixel (the plain NumPy form of
+    :func:`.kernels.prepare_finish`, which does the same operations pixel by pixel)."""
+    good = good & np.isfinite(cont) & (cont > 0)
+    c = np.where(good, cont, 1.0)
+    fn = np.where(good, f / c, 0.0)
+    vn = np.where(good, v / c**2, 0.0)
+    vcont = mv[:, None] + alpha[:, None] * (c - mc[:, None])
+    den = np.maximum(vcont, floor[:, None])  # zero only for an order without a usable pixel
+    q = np.where(good & (den > 0), c**2 / np.where(den > 0, den, 1.0), 0.0)
+    return good, fn, vn, q
+
+
+def _prepare_block(orders: list[Order], degree: int, compiled: bool | None = None) -> list[PreparedOrder | None]:
+    """Prepare orders of equal length together (array operations across orders).
+
+    ``compiled``: the last per-pixel step by :func:`.kernels.prepare_finish` (default: when numba is
+    there) or by :func:`_finish_numpy`; the results are the same to the last bit."""
     flux = np.vstack([o.flux for o in orders])
     var = np.vstack([o.var for o in orders])
+    n = flux.shape[1]
     # bad pixels grown by the reach of a reduction's interpolation, and cosmic-ray / hot-pixel
     # spikes against a running median (measure/badpixels.py, measure/outliers.py)
     good = ~bad_pixels(flux, var) & ~find_spikes(flux, var)
@@ -165,34 +212,36 @@ def _prepare_block(orders: list[Order], degree: int) -> list[PreparedOrder | Non
     if given:
         b = np.vstack([orders[k].blaze for k in given])
         usable = np.all((np.isfinite(b) & (b > 0)) | ~good[given], axis=1)
-        for k, bk, ok in zip(given, b, usable, strict=True):
-            if ok:
-                blaze[k] = np.where(good[k], bk, 1.0)
+        rows = np.array(given)[usable]
+        blaze[rows] = np.where(good[rows], b[usable], 1.0)
     f = np.where(good, flux, 0.0)
     v = np.where(good, var, 0.0)
-    coef, used, stride, _ = _continuum_core(f / blaze, v / blaze**2, good, degree, 2.0, 3.0, 10)
+    # the clipping iterations see every stride-th pixel only: divide by the blaze there alone
+    stride = max(1, n // 1024)
+    bs = blaze[:, ::stride]
+    coef, used, stride, _ = _continuum_core(f[:, ::stride] / bs, v[:, ::stride] / bs**2, good[:, ::stride],
+                                            degree, 2.0, 3.0, 10, n=n)
     enough = used.sum(axis=1) > degree + 1
-    cont = np.where(enough[:, None], coef @ _legendre_design(flux.shape[1], degree).T, np.nan) * blaze
-    good &= np.isfinite(cont) & (cont > 0)
-    c = np.where(good, cont, 1.0)
-    fn = np.where(good, f / c, 0.0)
-    vn = np.where(good, v / c**2, 0.0)
+    cont = np.where(enough[:, None], coef @ _legendre_design(n, degree).T, np.nan) * blaze
     # photon weight q = 1 / var_f at continuum level = c^2 / (alpha c + beta): the variance of the
     # counts at the continuum, regressed linearly on the continuum (exact for photon + read noise),
     # on the same pixel subset as the continuum's clipping
-    used &= good[:, ::stride]
+    cs = cont[:, ::stride]
+    gs = good[:, ::stride] & np.isfinite(cs) & (cs > 0)
+    used &= gs
     w = used.astype(float)
-    cs, vs = c[:, ::stride], v[:, ::stride]
+    cs, vs = np.where(gs, cs, 1.0), v[:, ::stride]
     nw = np.maximum(w.sum(axis=1), 1.0)
     mc = np.sum(w * cs, axis=1) / nw
     mv = np.sum(w * vs, axis=1) / nw
     cov = np.sum(w * (cs - mc[:, None]) * (vs - mv[:, None]), axis=1)
     scc = np.sum(w * (cs - mc[:, None]) ** 2, axis=1)
     alpha = np.where(scc > 0, cov / np.where(scc > 0, scc, 1.0), 0.0)
-    vcont = mv[:, None] + alpha[:, None] * (c - mc[:, None])
     floor = 0.25 * mv
-    den = np.maximum(vcont, floor[:, None])  # zero only for an order without a usable pixel
-    q = np.where(good & (den > 0), c**2 / np.where(den > 0, den, 1.0), 0.0)
+    if kernels.compiled() is not None if compiled is None else compiled:
+        good, fn, vn, q = kernels.prepare_finish(f, v, good, cont, mc, mv, alpha, floor)
+    else:
+        good, fn, vn, q = _finish_numpy(f, v, good, cont, mc, mv, alpha, floor)
     usable = (good.sum(axis=1) >= max(32, 4 * (degree + 1))) & (used.sum(axis=1) * stride >= 10)
     return [PreparedOrder(o.wave, pixel_edges(o.wave), fn[k], vn[k], q[k], good[k], o.index, cont[k]) if usable[k]
             else None
@@ -210,6 +259,7 @@ def prepare_spectrum(spectrum: Spectrum, *, degree: int = 4) -> list[PreparedOrd
     Bad pixels (NaN flux, NaN or non-positive variance, zero inverse variance) get zero weight.
     Orders of equal length are processed together.
     """
+    kernels.count_spectrum()
     by_len: dict[int, list[int]] = {}
     for k, o in enumerate(spectrum.orders):
         by_len.setdefault(o.flux.size, []).append(k)

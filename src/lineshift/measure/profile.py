@@ -64,27 +64,29 @@ def _bisector_velocities(v, y, c0, amp, depths, i_min):
     levels = c0 - depths * amp
     spline = CubicSpline(v, y)
     basis = CubicSpline(v, np.eye(v.size))        # B_i(x) for every i at once
-    vel = np.zeros(depths.size)
-    sens = np.zeros((depths.size, v.size))
-    dlevel = np.zeros(depths.size)
-    ok = np.ones(depths.size, dtype=bool)
-    for direction in (-1, 1):
-        a, b, found = _side(v, y, levels, i_min, direction)
-        ok &= found & (y[b] != y[a])
-        # start from the straight-line crossing, then Newton on the spline (bracketed in [v_a, v_b])
-        dy = np.where(y[b] != y[a], y[b] - y[a], 1.0)
-        x = v[a] + (levels - y[a]) / dy * (v[b] - v[a])
-        lo, hi = np.minimum(v[a], v[b]), np.maximum(v[a], v[b])
-        for _ in range(8):
-            d1 = spline(x, 1)
-            step = np.where(d1 != 0, (spline(x) - levels) / np.where(d1 != 0, d1, 1.0), 0.0)
-            x = np.clip(x - step, lo, hi)
+    k = depths.size
+    # both sides at once (left: the first k entries, right: the last k): one spline call per step
+    a_l, b_l, found_l = _side(v, y, levels, i_min, -1)
+    a_r, b_r, found_r = _side(v, y, levels, i_min, 1)
+    a, b = np.concatenate((a_l, a_r)), np.concatenate((b_l, b_r))
+    lv = np.concatenate((levels, levels))
+    ok2 = np.concatenate((found_l, found_r)) & (y[b] != y[a])
+    # start from the straight-line crossing, then Newton on the spline (bracketed in [v_a, v_b])
+    dy = np.where(y[b] != y[a], y[b] - y[a], 1.0)
+    x = v[a] + (lv - y[a]) / dy * (v[b] - v[a])
+    lo, hi = np.minimum(v[a], v[b]), np.maximum(v[a], v[b])
+    for _ in range(8):
         d1 = spline(x, 1)
-        ok &= d1 != 0
-        d1 = np.where(d1 != 0, d1, 1.0)
-        vel += 0.5 * x
-        sens += 0.5 * (-basis(x) / d1[:, None])
-        dlevel += 0.5 / d1
+        step = np.where(d1 != 0, (spline(x) - lv) / np.where(d1 != 0, d1, 1.0), 0.0)
+        x = np.clip(x - step, lo, hi)
+    d1 = spline(x, 1)
+    ok2 &= d1 != 0
+    d1 = np.where(d1 != 0, d1, 1.0)
+    bx = basis(x)
+    ok = np.ones(k, dtype=bool) & ok2[:k] & ok2[k:]
+    vel = np.zeros(k) + 0.5 * x[:k] + 0.5 * x[k:]
+    sens = np.zeros((k, v.size)) + 0.5 * (-bx[:k] / d1[:k, None]) + 0.5 * (-bx[k:] / d1[k:, None])
+    dlevel = np.zeros(k) + 0.5 / d1[:k] + 0.5 / d1[k:]
     vel[~ok] = np.nan
     return vel, sens, dlevel
 

@@ -60,27 +60,24 @@ def line_moments(data: CorrelationData, mu: float, sigma: float, gain_mu: np.nda
     # the Gaussian fit's own design (c0, amp, mu, sigma): a line's width does not leak into its centre
     X = np.column_stack((np.ones_like(v), g, g * z / sigma, g * z * z / sigma))
     P = X @ np.linalg.inv(X.T @ X)          # (m, 4): least-squares coefficients = c @ P
-    idx, b, e, a = [], [], [], []
-    den = data.denominator
-    for t in data.terms:
-        if t.line_num is None:
-            raise ValueError("line_moments needs a correlation made with keep_lines=True")
-        with np.errstate(invalid="ignore", divide="ignore"):
-            c = t.line_num / t.line_den
-        ok = np.all(np.isfinite(c) & (t.line_den > 0), axis=1)
-        coef = np.where(ok[:, None], c, 0.0) @ P
-        idx.append(t.lines[ok])
-        b.append(coef[ok, 1])
-        e.append(coef[ok, 2])
-        slope = np.gradient(t.line_num, v, axis=1) * t.weights[:, None] / den
-        a.append(-(slope @ gain_mu)[ok])
-    if not idx:
+    if not data.terms:
         return LineMoments(np.zeros(0, dtype=np.intp), np.zeros(0), np.zeros(0), np.zeros(0), float(sigma),
                            data.n_cleared)
-    lines = np.concatenate(idx)
+    if any(t.line_num is None for t in data.terms):
+        raise ValueError("line_moments needs a correlation made with keep_lines=True")
+    # every line of every order at once (the same arithmetic per line as one order at a time)
+    num = np.concatenate([t.line_num for t in data.terms])
+    den_l = np.concatenate([t.line_den for t in data.terms])
+    with np.errstate(invalid="ignore", divide="ignore"):
+        c = num / den_l
+    ok = np.all(np.isfinite(c) & (den_l > 0), axis=1)
+    coef = np.where(ok[:, None], c, 0.0) @ P
+    weights = np.concatenate([t.weights for t in data.terms])
+    slope = np.gradient(num, v, axis=1) * weights[:, None] / data.denominator
+    lines = np.concatenate([t.lines for t in data.terms])[ok]
     u, inv = np.unique(lines, return_inverse=True)
-    return LineMoments(u, np.bincount(inv, np.concatenate(b), u.size), np.bincount(inv, np.concatenate(e), u.size),
-                       np.bincount(inv, np.concatenate(a), u.size), float(sigma), data.n_cleared)
+    return LineMoments(u, np.bincount(inv, coef[ok, 1], u.size), np.bincount(inv, coef[ok, 2], u.size),
+                       np.bincount(inv, -(slope @ gain_mu)[ok], u.size), float(sigma), data.n_cleared)
 
 
 def batch_offsets(moments: list[LineMoments], n_lines: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
