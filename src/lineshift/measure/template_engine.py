@@ -300,7 +300,7 @@ def measure_template(orders: list[PreparedOrder], state: TemplateState, settings
             continue
         by_len.setdefault(o.flux.size, []).append(o)
     residuals = {}
-    for block in by_len.values():
+    for block in _chunks(by_len.values()):
         fits, bins = _fit_block(block, coef, var_t, ok_t, state, settings, delta0)
         for o, (v, e, chi2), b in zip(block, fits, bins, strict=True):
             if np.isfinite(v):
@@ -330,6 +330,21 @@ def measure_template(orders: list[PreparedOrder], state: TemplateState, settings
     snr = float(np.median(np.concatenate([o.flux[o.good][::4] / np.sqrt(o.var[o.good][::4]) for o in orders])))
     return TemplateResult(rv, float(1 / np.sqrt(np.sum(w))), snr, int(keep.sum()), tuple(rows), chi2_orders,
                           residuals)
+
+
+#: Pixels per block of orders fitted at once: the fit's temporaries then stay below the size (128 KB)
+#: from which the C allocator maps every new array afresh from the system, whose page faults cost more
+#: than the arithmetic on them (measured: the B-spline evaluation of 36 orders x 4096 pixels 5x faster
+#: in blocks of 4 orders); the orders of a block are independent, so the blocks change nothing else.
+BLOCK_PIXELS = 16384
+
+
+def _chunks(blocks):
+    """Orders of equal length (``blocks``: lists of them) in lists of at most :data:`BLOCK_PIXELS` pixels."""
+    for block in blocks:
+        rows = max(BLOCK_PIXELS // block[0].flux.size, 1)
+        for start in range(0, len(block), rows):
+            yield block[start:start + rows]
 
 
 def _fit_block(block: list[PreparedOrder], coef, var_t, ok_t, state: TemplateState, settings: TemplateSettings,
