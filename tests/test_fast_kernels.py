@@ -131,3 +131,23 @@ def test_template_run_with_kept_spectra_equals_reading_each_time(sample_set, mon
     for a, b in zip(kept, read, strict=True):
         assert {k: v for k, v in a.items() if k != "_span"} == {k: v for k, v in b.items() if k != "_span"}
     assert reuse._KEPT is None                               # dropped at the end of the batch
+
+
+def test_template_run_with_kept_contributions_equals_recomputing_them(sample_set, monkeypatch):
+    # the co-add keeps each input's screening and contribution for its leave-one-out fit; recomputed
+    # (nothing kept) they are the same numbers, so every row is the same
+    import os
+
+    from lineshift.io.linelists import read_mask
+    from lineshift.measure import template_engine
+    from lineshift.run.pipeline import MeasureSettings, measure_files
+
+    directory, mask, rows = sample_set
+    paths = [os.path.join(directory, r["file"]) for r in rows if r["layout"] == "multi-order"]
+    settings = MeasureSettings(method="template", telluric_bands=False)
+    kept = measure_files(paths, read_mask(mask), settings, workers=1)
+    monkeypatch.setattr(template_engine, "KEEP_BYTES", 0)
+    recomputed = measure_files(paths, read_mask(mask), settings, workers=1)
+    assert [r["status"] for r in kept] == ["ok"] * len(paths)
+    for a, b in zip(kept, recomputed, strict=True):
+        assert {k: v for k, v in a.items() if k != "_span"} == {k: v for k, v in b.items() if k != "_span"}

@@ -34,7 +34,7 @@ Fit
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 from scipy.ndimage import gaussian_filter1d, spline_filter1d
@@ -53,6 +53,10 @@ from lineshift.measure.tellurics import drop_bands
 from lineshift.model import C_MS
 
 __all__ = ["TemplateSettings", "TemplateState", "measure_template", "template_smoothing"]
+
+
+#: Upper bound of the memory a template keeps of its inputs for their fits (:meth:`TemplateState.keep`), bytes.
+KEEP_BYTES = 256 * 2**20
 
 
 @dataclass(frozen=True)
@@ -184,13 +188,49 @@ class TemplateState:
             self.__dict__["_acc"] = acc
         return acc
 
-    def without(self, orders: list[PreparedOrder], factor: float | None, band_factor: float = 1.0):
+    def keep(self, key, factor: float, band_factor: float, goods: list, contributions: list) -> None:
+        """Keep, for the fit of the spectrum ``key`` (e.g. its path) that was co-added with ``factor``
+        and ``band_factor``, what the co-add computed of it: per order the screened good-pixel mask
+        (None where screening left the order as it was) and its contribution (as
+        :meth:`.coadd.TemplateAccumulator.contribution_list`), so :func:`measure_template` called with
+        the same ``key`` neither screens it again nor recomputes its contribution.  In this process
+        only (not pickled), within :data:`KEEP_BYTES`; beyond that the fit recomputes both."""
+        size = sum(a.nbytes for c in contributions if c is not None for a in c[2:])
+        used = self.__dict__.get("_kept_bytes", 0)
+        if used + size > KEEP_BYTES:
+            return
+        self.__dict__["_kept_bytes"] = used + size
+        self.__dict__.setdefault("_kept", {})[key] = (factor, band_factor, goods, contributions)
+
+    def kept(self, key, factor: float | None, band_factor: float):
+        """(goods, contributions) kept by :meth:`keep` for ``key`` with these factors, or None."""
+        entry = self.__dict__.get("_kept", {}).get(key) if key is not None else None
+        if entry is None or entry[0] != factor or entry[1] != band_factor:
+            return None
+        return entry[2], entry[3]
+
+    def forget(self) -> None:
+        """Drop what :meth:`keep` kept."""
+        self.__dict__.pop("_kept", None)
+        self.__dict__.pop("_kept_bytes", None)
+
+    def __getstate__(self):
+        return {k: v for k, v in self.__dict__.items() if k not in ("_kept", "_kept_bytes")}
+
+    def without(self, orders: list[PreparedOrder], factor: float | None, band_factor: float = 1.0,
+                contributions: list | None = None):
         """Template flux and variance (laid out as the segments) with this spectrum's own contribution
-        removed, and which points are usable (``band_factor`` as it was added with)."""
+        removed, and which points are usable (``band_factor`` as it was added with).  ``contributions``:
+        the spectrum's contributions as it was co-added, when kept (else they are recomputed)."""
         sw, swf, sw2v = self.sw, self.swf, self.sw2v
         if factor is not None:
             sw, swf, sw2v = sw.copy(), swf.copy(), sw2v.copy()
-            for index, sl, w, wf, w2v, _ in self._grid().contributions(orders, factor, band_factor):
+            if contributions is None:
+                contributions = self._grid().contribution_list(orders, factor, band_factor)
+            for c in contributions:
+                if c is None:
+                    continue
+                index, sl, w, wf, w2v, _ = c
                 seg = self.segment(index)
                 if seg is None:
                     continue
@@ -273,19 +313,26 @@ class TemplateResult:
 
 def measure_template(orders: list[PreparedOrder], state: TemplateState, settings: TemplateSettings, *,
                      delta0: float, factor: float | None, berv: float = 0.0, path: str | None = None,
-                     band_factor: float = 1.0) -> TemplateResult:
+                     band_factor: float = 1.0, key=None) -> TemplateResult:
     """Topocentric velocity (relative to the template's frame) of one prepared spectrum.
 
     ``delta0`` is the starting ln(1 + rv_topo/c); ``factor`` the co-adding factor this spectrum
     entered the template with (None when it is not part of it: nothing is subtracted);
     ``band_factor`` file-frame / observatory-frame wavelength, placing the telluric bands (1 unless
-    the file is barycentric).
+    the file is barycentric); ``key`` the name the co-add kept this spectrum's screening and
+    contribution under (:meth:`TemplateState.keep`), if any.
     """
     if not orders:
         raise MeasurementError("no usable order (too few valid pixels)", path=path, status="no valid pixels")
+    kept = state.kept(key, factor, band_factor)
     orders = on_common_continuum(orders, state.continua)
-    orders = state.screened(orders, factor if factor is not None else float(np.exp(-delta0)))
-    flux_t, var_t, ok_t = state.smoothed(*state.without(orders, factor, band_factor))
+    if kept is None:
+        orders = state.screened(orders, factor if factor is not None else float(np.exp(-delta0)))
+        own = None
+    else:   # as the co-add screened and added it
+        goods, own = kept
+        orders = [o if g is None else replace(o, good=g) for o, g in zip(orders, goods, strict=True)]
+    flux_t, var_t, ok_t = state.smoothed(*state.without(orders, factor, band_factor, own))
     # this spectrum's telluric pixels (listed bands and lines found in the batch), in its own frame
     orders = [drop_bands(o, state.bands * band_factor) for o in orders]
     coef = state.prefilter(flux_t)
