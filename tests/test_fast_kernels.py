@@ -151,3 +151,40 @@ def test_template_run_with_kept_contributions_equals_recomputing_them(sample_set
     assert [r["status"] for r in kept] == ["ok"] * len(paths)
     for a, b in zip(kept, recomputed, strict=True):
         assert {k: v for k, v in a.items() if k != "_span"} == {k: v for k, v in b.items() if k != "_span"}
+
+
+def test_template_fit_by_moments_equals_the_jacobian_form(monkeypatch):
+    # the fit's normal equations from moment sums against the plain form that builds the Jacobian:
+    # the same least-squares problem, so velocities agree far below their errors
+    from lineshift import sim
+    from lineshift.measure import template_engine as te
+    from lineshift.measure.coadd import TemplateAccumulator, log_grid
+    from lineshift.measure.prepare import prepare_spectrum
+    from lineshift.model import C_MS
+
+    ins = sim.Instrument("fk-echelle", "multi-order", 110_000, 6, 2048, 5000.0, snr=120)
+    rng = np.random.default_rng(11)
+    exps = [sim.observe(sim.DEMO_STAR, ins, sim.DEMO_SITE, 61000.8, rng, rv_override=sim.DEMO_STAR.gamma
+                        + rng.uniform(-3000, 3000), berv_bjd=(rng.uniform(-20000, 20000), 0.0)) for _ in range(4)]
+    prepared = [prepare_spectrum(sim.to_spectrum(e)) for e in exps]
+    factors = [(1 + e.truth["berv"] / C_MS) / (1 + e.truth["rv_true"] / C_MS) for e in exps]
+    w = ins.wavelengths()
+    acc = TemplateAccumulator(log_grid(w.min() * 0.99, w.max() * 1.01, ins.pixel_velocity / 2), per_order=True,
+                              levelled=True)
+    for p, f in zip(prepared, factors, strict=True):
+        acc.add(p, f)
+    state = te.TemplateState.from_accumulator(acc, 300.0)
+    settings = te.TemplateSettings()
+    start = -np.log(factors[0]) + 2e-8     # 6 m/s off: the iterations have work to do
+    fast = te.measure_template(prepared[0], state, settings, delta0=start, factor=factors[0])
+    monkeypatch.setattr(te, "_fit_block", te._fit_block_reference)
+    plain = te.measure_template(prepared[0], state, settings, delta0=start, factor=factors[0])
+    assert abs(fast.rv - plain.rv) < 1e-6 * plain.rv_err
+    assert fast.rv_err == pytest.approx(plain.rv_err, rel=1e-9)
+    for a, b in zip(fast.orders, plain.orders, strict=True):
+        assert a["flag"] == b["flag"]
+        assert abs(a["rv"] - b["rv"]) < 1e-6 * b["rv_err"]
+        assert a["chi2_red"] == pytest.approx(b["chi2_red"], rel=1e-9)
+    for k, bins in plain.residuals.items():
+        for x, y in zip(fast.residuals[k], bins, strict=True):
+            np.testing.assert_allclose(x, y, rtol=1e-6, atol=1e-9)   # relative residuals are ~1e-2

@@ -35,6 +35,7 @@ Fit
 from __future__ import annotations
 
 from dataclasses import dataclass, field, replace
+from functools import lru_cache
 
 import numpy as np
 from scipy.ndimage import gaussian_filter1d, spline_filter1d
@@ -347,8 +348,9 @@ def measure_template(orders: list[PreparedOrder], state: TemplateState, settings
             continue
         by_len.setdefault(o.flux.size, []).append(o)
     residuals = {}
+    pair = (ok_t[:-1] & ok_t[1:], np.diff(var_t))
     for block in _chunks(by_len.values()):
-        fits, bins = _fit_block(block, coef, var_t, ok_t, state, settings, delta0)
+        fits, bins = _fit_block(block, coef, var_t, ok_t, state, settings, delta0, pair)
         for o, (v, e, chi2), b in zip(block, fits, bins, strict=True):
             if np.isfinite(v):
                 residuals[int(o.index)] = b
@@ -394,13 +396,110 @@ def _chunks(blocks):
             yield block[start:start + rows]
 
 
+@lru_cache(maxsize=16)
+def _powers(n: int, deg: int) -> np.ndarray:
+    """``x^j`` for j = 0..deg at n points x evenly spaced over -1..1, as columns (read-only)."""
+    x = np.linspace(-1.0, 1.0, n)
+    out = np.stack([x ** j for j in range(deg + 1)], axis=1)
+    out.flags.writeable = False
+    return out
+
+
 def _fit_block(block: list[PreparedOrder], coef, var_t, ok_t, state: TemplateState, settings: TemplateSettings,
-               delta0: float):
+               delta0: float, pair=None):
     """Gauss-Newton for (delta, c0..c_deg) of several orders of equal length at once.
 
     Returns per order (rv_topo, rv_err, reduced chi-square), NaN where the fit is impossible, and
     per order its binned relative residuals (:func:`.response.bin_residuals`).
+
+    The model is ``P(x) T``, so its derivatives are ``g = -P dT`` (the shift) and ``x^j T`` (the
+    polynomial): the normal equations need only the moments ``sum w T^2 x^m`` (m up to twice the
+    degree), ``sum w T g x^j``, ``sum w g^2`` and the like with the residual, each a matrix product
+    with the powers of x; the B-spline is evaluated in place (its interval and fraction serve the
+    template's usable points and variances too).  :func:`_fit_block_reference` builds the Jacobian
+    instead: the same sums in another order.  ``pair``: (usable and the next point usable, variance
+    step to the next point) of the template, when the caller has them for several blocks.
     """
+    if pair is None:
+        pair = (ok_t[:-1] & ok_t[1:], np.diff(var_t))
+    ok2, dvar = pair
+    seg = np.array([state.segment(o.index) for o in block], dtype=float)   # (k, 3): start, offset, length
+    base = (seg[:, 1] - seg[:, 0])[:, None]          # grid index -> index in the segment arrays
+    lo_i, hi_i = seg[:, 1:2] + 2, seg[:, 1:2] + seg[:, 2:3] - 3
+    wave = np.vstack([o.wave for o in block])
+    flux = np.vstack([o.flux for o in block])
+    var = np.vstack([o.var for o in block])
+    use = np.vstack([o.good for o in block])
+    k, n = flux.shape
+    use[:, : settings.edge_pixels] = False
+    use[:, n - settings.edge_pixels:] = False
+    xi0 = (np.log(wave) - state.lng0) / state.dlng + base   # template index at delta = 0
+    deg = settings.poly_degree
+    npar = deg + 2
+    pw = _powers(n, 2 * deg)                                      # (n, 2 deg + 1): 1, x, x^2, ...
+    powers = pw[:, :deg + 1]
+    moment = np.add.outer(np.arange(deg + 1), np.arange(deg + 1))  # x^i x^j = x^(i+j)
+    p = np.zeros((k, npar))
+    p[:, 0] = delta0
+    p[:, 1] = 1.0
+    alive = np.ones(k, dtype=bool)
+    A = np.empty((k, npar, npar))
+    b = np.empty((k, npar))
+    for _ in range(settings.iterations):
+        xi = xi0 - p[:, 0:1] / state.dlng
+        inside = (xi > lo_i) & (xi < hi_i)
+        xi = np.clip(xi, lo_i, hi_i)
+        i0 = xi.astype(np.intp)                      # xi >= 2: truncation is the floor
+        fr = xi - i0
+        # the cubic B-spline and its derivatives per grid step (as coadd.bspline)
+        c0, c1, c2, c3 = coef[i0 - 1], coef[i0], coef[i0 + 1], coef[i0 + 2]
+        q1 = (c2 - c0) / 2.0
+        q2 = (c0 - 2.0 * c1 + c2) / 2.0
+        q3 = (3.0 * (c1 - c2) + c3 - c0) / 6.0
+        T = (c0 + 4.0 * c1 + c2) / 6.0 + fr * (q1 + fr * (q2 + fr * q3))
+        dT = q1 + fr * (2 * q2 + 3 * fr * q3)       # per grid step
+        d2T = 2 * q2 + 6 * fr * q3
+        m = use & inside & ok2[i0]
+        poly = p[:, 1:] @ powers.T
+        w = np.where(m, 1.0 / (var + poly * poly * (var_t[i0] + fr * dvar[i0])), 0.0)
+        r = np.where(m, flux - poly * T, 0.0)
+        g = poly * dT * (-1.0 / state.dlng)                    # d model / d delta
+        wT, wr = w * T, w * r
+        A[:, 1:, 1:] = ((wT * T) @ pw)[:, moment]
+        A[:, 0, 1:] = (wT * g) @ powers
+        A[:, 1:, 0] = A[:, 0, 1:]
+        A[:, 0, 0] = np.einsum("ij,ij->i", w * g, g)
+        b[:, 0] = np.einsum("ij,ij->i", wr, g)
+        b[:, 1:] = (wr * T) @ powers
+        info = A.copy()                              # expected information, for the errors
+        # Newton in delta: the residual x curvature term Gauss-Newton leaves out (a noisy template has
+        # a large curvature; without it the iteration converges only linearly)
+        A[:, 0, 0] -= np.einsum("ij,ij->i", wr * poly, d2T) / state.dlng**2
+        A[:, 0, 0] = np.where(A[:, 0, 0] > 0.1 * info[:, 0, 0], A[:, 0, 0], info[:, 0, 0])
+        used = np.count_nonzero(m, axis=1)
+        alive &= used >= 20
+        A[~alive] = np.eye(npar)
+        b[~alive] = 0.0
+        dp = np.linalg.solve(A, b[..., None])[..., 0]
+        p += dp
+        chi2 = np.einsum("ij,ij->i", wr, r) / np.maximum(used - npar, 1)
+        # Newton converges quadratically: after a step below 1e-9 (0.3 m/s) what remains is ~1e-11
+        # (3 mm/s), so stop there
+        if np.all(np.abs(dp[:, 0]) < 1e-9):
+            break
+    info[~alive] = np.eye(npar)
+    cov = np.linalg.inv(info)
+    v = C_MS * np.expm1(p[:, 0])
+    e = C_MS * np.exp(p[:, 0]) * np.sqrt(np.abs(cov[:, 0, 0]))
+    bad = ~alive | ~np.isfinite(p).all(axis=1)
+    bins = bin_residuals(wave, r, poly * T, w, g)
+    return [(np.nan, np.nan, np.nan) if bad[j] else (v[j], e[j], chi2[j]) for j in range(k)], bins
+
+
+def _fit_block_reference(block: list[PreparedOrder], coef, var_t, ok_t, state: TemplateState,
+                         settings: TemplateSettings, delta0: float, pair=None):
+    """Plain form of :func:`_fit_block`: the Jacobian built column by column, normal equations by a
+    batched product with it."""
     seg = np.array([state.segment(o.index) for o in block], dtype=float)   # (k, 3): start, offset, length
     base = (seg[:, 1] - seg[:, 0])[:, None]          # grid index -> index in the segment arrays
     lo_i, hi_i = seg[:, 1:2] + 2, seg[:, 1:2] + seg[:, 2:3] - 3
