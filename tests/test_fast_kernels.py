@@ -188,3 +188,17 @@ def test_template_fit_by_moments_equals_the_jacobian_form(monkeypatch):
     for k, bins in plain.residuals.items():
         for x, y in zip(fast.residuals[k], bins, strict=True):
             np.testing.assert_allclose(x, y, rtol=1e-6, atol=1e-9)   # relative residuals are ~1e-2
+
+
+def test_bspline_value_equals_the_plain_form():
+    # the value alone, its power-basis coefficients formed per interval, against the plain gather and
+    # 4x4 basis product (coadd.bspline_reference), ends included (clipped intervals extrapolate)
+    from scipy.ndimage import spline_filter1d
+
+    from lineshift.measure.coadd import bspline, bspline_reference, bspline_value
+
+    rng = np.random.default_rng(12)
+    coef = spline_filter1d(rng.normal(size=300), order=3, mode="mirror")
+    x = np.concatenate([rng.uniform(0.0, 299.0, 4000), [0.0, 0.5, 298.5, 299.0]])
+    np.testing.assert_allclose(bspline_value(coef, x), bspline_reference(coef, x)[0], rtol=1e-12, atol=1e-12)
+    np.testing.assert_array_equal(bspline_value(coef, x), bspline(coef, x)[0])

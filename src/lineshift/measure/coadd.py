@@ -32,8 +32,8 @@ from scipy.ndimage import spline_filter1d
 from lineshift.measure.prepare import PreparedOrder
 from lineshift.model import C_MS
 
-__all__ = ["Template", "TemplateAccumulator", "bspline", "bspline_reference", "log_grid", "on_common_continuum",
-           "reference_coefficients", "reject_above"]
+__all__ = ["Template", "TemplateAccumulator", "bspline", "bspline_reference", "bspline_value", "log_grid",
+           "on_common_continuum", "pixel_steps", "reference_coefficients", "reject_above"]
 
 _BAD_REACH = 4  # pixels around a bad one that the spline prefilter's tail reaches (decays 0.27x per pixel)
 
@@ -65,6 +65,21 @@ def bspline(coef: np.ndarray, x: np.ndarray, *, second: bool = False):
     if second:
         return value, deriv, 2 * q2 + 6 * t * q3
     return value, deriv
+
+
+def bspline_value(coef: np.ndarray, x: np.ndarray) -> np.ndarray:
+    """The value of :func:`bspline` alone (no derivative), the same numbers: the power-basis
+    coefficients are formed once per interval of ``coef`` and gathered (cheaper where there are
+    more points than intervals)."""
+    c0, c1, c2, c3 = coef[:-3], coef[1:-2], coef[2:-1], coef[3:]    # interval i - 1 holds c[i-1..i+2]
+    q0 = (c0 + 4.0 * c1 + c2) / 6.0
+    q1 = (c2 - c0) / 2.0
+    q2 = (c0 - 2.0 * c1 + c2) / 2.0
+    q3 = (3.0 * (c1 - c2) + c3 - c0) / 6.0
+    i = np.clip(np.floor(x).astype(np.intp), 1, coef.size - 3)
+    t = x - i
+    k = i - 1
+    return q0[k] + t * (q1[k] + t * (q2[k] + t * q3[k]))
 
 
 def bspline_reference(coef: np.ndarray, x: np.ndarray):
@@ -274,13 +289,16 @@ class TemplateAccumulator:
             idx = np.arange(good.size)
             filled = np.interp(idx, idx[good], o.flux[good])
             reach = np.convolve(~good, np.ones(2 * _BAD_REACH + 1), mode="same") > 0
+            clean = good & ~reach
+            ok = (clean[:-1] & clean[1:])[j]    # both pixels around the point good and out of reach
         else:
-            filled, reach = o.flux, np.zeros(good.size, dtype=bool)
+            filled, ok = o.flux, None
         coef = spline_filter1d(filled, order=3, mode="mirror")
-        f, _ = bspline(coef, fidx)
-        ok = good[j] & good[j + 1] & ~reach[j] & ~reach[j + 1]
+        f = bspline_value(coef, fidx)
         v = (1 - t) * o.var[j] + t * o.var[j + 1]   # per-pixel noise level here (see Template)
-        w = np.where(ok, (1 - t) * o.weight[j] + t * o.weight[j + 1], 0.0)
+        w = (1 - t) * o.weight[j] + t * o.weight[j + 1]
+        if ok is not None:
+            w = np.where(ok, w, 0.0)
         if self.levelled:   # on a common level: f / L, var / L^2, weight * L^2
             level = float(np.median(o.flux[good])) if good.any() else 1.0
             if np.isfinite(level) and level > 0:
@@ -293,8 +311,13 @@ class TemplateAccumulator:
                 for lo, hi in near:
                     inband |= (lam_obs >= lo) & (lam_obs <= hi)
                 w = np.where(inband, 0.0, w)
-        near_edge = (j < self.edge_margin) | (j > o.flux.size - 2 - self.edge_margin)
-        return o.index, slice(i0, i1), w, w * f, w * w * v, near_edge if self.levelled else near_edge | ~ok
+        # j never decreases along the grid: the points near an order edge are a prefix and a suffix
+        near_edge = np.ones(pts.size, dtype=bool)
+        near_edge[np.searchsorted(j, self.edge_margin):np.searchsorted(j, o.flux.size - 2 - self.edge_margin,
+                                                                         side="right")] = False
+        if not self.levelled and ok is not None:
+            near_edge |= ~ok
+        return o.index, slice(i0, i1), w, w * f, w * w * v, near_edge
 
     def add(self, orders: list[PreparedOrder], factor: float, band_factor: float = 1.0, *,
             contributions: list | None = None) -> None:
