@@ -202,3 +202,35 @@ def test_bspline_value_equals_the_plain_form():
     x = np.concatenate([rng.uniform(0.0, 299.0, 4000), [0.0, 0.5, 298.5, 299.0]])
     np.testing.assert_allclose(bspline_value(coef, x), bspline_reference(coef, x)[0], rtol=1e-12, atol=1e-12)
     np.testing.assert_array_equal(bspline_value(coef, x), bspline(coef, x)[0])
+
+
+@pytest.mark.parametrize("smooth", [0.0, 400.0])
+def test_template_fit_arrays_equal_the_three_steps(smooth):
+    # one segment at a time, the template without a spectrum, smoothed and prefiltered: the same
+    # numbers as without(), smoothed() and prefilter() over the whole template
+    from lineshift import sim
+    from lineshift.measure import template_engine as te
+    from lineshift.measure.coadd import TemplateAccumulator, log_grid
+    from lineshift.measure.prepare import prepare_spectrum
+    from lineshift.model import C_MS
+
+    ins = sim.Instrument("fk-echelle", "multi-order", 110_000, 4, 1024, 5000.0, snr=80)
+    rng = np.random.default_rng(13)
+    exps = [sim.observe(sim.DEMO_STAR, ins, sim.DEMO_SITE, 61000.8, rng, rv_override=sim.DEMO_STAR.gamma,
+                        berv_bjd=(rng.uniform(-20000, 20000), 0.0)) for _ in range(3)]
+    prepared = [prepare_spectrum(sim.to_spectrum(e)) for e in exps]
+    factors = [(1 + e.truth["berv"] / C_MS) / (1 + e.truth["rv_true"] / C_MS) for e in exps]
+    w = ins.wavelengths()
+    acc = TemplateAccumulator(log_grid(w.min() * 0.99, w.max() * 1.01, ins.pixel_velocity / 2), per_order=True,
+                              levelled=True)
+    for p, f in zip(prepared, factors, strict=True):
+        acc.add(p, f)
+    state = te.TemplateState.from_accumulator(acc, smooth)
+    state.pixel_step = ins.pixel_velocity
+    for factor in (factors[0], None):
+        flux, var, ok = state.smoothed(*state.without(prepared[0], factor))
+        ok = ok & np.isfinite(var)
+        coef, var_t, ok_t = state.fit_arrays(prepared[0], factor)
+        np.testing.assert_array_equal(ok_t, ok)
+        np.testing.assert_array_equal(var_t, np.where(ok, var, 0.0))
+        np.testing.assert_array_equal(coef, state.prefilter(flux))

@@ -274,6 +274,60 @@ class TemplateState:
             ok[sl] = good
         return flux, var, ok
 
+    def fit_arrays(self, orders: list[PreparedOrder], factor: float | None, band_factor: float = 1.0,
+                   contributions: list | None = None):
+        """What :func:`measure_template` fits against: (B-spline coefficients, variance, usable) of the
+        template without this spectrum (:meth:`without`), smoothed (:meth:`smoothed`), prefiltered
+        (:meth:`prefilter`), with the variance 0 where it is not usable.  The same numbers as those
+        three in turn, computed one segment at a time (no temporaries of the whole template)."""
+        own: dict[int, list] = {}     # segment offset -> this spectrum's contributions to it
+        if factor is not None:
+            if contributions is None:
+                contributions = self._grid().contribution_list(orders, factor, band_factor)
+            for c in contributions:
+                if c is None or self.segment(c[0]) is None:
+                    continue
+                start, off, n = self.segment(c[0])
+                sl = c[1]
+                lo, hi = max(sl.start, start), min(sl.stop, start + n)
+                if hi > lo:
+                    own.setdefault(off, []).append((slice(lo - start, hi - start),
+                                                    slice(lo - sl.start, hi - sl.start), *c[2:5]))
+        floor = self.__dict__.get("_sw_floor")
+        if floor is None:
+            floor = self.__dict__["_sw_floor"] = 1e-12 * np.max(self.sw)
+        sig = self.smooth / (C_MS * np.expm1(self.dlng))
+        corr = max(self.pixel_step / (C_MS * np.expm1(self.dlng)), 1.0) if self.pixel_step else 1.0
+        coef, var_out, ok_out = np.empty(self.sw.size), np.empty(self.sw.size), np.empty(self.sw.size, dtype=bool)
+        for _, _, off, n in self.segments:
+            sl = slice(off, off + n)
+            sw, swf, sw2v = self.sw[sl], self.swf[sl], self.sw2v[sl]
+            if off in own:
+                sw, swf, sw2v = sw.copy(), swf.copy(), sw2v.copy()
+                for dst, src, w, wf, w2v in own[off]:
+                    sw[dst] -= w[src]
+                    swf[dst] -= wf[src]
+                    sw2v[dst] -= w2v[src]
+            ok = sw > floor
+            flux = np.where(ok, swf / np.where(ok, sw, 1.0), 1.0)
+            var = np.maximum(np.where(ok, sw2v / np.where(ok, sw, 1.0) ** 2, np.inf), 0.0)
+            ok &= ~self.flagged[sl]
+            if sig >= 0.3:   # as smoothed()
+                den = gaussian_filter1d(ok.astype(float), sig, mode="constant")
+                num = gaussian_filter1d(np.where(ok, flux, 0.0), sig, mode="constant")
+                v2 = gaussian_filter1d(np.where(ok, var, 0.0), sig / np.sqrt(2), mode="constant") / (
+                    2 * np.sqrt(np.pi) * sig)
+                good = ok & (den > 0.95)
+                safe = np.where(good, den, 1.0)
+                flux = np.where(good, num / safe, flux)
+                var = np.where(good, np.minimum(corr * v2 / safe**2, var), var)
+                ok = good
+            coef[sl] = spline_filter1d(flux, order=3, mode="mirror")
+            ok &= np.isfinite(var)
+            var_out[sl] = np.where(ok, var, 0.0)
+            ok_out[sl] = ok
+        return coef, var_out, ok_out
+
     def prefilter(self, flux: np.ndarray) -> np.ndarray:
         """Cubic B-spline coefficients of ``flux``, each segment on its own (mirror at its ends)."""
         coef = np.empty_like(flux)
@@ -333,12 +387,9 @@ def measure_template(orders: list[PreparedOrder], state: TemplateState, settings
     else:   # as the co-add screened and added it
         goods, own = kept
         orders = [o if g is None else replace(o, good=g) for o, g in zip(orders, goods, strict=True)]
-    flux_t, var_t, ok_t = state.smoothed(*state.without(orders, factor, band_factor, own))
+    coef, var_t, ok_t = state.fit_arrays(orders, factor, band_factor, own)
     # this spectrum's telluric pixels (listed bands and lines found in the batch), in its own frame
     orders = [drop_bands(o, state.bands * band_factor) for o in orders]
-    coef = state.prefilter(flux_t)
-    ok_t = ok_t & np.isfinite(var_t)
-    var_t = np.where(ok_t, var_t, 0.0)
     rows = []
     by_len: dict[int, list[PreparedOrder]] = {}
     for o in orders:
