@@ -53,12 +53,13 @@ def bin_residuals(wave: np.ndarray, resid: np.ndarray, model: np.ndarray, weight
     pad = nb * width - n
 
     def binned(a):
-        return np.pad(a, ((0, 0), (0, pad))).reshape(k, nb, width).sum(axis=2)
+        return (np.pad(a, ((0, 0), (0, pad))) if pad else a).reshape(a.shape[0], nb, width).sum(axis=2)
 
     wm = weight * model
     num, den = binned(wm * resid), binned(wm * model)
-    cnt = binned(np.ones((1, n)) + np.zeros((k, 1)))
-    x = binned(np.broadcast_to(np.arange(n, dtype=float), (k, n))) / cnt
+    cnt = binned(np.ones((1, n)))          # the same for every row
+    x = np.broadcast_to(binned(np.arange(n, dtype=float)[None, :]) / cnt, (k, nb))
+    cnt = np.broadcast_to(cnt, (k, nb))
     u = binned(np.log(wave)) / np.maximum(cnt, 1)
     rho = np.where(den > 0, num / np.where(den > 0, den, 1.0), 0.0)
     if deriv is None:
