@@ -33,7 +33,7 @@ from lineshift.measure.prepare import PreparedOrder
 from lineshift.model import C_MS
 
 __all__ = ["Template", "TemplateAccumulator", "bspline", "bspline_reference", "bspline_value", "log_grid",
-           "on_common_continuum", "pixel_steps", "reference_coefficients", "reject_above"]
+           "on_common_continuum", "pixel_steps", "reference_coefficients", "reject_above", "value_tables"]
 
 _BAD_REACH = 4  # pixels around a bad one that the spline prefilter's tail reaches (decays 0.27x per pixel)
 
@@ -67,15 +67,19 @@ def bspline(coef: np.ndarray, x: np.ndarray, *, second: bool = False):
     return value, deriv
 
 
-def bspline_value(coef: np.ndarray, x: np.ndarray) -> np.ndarray:
+def value_tables(coef: np.ndarray) -> tuple[np.ndarray, ...]:
+    """The power-basis coefficients of :func:`bspline` per interval of ``coef`` (interval i - 1 holds
+    the cubic between points i and i + 1), for :func:`bspline_value`."""
+    c0, c1, c2, c3 = coef[:-3], coef[1:-2], coef[2:-1], coef[3:]
+    return ((c0 + 4.0 * c1 + c2) / 6.0, (c2 - c0) / 2.0, (c0 - 2.0 * c1 + c2) / 2.0,
+            (3.0 * (c1 - c2) + c3 - c0) / 6.0)
+
+
+def bspline_value(coef: np.ndarray, x: np.ndarray, tables: tuple | None = None) -> np.ndarray:
     """The value of :func:`bspline` alone (no derivative), the same numbers: the power-basis
-    coefficients are formed once per interval of ``coef`` and gathered (cheaper where there are
-    more points than intervals)."""
-    c0, c1, c2, c3 = coef[:-3], coef[1:-2], coef[2:-1], coef[3:]    # interval i - 1 holds c[i-1..i+2]
-    q0 = (c0 + 4.0 * c1 + c2) / 6.0
-    q1 = (c2 - c0) / 2.0
-    q2 = (c0 - 2.0 * c1 + c2) / 2.0
-    q3 = (3.0 * (c1 - c2) + c3 - c0) / 6.0
+    coefficients are formed once per interval of ``coef`` (or given: :func:`value_tables`) and
+    gathered, which is cheaper where there are more points than intervals or many evaluations."""
+    q0, q1, q2, q3 = value_tables(coef) if tables is None else tables
     i = np.clip(np.floor(x).astype(np.intp), 1, coef.size - 3)
     t = x - i
     k = i - 1
@@ -358,7 +362,7 @@ class TemplateAccumulator:
 
 def reject_above(orders: list[PreparedOrder], ref: np.ndarray, segments: np.ndarray, lng0: float, dlng: float,
                  factor: float, *, nsigma: float = 8.0, half: int = 25, grow: int = 1,
-                 coef: np.ndarray | None = None) -> list[PreparedOrder]:
+                 coef: np.ndarray | None = None, tables: tuple | None = None) -> list[PreparedOrder]:
     """The orders with pixels far ABOVE a reference template marked bad (a cosmic-ray hit the spike
     finder missed, e.g. a double hit wider than its run limit).
 
@@ -374,10 +378,13 @@ def reject_above(orders: list[PreparedOrder], ref: np.ndarray, segments: np.ndar
     Dokkum 2001, PASP 113, 1420) without its run limit: the reference is the star itself, so no real
     feature stands that far above it.
     Deterministic in its inputs, so a fit that removes a spectrum's own contribution recomputes
-    exactly what the co-add used.
+    exactly what the co-add used.  ``coef`` (:func:`reference_coefficients`) and ``tables``
+    (:func:`value_tables` of them) can be given when the same reference serves many spectra.
     """
     if coef is None:
         coef = reference_coefficients(ref, segments)
+    if tables is None:
+        tables = value_tables(coef)
     table = {int(k): (int(a), int(b), int(n)) for k, a, b, n in segments}
     ok_ref = np.isfinite(ref)
     lnf = np.log(factor)
@@ -392,7 +399,7 @@ def reject_above(orders: list[PreparedOrder], ref: np.ndarray, segments: np.ndar
         inside = (xi > 1) & (xi < n - 3)
         xc = np.clip(xi, 1, n - 3) + off
         i0 = np.floor(xc).astype(np.intp)
-        T, _ = bspline(coef, xc)
+        T = bspline_value(coef, xc, tables)
         usable = o.good & inside & ok_ref[i0] & ok_ref[i0 + 1] & (T > 0)
         if usable.sum() >= 2 * half + 1:
             todo.setdefault(o.flux.size, []).append((pos, T, usable))

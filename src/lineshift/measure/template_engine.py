@@ -47,6 +47,7 @@ from lineshift.measure.coadd import (
     on_common_continuum,
     reference_coefficients,
     reject_above,
+    value_tables,
 )
 from lineshift.measure.prepare import PreparedOrder
 from lineshift.measure.response import bin_residuals
@@ -151,7 +152,11 @@ class TemplateState:
         coef = self.__dict__.get("_ref_coef")
         if coef is None:
             coef = self.__dict__["_ref_coef"] = reference_coefficients(self.ref_flux, self.ref_segments)
-        return reject_above(orders, self.ref_flux, self.ref_segments, self.lng0, self.dlng, factor, coef=coef)
+        tables = self.__dict__.get("_ref_tables")
+        if tables is None:
+            tables = self.__dict__["_ref_tables"] = value_tables(coef)
+        return reject_above(orders, self.ref_flux, self.ref_segments, self.lng0, self.dlng, factor, coef=coef,
+                            tables=tables)
 
     def to_arrays(self) -> dict[str, np.ndarray]:
         """Plain arrays (for the results store): the inverse of :meth:`from_arrays`."""
@@ -215,8 +220,8 @@ class TemplateState:
         self.__dict__.pop("_kept", None)
         self.__dict__.pop("_kept_bytes", None)
 
-    def __getstate__(self):
-        return {k: v for k, v in self.__dict__.items() if k not in ("_kept", "_kept_bytes")}
+    def __getstate__(self):   # what it keeps in this process, and what is quicker made again than sent
+        return {k: v for k, v in self.__dict__.items() if k not in ("_kept", "_kept_bytes", "_ref_tables", "_acc")}
 
     def without(self, orders: list[PreparedOrder], factor: float | None, band_factor: float = 1.0,
                 contributions: list | None = None):
