@@ -234,3 +234,43 @@ def test_template_fit_arrays_equal_the_three_steps(smooth):
         np.testing.assert_array_equal(ok_t, ok)
         np.testing.assert_array_equal(var_t, np.where(ok, var, 0.0))
         np.testing.assert_array_equal(coef, state.prefilter(flux))
+
+
+def test_kept_screening_of_a_wide_hit_equals_recomputing_it(tmp_path, monkeypatch):
+    # a 6-pixel double hit (wider than the spike finder's runs) is left out by the co-add's screening;
+    # what the co-add keeps for the fits (the changed order's mask and recomputed contribution, the
+    # unscreened contributions of the others) gives the rows that recomputing everything gives
+    from lineshift import sim
+    from lineshift.measure import coadd, template_engine
+    from lineshift.model import LineMask
+    from lineshift.run.pipeline import MeasureSettings, measure_files
+
+    ins = sim.Instrument("fk-echelle", "multi-order", 110_000, 4, 1024, 5000.0, snr=120)
+    rng = np.random.default_rng(14)
+    paths = []
+    for k in range(4):
+        exp = sim.observe(sim.DEMO_STAR, ins, sim.DEMO_SITE, 61010.8 + 40.0 * k, rng)
+        if k == 1:
+            exp.flux[2, 500:506] *= 4.0
+        paths.append(sim.write_observation(exp, str(tmp_path / f"s{k}.fits")))
+    lam, depth = sim.DEMO_STAR.line_list()
+    w = ins.wavelengths()
+    keep = (depth >= 0.05) & (lam > w.min()) & (lam < w.max())
+    mask = LineMask(lam[keep], depth[keep], (), "test")
+    settings = MeasureSettings(method="template", telluric_bands=False)
+    hits = []
+    screen = coadd.reject_above
+
+    def counted(*args, **kwargs):
+        out = screen(*args, **kwargs)
+        hits.append(sum(a is not b for a, b in zip(args[0], out, strict=True)))
+        return out
+
+    monkeypatch.setattr(template_engine, "reject_above", counted)
+    kept = measure_files(paths, mask, settings, workers=1)
+    assert sum(hits) >= 2                       # the hit's order changed in both passes' co-adds
+    monkeypatch.setattr(template_engine, "KEEP_BYTES", 0)
+    recomputed = measure_files(paths, mask, settings, workers=1)
+    assert [r["status"] for r in kept] == ["ok"] * len(paths)
+    for a, b in zip(kept, recomputed, strict=True):
+        assert {k: v for k, v in a.items() if k != "_span"} == {k: v for k, v in b.items() if k != "_span"}
