@@ -268,3 +268,146 @@ def test_compiled_preparation_equals_the_numpy_form_to_the_last_bit():
             for name in ("flux", "var", "weight", "good", "continuum", "edges"):
                 np.testing.assert_array_equal(getattr(a, name), getattr(b, name), err_msg=name)
     np.testing.assert_array_equal(pixel_edges(np.vstack([wave, wave + 1])), [pixel_edges(wave), pixel_edges(wave + 1)])
+
+
+def test_template_run_with_kept_contributions_equals_recomputing_them(sample_set, monkeypatch):
+    # the co-add keeps each input's screening and contribution for its leave-one-out fit; recomputed
+    # (nothing kept) they are the same numbers, so every row is the same
+    import os
+
+    from lineshift.io.linelists import read_mask
+    from lineshift.measure import template_engine
+    from lineshift.run.pipeline import MeasureSettings, measure_files
+
+    directory, mask, rows = sample_set
+    paths = [os.path.join(directory, r["file"]) for r in rows if r["layout"] == "multi-order"]
+    settings = MeasureSettings(method="template", telluric_bands=False)
+    kept = measure_files(paths, read_mask(mask), settings, workers=1)
+    monkeypatch.setattr(template_engine, "KEEP_BYTES", 0)
+    recomputed = measure_files(paths, read_mask(mask), settings, workers=1)
+    assert [r["status"] for r in kept] == ["ok"] * len(paths)
+    for a, b in zip(kept, recomputed, strict=True):
+        assert {k: v for k, v in a.items() if k != "_span"} == {k: v for k, v in b.items() if k != "_span"}
+
+
+def test_template_fit_by_moments_equals_the_jacobian_form(monkeypatch):
+    # the fit's normal equations from moment sums against the plain form that builds the Jacobian:
+    # the same least-squares problem, so velocities agree far below their errors
+    from lineshift import sim
+    from lineshift.measure import template_engine as te
+    from lineshift.measure.coadd import TemplateAccumulator, log_grid
+    from lineshift.measure.prepare import prepare_spectrum
+    from lineshift.model import C_MS
+
+    ins = sim.Instrument("fk-echelle", "multi-order", 110_000, 6, 2048, 5000.0, snr=120)
+    rng = np.random.default_rng(11)
+    exps = [sim.observe(sim.DEMO_STAR, ins, sim.DEMO_SITE, 61000.8, rng, rv_override=sim.DEMO_STAR.gamma
+                        + rng.uniform(-3000, 3000), berv_bjd=(rng.uniform(-20000, 20000), 0.0)) for _ in range(4)]
+    prepared = [prepare_spectrum(sim.to_spectrum(e)) for e in exps]
+    factors = [(1 + e.truth["berv"] / C_MS) / (1 + e.truth["rv_true"] / C_MS) for e in exps]
+    w = ins.wavelengths()
+    acc = TemplateAccumulator(log_grid(w.min() * 0.99, w.max() * 1.01, ins.pixel_velocity / 2), per_order=True,
+                              levelled=True)
+    for p, f in zip(prepared, factors, strict=True):
+        acc.add(p, f)
+    state = te.TemplateState.from_accumulator(acc, 300.0)
+    settings = te.TemplateSettings()
+    start = -np.log(factors[0]) + 2e-8     # 6 m/s off: the iterations have work to do
+    fast = te.measure_template(prepared[0], state, settings, delta0=start, factor=factors[0])
+    monkeypatch.setattr(te, "_fit_block", te._fit_block_reference)
+    plain = te.measure_template(prepared[0], state, settings, delta0=start, factor=factors[0])
+    assert abs(fast.rv - plain.rv) < 1e-6 * plain.rv_err
+    assert fast.rv_err == pytest.approx(plain.rv_err, rel=1e-9)
+    for a, b in zip(fast.orders, plain.orders, strict=True):
+        assert a["flag"] == b["flag"]
+        assert abs(a["rv"] - b["rv"]) < 1e-6 * b["rv_err"]
+        assert a["chi2_red"] == pytest.approx(b["chi2_red"], rel=1e-9)
+    for k, bins in plain.residuals.items():
+        for x, y in zip(fast.residuals[k], bins, strict=True):
+            np.testing.assert_allclose(x, y, rtol=1e-6, atol=1e-9)   # relative residuals are ~1e-2
+
+
+def test_bspline_value_equals_the_plain_form():
+    # the value alone, its power-basis coefficients formed per interval, against the plain gather and
+    # 4x4 basis product (coadd.bspline_reference), ends included (clipped intervals extrapolate)
+    from scipy.ndimage import spline_filter1d
+
+    from lineshift.measure.coadd import bspline, bspline_reference, bspline_value
+
+    rng = np.random.default_rng(12)
+    coef = spline_filter1d(rng.normal(size=300), order=3, mode="mirror")
+    x = np.concatenate([rng.uniform(0.0, 299.0, 4000), [0.0, 0.5, 298.5, 299.0]])
+    np.testing.assert_allclose(bspline_value(coef, x), bspline_reference(coef, x)[0], rtol=1e-12, atol=1e-12)
+    np.testing.assert_array_equal(bspline_value(coef, x), bspline(coef, x)[0])
+
+
+@pytest.mark.parametrize("smooth", [0.0, 400.0])
+def test_template_fit_arrays_equal_the_three_steps(smooth):
+    # one segment at a time, the template without a spectrum, smoothed and prefiltered: the same
+    # numbers as without(), smoothed() and prefilter() over the whole template
+    from lineshift import sim
+    from lineshift.measure import template_engine as te
+    from lineshift.measure.coadd import TemplateAccumulator, log_grid
+    from lineshift.measure.prepare import prepare_spectrum
+    from lineshift.model import C_MS
+
+    ins = sim.Instrument("fk-echelle", "multi-order", 110_000, 4, 1024, 5000.0, snr=80)
+    rng = np.random.default_rng(13)
+    exps = [sim.observe(sim.DEMO_STAR, ins, sim.DEMO_SITE, 61000.8, rng, rv_override=sim.DEMO_STAR.gamma,
+                        berv_bjd=(rng.uniform(-20000, 20000), 0.0)) for _ in range(3)]
+    prepared = [prepare_spectrum(sim.to_spectrum(e)) for e in exps]
+    factors = [(1 + e.truth["berv"] / C_MS) / (1 + e.truth["rv_true"] / C_MS) for e in exps]
+    w = ins.wavelengths()
+    acc = TemplateAccumulator(log_grid(w.min() * 0.99, w.max() * 1.01, ins.pixel_velocity / 2), per_order=True,
+                              levelled=True)
+    for p, f in zip(prepared, factors, strict=True):
+        acc.add(p, f)
+    state = te.TemplateState.from_accumulator(acc, smooth)
+    state.pixel_step = ins.pixel_velocity
+    for factor in (factors[0], None):
+        flux, var, ok = state.smoothed(*state.without(prepared[0], factor))
+        ok = ok & np.isfinite(var)
+        coef, var_t, ok_t = state.fit_arrays(prepared[0], factor)
+        np.testing.assert_array_equal(ok_t, ok)
+        np.testing.assert_array_equal(var_t, np.where(ok, var, 0.0))
+        np.testing.assert_array_equal(coef, state.prefilter(flux))
+
+
+def test_kept_screening_of_a_wide_hit_equals_recomputing_it(tmp_path, monkeypatch):
+    # a 6-pixel double hit (wider than the spike finder's runs) is left out by the co-add's screening;
+    # what the co-add keeps for the fits (the changed order's mask and recomputed contribution, the
+    # unscreened contributions of the others) gives the rows that recomputing everything gives
+    from lineshift import sim
+    from lineshift.measure import coadd, template_engine
+    from lineshift.model import LineMask
+    from lineshift.run.pipeline import MeasureSettings, measure_files
+
+    ins = sim.Instrument("fk-echelle", "multi-order", 110_000, 4, 1024, 5000.0, snr=120)
+    rng = np.random.default_rng(14)
+    paths = []
+    for k in range(4):
+        exp = sim.observe(sim.DEMO_STAR, ins, sim.DEMO_SITE, 61010.8 + 40.0 * k, rng)
+        if k == 1:
+            exp.flux[2, 500:506] *= 4.0
+        paths.append(sim.write_observation(exp, str(tmp_path / f"s{k}.fits")))
+    lam, depth = sim.DEMO_STAR.line_list()
+    w = ins.wavelengths()
+    keep = (depth >= 0.05) & (lam > w.min()) & (lam < w.max())
+    mask = LineMask(lam[keep], depth[keep], (), "test")
+    settings = MeasureSettings(method="template", telluric_bands=False)
+    hits = []
+    screen = coadd.reject_above
+
+    def counted(*args, **kwargs):
+        out = screen(*args, **kwargs)
+        hits.append(sum(a is not b for a, b in zip(args[0], out, strict=True)))
+        return out
+
+    monkeypatch.setattr(template_engine, "reject_above", counted)
+    kept = measure_files(paths, mask, settings, workers=1)
+    assert sum(hits) >= 2                       # the hit's order changed in both passes' co-adds
+    monkeypatch.setattr(template_engine, "KEEP_BYTES", 0)
+    recomputed = measure_files(paths, mask, settings, workers=1)
+    assert [r["status"] for r in kept] == ["ok"] * len(paths)
+    for a, b in zip(kept, recomputed, strict=True):
+        assert {k: v for k, v in a.items() if k != "_span"} == {k: v for k, v in b.items() if k != "_span"}

@@ -32,8 +32,8 @@ from scipy.ndimage import spline_filter1d
 from lineshift.measure.prepare import PreparedOrder
 from lineshift.model import C_MS
 
-__all__ = ["Template", "TemplateAccumulator", "bspline", "bspline_reference", "log_grid", "on_common_continuum",
-           "reference_coefficients", "reject_above"]
+__all__ = ["Template", "TemplateAccumulator", "bspline", "bspline_reference", "bspline_value", "log_grid",
+           "on_common_continuum", "pixel_steps", "reference_coefficients", "reject_above", "value_tables"]
 
 _BAD_REACH = 4  # pixels around a bad one that the spline prefilter's tail reaches (decays 0.27x per pixel)
 
@@ -65,6 +65,25 @@ def bspline(coef: np.ndarray, x: np.ndarray, *, second: bool = False):
     if second:
         return value, deriv, 2 * q2 + 6 * t * q3
     return value, deriv
+
+
+def value_tables(coef: np.ndarray) -> tuple[np.ndarray, ...]:
+    """The power-basis coefficients of :func:`bspline` per interval of ``coef`` (interval i - 1 holds
+    the cubic between points i and i + 1), for :func:`bspline_value`."""
+    c0, c1, c2, c3 = coef[:-3], coef[1:-2], coef[2:-1], coef[3:]
+    return ((c0 + 4.0 * c1 + c2) / 6.0, (c2 - c0) / 2.0, (c0 - 2.0 * c1 + c2) / 2.0,
+            (3.0 * (c1 - c2) + c3 - c0) / 6.0)
+
+
+def bspline_value(coef: np.ndarray, x: np.ndarray, tables: tuple | None = None) -> np.ndarray:
+    """The value of :func:`bspline` alone (no derivative), the same numbers: the power-basis
+    coefficients are formed once per interval of ``coef`` (or given: :func:`value_tables`) and
+    gathered, which is cheaper where there are more points than intervals or many evaluations."""
+    q0, q1, q2, q3 = value_tables(coef) if tables is None else tables
+    i = np.clip(np.floor(x).astype(np.intp), 1, coef.size - 3)
+    t = x - i
+    k = i - 1
+    return q0[k] + t * (q1[k] + t * (q2[k] + t * q3[k]))
 
 
 def bspline_reference(coef: np.ndarray, x: np.ndarray):
@@ -147,6 +166,19 @@ def on_common_continuum(orders: list[PreparedOrder], reference: dict[int, np.nda
     return out
 
 
+def pixel_steps(orders: list[PreparedOrder]) -> list[float]:
+    """Median pixel width (m/s) of each order, in their order (orders of one length at once)."""
+    out = [0.0] * len(orders)
+    by_len: dict[int, list[int]] = {}
+    for pos, o in enumerate(orders):
+        by_len.setdefault(o.wave.size, []).append(pos)
+    for rows in by_len.values():
+        w = np.vstack([orders[r].wave for r in rows])
+        for r, step in zip(rows, np.median(C_MS * np.diff(w, axis=1) / w[:, 1:], axis=1), strict=True):
+            out[r] = float(step)
+    return out
+
+
 def log_grid(lo: float, hi: float, step: float) -> np.ndarray:
     """Wavelengths from ``lo`` to ``hi`` (Angstrom) uniform in ln(lambda) with ``step`` m/s."""
     du = np.log1p(step / C_MS)
@@ -154,23 +186,38 @@ def log_grid(lo: float, hi: float, step: float) -> np.ndarray:
 
 
 class _Segment:
-    """Sums over a contiguous part of the grid, from ``start``; grows to take what is added."""
+    """Sums over a contiguous part of the grid, from ``start``; grows to take what is added.
+
+    The arrays are views of buffers with room on either side, so a segment that grows by a few
+    points with each spectrum (their barycentric shifts differ) is copied only a few times."""
+
+    _NAMES = ("sw", "swf", "sw2v", "count", "flagged")
+    _TYPES = (float, float, float, np.int64, bool)
 
     def __init__(self, start: int, stop: int):
-        self.start = start
-        n = stop - start
-        self.sw, self.swf, self.sw2v = np.zeros(n), np.zeros(n), np.zeros(n)
-        self.count = np.zeros(n, dtype=np.int64)
-        self.flagged = np.zeros(n, dtype=bool)
+        self.start = self._base = start
+        self._bufs = [np.zeros(stop - start, dtype=t) for t in self._TYPES]
+        self._view(stop - start)
+
+    def _view(self, n: int) -> None:
+        off = self.start - self._base
+        for name, buf in zip(self._NAMES, self._bufs, strict=True):
+            setattr(self, name, buf[off:off + n])
 
     def cover(self, i0: int, i1: int) -> None:
-        lo = min(i0, self.start) - self.start
-        hi = max(i1, self.start + self.sw.size) - self.start
-        if lo < 0 or hi > self.sw.size:
-            pad = (-lo, hi - self.sw.size)
-            for name in ("sw", "swf", "sw2v", "count", "flagged"):
-                setattr(self, name, np.pad(getattr(self, name), pad))
-            self.start += lo
+        lo, hi = min(i0, self.start), max(i1, self.start + self.sw.size)
+        if lo == self.start and hi == self.start + self.sw.size:
+            return
+        if lo < self._base or hi > self._base + self._bufs[0].size:
+            room = max(64, (hi - lo) // 16)
+            base = lo - room
+            bufs = [np.zeros(hi - lo + 2 * room, dtype=t) for t in self._TYPES]
+            off = self.start - base
+            for new, name in zip(bufs, self._NAMES, strict=True):
+                new[off:off + self.sw.size] = getattr(self, name)
+            self._bufs, self._base = bufs, base
+        self.start = lo
+        self._view(hi - lo)
 
 
 class TemplateAccumulator:
@@ -221,52 +268,74 @@ class TemplateAccumulator:
 
         ``band_factor`` is file-frame / observatory-frame wavelength (1 for a topocentric file,
         ``1 + BERV/c`` for a barycentric one): the telluric bands are placed in the observatory frame."""
-        lnf = np.log(factor)
-        for o in orders:
-            u = np.log(o.wave) + lnf
-            i0 = np.searchsorted(self.lng, u[0], side="left")
-            i1 = np.searchsorted(self.lng, u[-1], side="right")
-            if i1 <= i0:
-                continue
-            pts = self.lng[i0:i1]
-            # fractional pixel index of each grid point (linear in ln lambda within a pixel)
-            fidx = np.interp(pts, u, np.arange(u.size, dtype=float))
-            j = np.minimum(fidx.astype(np.intp), u.size - 2)
-            t = fidx - j
-            good = o.good
-            if not good.all():   # bad pixels: fill for the prefilter, keep clear of their reach
-                idx = np.arange(good.size)
-                filled = np.interp(idx, idx[good], o.flux[good])
-                reach = np.convolve(~good, np.ones(2 * _BAD_REACH + 1), mode="same") > 0
-            else:
-                filled, reach = o.flux, np.zeros(good.size, dtype=bool)
-            coef = spline_filter1d(filled, order=3, mode="mirror")
-            f, _ = bspline(coef, fidx)
-            ok = good[j] & good[j + 1] & ~reach[j] & ~reach[j + 1]
-            v = (1 - t) * o.var[j] + t * o.var[j + 1]   # per-pixel noise level here (see Template)
-            w = np.where(ok, (1 - t) * o.weight[j] + t * o.weight[j + 1], 0.0)
-            if self.levelled:   # on a common level: f / L, var / L^2, weight * L^2
-                level = float(np.median(o.flux[good])) if good.any() else 1.0
-                if np.isfinite(level) and level > 0:
-                    f, v, w = f / level, v / level**2, w * level**2
-            if self.bands.size:
-                near = self.bands[(self.bands[:, 1] >= o.wave[0]) & (self.bands[:, 0] <= o.wave[-1])]
-                if near.size:
-                    lam_obs = np.exp(pts - lnf) / band_factor
-                    inband = np.zeros(pts.size, dtype=bool)
-                    for lo, hi in near:
-                        inband |= (lam_obs >= lo) & (lam_obs <= hi)
-                    w = np.where(inband, 0.0, w)
-            near_edge = (j < self.edge_margin) | (j > o.flux.size - 2 - self.edge_margin)
-            yield o.index, slice(i0, i1), w, w * f, w * w * v, near_edge if self.levelled else near_edge | ~ok
+        for c in self.contribution_list(orders, factor, band_factor):
+            if c is not None:
+                yield c
 
-    def add(self, orders: list[PreparedOrder], factor: float, band_factor: float = 1.0) -> None:
+    def contribution_list(self, orders: list[PreparedOrder], factor: float, band_factor: float = 1.0) -> list:
+        """:meth:`contributions` as a list aligned with ``orders`` (None for an order off the grid)."""
+        lnf = np.log(factor)
+        return [self._contribution(o, lnf, band_factor) for o in orders]
+
+    def _contribution(self, o: PreparedOrder, lnf: float, band_factor: float):
+        u = np.log(o.wave) + lnf
+        i0 = np.searchsorted(self.lng, u[0], side="left")
+        i1 = np.searchsorted(self.lng, u[-1], side="right")
+        if i1 <= i0:
+            return None
+        pts = self.lng[i0:i1]
+        # fractional pixel index of each grid point (linear in ln lambda within a pixel)
+        fidx = np.interp(pts, u, np.arange(u.size, dtype=float))
+        j = np.minimum(fidx.astype(np.intp), u.size - 2)
+        t = fidx - j
+        good = o.good
+        if not good.all():   # bad pixels: fill for the prefilter, keep clear of their reach
+            idx = np.arange(good.size)
+            filled = np.interp(idx, idx[good], o.flux[good])
+            reach = np.convolve(~good, np.ones(2 * _BAD_REACH + 1), mode="same") > 0
+            clean = good & ~reach
+            ok = (clean[:-1] & clean[1:])[j]    # both pixels around the point good and out of reach
+        else:
+            filled, ok = o.flux, None
+        coef = spline_filter1d(filled, order=3, mode="mirror")
+        f = bspline_value(coef, fidx)
+        v = (1 - t) * o.var[j] + t * o.var[j + 1]   # per-pixel noise level here (see Template)
+        w = (1 - t) * o.weight[j] + t * o.weight[j + 1]
+        if ok is not None:
+            w = np.where(ok, w, 0.0)
+        if self.levelled:   # on a common level: f / L, var / L^2, weight * L^2
+            level = float(np.median(o.flux[good])) if good.any() else 1.0
+            if np.isfinite(level) and level > 0:
+                f, v, w = f / level, v / level**2, w * level**2
+        if self.bands.size:
+            near = self.bands[(self.bands[:, 1] >= o.wave[0]) & (self.bands[:, 0] <= o.wave[-1])]
+            if near.size:
+                lam_obs = np.exp(pts - lnf) / band_factor
+                inband = np.zeros(pts.size, dtype=bool)
+                for lo, hi in near:
+                    inband |= (lam_obs >= lo) & (lam_obs <= hi)
+                w = np.where(inband, 0.0, w)
+        # j never decreases along the grid: the points near an order edge are a prefix and a suffix
+        near_edge = np.ones(pts.size, dtype=bool)
+        near_edge[np.searchsorted(j, self.edge_margin):np.searchsorted(j, o.flux.size - 2 - self.edge_margin,
+                                                                         side="right")] = False
+        if not self.levelled and ok is not None:
+            near_edge |= ~ok
+        return o.index, slice(i0, i1), w, w * f, w * w * v, near_edge
+
+    def add(self, orders: list[PreparedOrder], factor: float, band_factor: float = 1.0, *,
+            contributions: list | None = None) -> None:
         """Add one spectrum's orders, shifted by ``lambda_rest = lambda_obs * factor`` (``band_factor``:
-        see :meth:`contributions`)."""
+        see :meth:`contributions`).  ``contributions``: what :meth:`contribution_list` gives for
+        them, when it is at hand already."""
         self.n_spectra += 1
-        for o in orders:
-            self._pixel_steps.append(float(np.median(C_MS * np.diff(o.wave) / o.wave[1:])))
-        for index, sl, w, wf, w2v, flags in self.contributions(orders, factor, band_factor):
+        self._pixel_steps.extend(pixel_steps(orders))
+        if contributions is None:
+            contributions = self.contribution_list(orders, factor, band_factor)
+        for c in contributions:
+            if c is None:
+                continue
+            index, sl, w, wf, w2v, flags = c
             if self.per_order:
                 seg = self.segments.get(index)
                 if seg is None:
@@ -293,7 +362,7 @@ class TemplateAccumulator:
 
 def reject_above(orders: list[PreparedOrder], ref: np.ndarray, segments: np.ndarray, lng0: float, dlng: float,
                  factor: float, *, nsigma: float = 8.0, half: int = 25, grow: int = 1,
-                 coef: np.ndarray | None = None) -> list[PreparedOrder]:
+                 coef: np.ndarray | None = None, tables: tuple | None = None) -> list[PreparedOrder]:
     """The orders with pixels far ABOVE a reference template marked bad (a cosmic-ray hit the spike
     finder missed, e.g. a double hit wider than its run limit).
 
@@ -309,10 +378,13 @@ def reject_above(orders: list[PreparedOrder], ref: np.ndarray, segments: np.ndar
     Dokkum 2001, PASP 113, 1420) without its run limit: the reference is the star itself, so no real
     feature stands that far above it.
     Deterministic in its inputs, so a fit that removes a spectrum's own contribution recomputes
-    exactly what the co-add used.
+    exactly what the co-add used.  ``coef`` (:func:`reference_coefficients`) and ``tables``
+    (:func:`value_tables` of them) can be given when the same reference serves many spectra.
     """
     if coef is None:
         coef = reference_coefficients(ref, segments)
+    if tables is None:
+        tables = value_tables(coef)
     table = {int(k): (int(a), int(b), int(n)) for k, a, b, n in segments}
     ok_ref = np.isfinite(ref)
     lnf = np.log(factor)
@@ -327,11 +399,11 @@ def reject_above(orders: list[PreparedOrder], ref: np.ndarray, segments: np.ndar
         inside = (xi > 1) & (xi < n - 3)
         xc = np.clip(xi, 1, n - 3) + off
         i0 = np.floor(xc).astype(np.intp)
-        T, _ = bspline(coef, xc)
+        T = bspline_value(coef, xc, tables)
         usable = o.good & inside & ok_ref[i0] & ok_ref[i0 + 1] & (T > 0)
         if usable.sum() >= 2 * half + 1:
             todo.setdefault(o.flux.size, []).append((pos, T, usable))
-    for rows in todo.values():   # the running medians of all orders of one length at once
+    for rows in _blocks(todo.values()):   # the running medians of several orders of one length at once
         T = np.vstack([r[1] for r in rows])
         usable = np.vstack([r[2] for r in rows])
         flux = np.vstack([orders[r[0]].flux for r in rows])
@@ -348,6 +420,20 @@ def reject_above(orders: list[PreparedOrder], ref: np.ndarray, segments: np.ndar
             if g.any():
                 out[pos] = replace(orders[pos], good=orders[pos].good & ~g)
     return out
+
+
+#: Pixels per block of orders screened at once: temporaries below the size (128 KB) from which the C
+#: allocator maps each new array afresh (page faults cost more than the arithmetic on them).
+BLOCK_PIXELS = 16384
+
+
+def _blocks(groups):
+    """The lists in ``groups`` (items of one length: (position, model, usable)) cut into lists of at
+    most :data:`BLOCK_PIXELS` pixels."""
+    for rows in groups:
+        step = max(BLOCK_PIXELS // rows[0][1].size, 1)
+        for start in range(0, len(rows), step):
+            yield rows[start:start + step]
 
 
 def _block_median(x: np.ndarray, width: int) -> np.ndarray:

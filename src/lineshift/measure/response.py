@@ -53,12 +53,13 @@ def bin_residuals(wave: np.ndarray, resid: np.ndarray, model: np.ndarray, weight
     pad = nb * width - n
 
     def binned(a):
-        return np.pad(a, ((0, 0), (0, pad))).reshape(k, nb, width).sum(axis=2)
+        return (np.pad(a, ((0, 0), (0, pad))) if pad else a).reshape(a.shape[0], nb, width).sum(axis=2)
 
     wm = weight * model
     num, den = binned(wm * resid), binned(wm * model)
-    cnt = binned(np.ones((1, n)) + np.zeros((k, 1)))
-    x = binned(np.broadcast_to(np.arange(n, dtype=float), (k, n))) / cnt
+    cnt = binned(np.ones((1, n)))          # the same for every row
+    x = np.broadcast_to(binned(np.arange(n, dtype=float)[None, :]) / cnt, (k, nb))
+    cnt = np.broadcast_to(cnt, (k, nb))
     u = binned(np.log(wave)) / np.maximum(cnt, 1)
     rho = np.where(den > 0, num / np.where(den > 0, den, 1.0), 0.0)
     if deriv is None:
@@ -68,12 +69,18 @@ def bin_residuals(wave: np.ndarray, resid: np.ndarray, model: np.ndarray, weight
     return [(x[j], u[j], rho[j], den[j], cross[j], float(info[j])) for j in range(k)]
 
 
-def _basis(x: np.ndarray, h: float, ncoef: int) -> np.ndarray:
-    """Dense cubic B-spline design matrix for ``x`` in 0..(ncoef - 3) h, knots spaced ``h``."""
+def _basis_sparse(x: np.ndarray, h: float, ncoef: int) -> tuple[np.ndarray, np.ndarray]:
+    """The cubic B-spline design matrix for ``x`` in 0..(ncoef - 3) h (knots spaced ``h``) by its
+    non-zero entries: the first column of each row and the (m, 4) weights of columns i..i+3."""
     t = x / h
     i = np.clip(np.floor(t).astype(np.intp), 0, ncoef - 4)
     f = t - i
-    q = np.stack([f**0, f, f * f, f**3], axis=-1) @ _B      # (m, 4): weights of coefficients i..i+3
+    return i, np.stack([f**0, f, f * f, f**3], axis=-1) @ _B
+
+
+def _basis(x: np.ndarray, h: float, ncoef: int) -> np.ndarray:
+    """Dense cubic B-spline design matrix for ``x`` in 0..(ncoef - 3) h, knots spaced ``h``."""
+    i, q = _basis_sparse(x, h, ncoef)
     out = np.zeros((x.size, ncoef))
     rows = np.arange(x.size)[:, None]
     out[rows, i[:, None] + np.arange(4)] = q
@@ -99,12 +106,12 @@ def detector_response(spectra: list[tuple[float, dict[int, ResponseBins]]], size
         ncoef = nint + 3
 
         def contribution(lnf_j, bins_j, s, h=h, ncoef=ncoef):
-            """Spectrum j's weight and weight x basis at star-frame points s (ln wavelength)."""
+            """Spectrum j's weight at star-frame points s (ln wavelength) and its basis there (sparse)."""
             xj, uj, _, Wj = bins_j[:4]
             at = s - lnf_j
             pos = np.interp(at, uj, xj)
             wj = np.where((at >= uj[0]) & (at <= uj[-1]), np.interp(pos, xj, Wj), 0.0)
-            return wj, wj[:, None] * _basis(pos, h, ncoef)
+            return wj, *_basis_sparse(pos, h, ncoef)
 
         # the co-add's sums of every spectrum on a fine star-frame grid (a quarter bin apart): one pass
         # over the spectra, then each spectrum's template term is these sums less its own share
@@ -113,12 +120,14 @@ def detector_response(spectra: list[tuple[float, dict[int, ResponseBins]]], size
         sgrid = np.arange(s0, max(b[1][-1] + lnf for lnf, b in have) + 2 * ds, ds)
         S = np.zeros((sgrid.size, ncoef))
         Wsum = np.zeros(sgrid.size)
+        rows, four = np.arange(sgrid.size)[:, None], np.arange(4)
         for lnf_j, bins_j in have:
-            wj, sj = contribution(lnf_j, bins_j, sgrid)
+            wj, cj, qj = contribution(lnf_j, bins_j, sgrid)
             Wsum += wj
-            S += sj
+            S[rows, cj[:, None] + four] += wj[:, None] * qj     # each (row, column) once: no lost sums
         G = np.zeros((ncoef, ncoef))
         g = np.zeros(ncoef)
+        floor = 1e-9 * np.max(Wsum)
         for lnf_i, bins_i in have:
             x, u, rho, W = bins_i[:4]
             use = W > 0
@@ -128,18 +137,21 @@ def detector_response(spectra: list[tuple[float, dict[int, ResponseBins]]], size
             gi = (u[use] + lnf_i - s0) / ds
             i0 = np.clip(np.floor(gi).astype(np.intp), 0, sgrid.size - 2)
             f = (gi - i0)[:, None]
-            own0, s_own0 = contribution(lnf_i, bins_i, sgrid[i0])
-            own1, s_own1 = contribution(lnf_i, bins_i, sgrid[i0 + 1])
             # the template term (the others' weighted mean) and the spectrum itself, both at the two
             # star-frame grid nodes around each point, then interpolated alike: without any spread of
-            # shifts they cancel exactly (no response can be seen, none is made up from rounding)
+            # shifts they cancel (to rounding: no response can be seen, none is made up).  The
+            # spectrum's own share s = own x basis enters as s / own + s / others = basis (1 + own / others),
+            # on its four columns only
             A = np.zeros((xs.size, ncoef))
             ok = np.ones(xs.size, dtype=bool)
-            for node, own, s_own, wt in ((i0, own0, s_own0, 1 - f), (i0 + 1, own1, s_own1, f)):
+            at = np.arange(xs.size)[:, None]
+            for node, wt in ((i0, 1 - f), (i0 + 1, f)):
+                own, c, q = contribution(lnf_i, bins_i, sgrid[node])
                 others = Wsum[node] - own
-                ok &= (others > 1e-9 * np.max(Wsum)) & (own > 0)
-                A += wt * (s_own / np.where(ok, own, 1.0)[:, None]
-                           - (S[node] - s_own) / np.where(ok, others, 1.0)[:, None])
+                ok &= (others > floor) & (own > 0)
+                safe = np.where(ok, others, 1.0)[:, None]
+                A -= wt * (S[node] / safe)
+                A[at, c[:, None] + four] += wt * q * (1.0 + np.where(ok, own, 0.0)[:, None] / safe)
             sw = np.sqrt(W[use]) * ok
             X, y = A * sw[:, None], rho[use] * sw
             L = np.stack([(2 * xs / (n - 1) - 1) ** p for p in range(poly_degree + 1)], axis=1) * sw[:, None]

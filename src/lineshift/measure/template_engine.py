@@ -34,7 +34,8 @@ Fit
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
+from functools import lru_cache
 
 import numpy as np
 from scipy.ndimage import gaussian_filter1d, spline_filter1d
@@ -46,6 +47,7 @@ from lineshift.measure.coadd import (
     on_common_continuum,
     reference_coefficients,
     reject_above,
+    value_tables,
 )
 from lineshift.measure.prepare import PreparedOrder
 from lineshift.measure.response import bin_residuals
@@ -53,6 +55,10 @@ from lineshift.measure.tellurics import drop_bands
 from lineshift.model import C_MS
 
 __all__ = ["TemplateSettings", "TemplateState", "measure_template", "template_smoothing"]
+
+
+#: Upper bound of the memory a template keeps of its inputs for their fits (:meth:`TemplateState.keep`), bytes.
+KEEP_BYTES = 256 * 2**20
 
 
 @dataclass(frozen=True)
@@ -146,7 +152,11 @@ class TemplateState:
         coef = self.__dict__.get("_ref_coef")
         if coef is None:
             coef = self.__dict__["_ref_coef"] = reference_coefficients(self.ref_flux, self.ref_segments)
-        return reject_above(orders, self.ref_flux, self.ref_segments, self.lng0, self.dlng, factor, coef=coef)
+        tables = self.__dict__.get("_ref_tables")
+        if tables is None:
+            tables = self.__dict__["_ref_tables"] = value_tables(coef)
+        return reject_above(orders, self.ref_flux, self.ref_segments, self.lng0, self.dlng, factor, coef=coef,
+                            tables=tables)
 
     def to_arrays(self) -> dict[str, np.ndarray]:
         """Plain arrays (for the results store): the inverse of :meth:`from_arrays`."""
@@ -184,13 +194,49 @@ class TemplateState:
             self.__dict__["_acc"] = acc
         return acc
 
-    def without(self, orders: list[PreparedOrder], factor: float | None, band_factor: float = 1.0):
+    def keep(self, key, factor: float, band_factor: float, goods: list, contributions: list) -> None:
+        """Keep, for the fit of the spectrum ``key`` (e.g. its path) that was co-added with ``factor``
+        and ``band_factor``, what the co-add computed of it: per order the screened good-pixel mask
+        (None where screening left the order as it was) and its contribution (as
+        :meth:`.coadd.TemplateAccumulator.contribution_list`), so :func:`measure_template` called with
+        the same ``key`` neither screens it again nor recomputes its contribution.  In this process
+        only (not pickled), within :data:`KEEP_BYTES`; beyond that the fit recomputes both."""
+        size = sum(a.nbytes for c in contributions if c is not None for a in c[2:])
+        used = self.__dict__.get("_kept_bytes", 0)
+        if used + size > KEEP_BYTES:
+            return
+        self.__dict__["_kept_bytes"] = used + size
+        self.__dict__.setdefault("_kept", {})[key] = (factor, band_factor, goods, contributions)
+
+    def kept(self, key, factor: float | None, band_factor: float):
+        """(goods, contributions) kept by :meth:`keep` for ``key`` with these factors, or None."""
+        entry = self.__dict__.get("_kept", {}).get(key) if key is not None else None
+        if entry is None or entry[0] != factor or entry[1] != band_factor:
+            return None
+        return entry[2], entry[3]
+
+    def forget(self) -> None:
+        """Drop what :meth:`keep` kept."""
+        self.__dict__.pop("_kept", None)
+        self.__dict__.pop("_kept_bytes", None)
+
+    def __getstate__(self):   # what it keeps in this process, and what is quicker made again than sent
+        return {k: v for k, v in self.__dict__.items() if k not in ("_kept", "_kept_bytes", "_ref_tables", "_acc")}
+
+    def without(self, orders: list[PreparedOrder], factor: float | None, band_factor: float = 1.0,
+                contributions: list | None = None):
         """Template flux and variance (laid out as the segments) with this spectrum's own contribution
-        removed, and which points are usable (``band_factor`` as it was added with)."""
+        removed, and which points are usable (``band_factor`` as it was added with).  ``contributions``:
+        the spectrum's contributions as it was co-added, when kept (else they are recomputed)."""
         sw, swf, sw2v = self.sw, self.swf, self.sw2v
         if factor is not None:
             sw, swf, sw2v = sw.copy(), swf.copy(), sw2v.copy()
-            for index, sl, w, wf, w2v, _ in self._grid().contributions(orders, factor, band_factor):
+            if contributions is None:
+                contributions = self._grid().contribution_list(orders, factor, band_factor)
+            for c in contributions:
+                if c is None:
+                    continue
+                index, sl, w, wf, w2v, _ = c
                 seg = self.segment(index)
                 if seg is None:
                     continue
@@ -233,6 +279,60 @@ class TemplateState:
             ok[sl] = good
         return flux, var, ok
 
+    def fit_arrays(self, orders: list[PreparedOrder], factor: float | None, band_factor: float = 1.0,
+                   contributions: list | None = None):
+        """What :func:`measure_template` fits against: (B-spline coefficients, variance, usable) of the
+        template without this spectrum (:meth:`without`), smoothed (:meth:`smoothed`), prefiltered
+        (:meth:`prefilter`), with the variance 0 where it is not usable.  The same numbers as those
+        three in turn, computed one segment at a time (no temporaries of the whole template)."""
+        own: dict[int, list] = {}     # segment offset -> this spectrum's contributions to it
+        if factor is not None:
+            if contributions is None:
+                contributions = self._grid().contribution_list(orders, factor, band_factor)
+            for c in contributions:
+                if c is None or self.segment(c[0]) is None:
+                    continue
+                start, off, n = self.segment(c[0])
+                sl = c[1]
+                lo, hi = max(sl.start, start), min(sl.stop, start + n)
+                if hi > lo:
+                    own.setdefault(off, []).append((slice(lo - start, hi - start),
+                                                    slice(lo - sl.start, hi - sl.start), *c[2:5]))
+        floor = self.__dict__.get("_sw_floor")
+        if floor is None:
+            floor = self.__dict__["_sw_floor"] = 1e-12 * np.max(self.sw)
+        sig = self.smooth / (C_MS * np.expm1(self.dlng))
+        corr = max(self.pixel_step / (C_MS * np.expm1(self.dlng)), 1.0) if self.pixel_step else 1.0
+        coef, var_out, ok_out = np.empty(self.sw.size), np.empty(self.sw.size), np.empty(self.sw.size, dtype=bool)
+        for _, _, off, n in self.segments:
+            sl = slice(off, off + n)
+            sw, swf, sw2v = self.sw[sl], self.swf[sl], self.sw2v[sl]
+            if off in own:
+                sw, swf, sw2v = sw.copy(), swf.copy(), sw2v.copy()
+                for dst, src, w, wf, w2v in own[off]:
+                    sw[dst] -= w[src]
+                    swf[dst] -= wf[src]
+                    sw2v[dst] -= w2v[src]
+            ok = sw > floor
+            flux = np.where(ok, swf / np.where(ok, sw, 1.0), 1.0)
+            var = np.maximum(np.where(ok, sw2v / np.where(ok, sw, 1.0) ** 2, np.inf), 0.0)
+            ok &= ~self.flagged[sl]
+            if sig >= 0.3:   # as smoothed()
+                den = gaussian_filter1d(ok.astype(float), sig, mode="constant")
+                num = gaussian_filter1d(np.where(ok, flux, 0.0), sig, mode="constant")
+                v2 = gaussian_filter1d(np.where(ok, var, 0.0), sig / np.sqrt(2), mode="constant") / (
+                    2 * np.sqrt(np.pi) * sig)
+                good = ok & (den > 0.95)
+                safe = np.where(good, den, 1.0)
+                flux = np.where(good, num / safe, flux)
+                var = np.where(good, np.minimum(corr * v2 / safe**2, var), var)
+                ok = good
+            coef[sl] = spline_filter1d(flux, order=3, mode="mirror")
+            ok &= np.isfinite(var)
+            var_out[sl] = np.where(ok, var, 0.0)
+            ok_out[sl] = ok
+        return coef, var_out, ok_out
+
     def prefilter(self, flux: np.ndarray) -> np.ndarray:
         """Cubic B-spline coefficients of ``flux``, each segment on its own (mirror at its ends)."""
         coef = np.empty_like(flux)
@@ -273,24 +373,28 @@ class TemplateResult:
 
 def measure_template(orders: list[PreparedOrder], state: TemplateState, settings: TemplateSettings, *,
                      delta0: float, factor: float | None, berv: float = 0.0, path: str | None = None,
-                     band_factor: float = 1.0) -> TemplateResult:
+                     band_factor: float = 1.0, key=None) -> TemplateResult:
     """Topocentric velocity (relative to the template's frame) of one prepared spectrum.
 
     ``delta0`` is the starting ln(1 + rv_topo/c); ``factor`` the co-adding factor this spectrum
     entered the template with (None when it is not part of it: nothing is subtracted);
     ``band_factor`` file-frame / observatory-frame wavelength, placing the telluric bands (1 unless
-    the file is barycentric).
+    the file is barycentric); ``key`` the name the co-add kept this spectrum's screening and
+    contribution under (:meth:`TemplateState.keep`), if any.
     """
     if not orders:
         raise MeasurementError("no usable order (too few valid pixels)", path=path, status="no valid pixels")
+    kept = state.kept(key, factor, band_factor)
     orders = on_common_continuum(orders, state.continua)
-    orders = state.screened(orders, factor if factor is not None else float(np.exp(-delta0)))
-    flux_t, var_t, ok_t = state.smoothed(*state.without(orders, factor, band_factor))
+    if kept is None:
+        orders = state.screened(orders, factor if factor is not None else float(np.exp(-delta0)))
+        own = None
+    else:   # as the co-add screened and added it
+        goods, own = kept
+        orders = [o if g is None else replace(o, good=g) for o, g in zip(orders, goods, strict=True)]
+    coef, var_t, ok_t = state.fit_arrays(orders, factor, band_factor, own)
     # this spectrum's telluric pixels (listed bands and lines found in the batch), in its own frame
     orders = [drop_bands(o, state.bands * band_factor) for o in orders]
-    coef = state.prefilter(flux_t)
-    ok_t = ok_t & np.isfinite(var_t)
-    var_t = np.where(ok_t, var_t, 0.0)
     rows = []
     by_len: dict[int, list[PreparedOrder]] = {}
     for o in orders:
@@ -300,8 +404,9 @@ def measure_template(orders: list[PreparedOrder], state: TemplateState, settings
             continue
         by_len.setdefault(o.flux.size, []).append(o)
     residuals = {}
-    for block in by_len.values():
-        fits, bins = _fit_block(block, coef, var_t, ok_t, state, settings, delta0)
+    pair = (ok_t[:-1] & ok_t[1:], np.diff(var_t))
+    for block in _chunks(by_len.values()):
+        fits, bins = _fit_block(block, coef, var_t, ok_t, state, settings, delta0, pair)
         for o, (v, e, chi2), b in zip(block, fits, bins, strict=True):
             if np.isfinite(v):
                 residuals[int(o.index)] = b
@@ -332,13 +437,125 @@ def measure_template(orders: list[PreparedOrder], state: TemplateState, settings
                           residuals)
 
 
+#: Pixels per block of orders fitted at once: the fit's temporaries then stay below the size (128 KB)
+#: from which the C allocator maps every new array afresh from the system, whose page faults cost more
+#: than the arithmetic on them (measured: the B-spline evaluation of 36 orders x 4096 pixels 5x faster
+#: in blocks of 4 orders); the orders of a block are independent, so the blocks change nothing else.
+BLOCK_PIXELS = 16384
+
+
+def _chunks(blocks):
+    """Orders of equal length (``blocks``: lists of them) in lists of at most :data:`BLOCK_PIXELS` pixels."""
+    for block in blocks:
+        rows = max(BLOCK_PIXELS // block[0].flux.size, 1)
+        for start in range(0, len(block), rows):
+            yield block[start:start + rows]
+
+
+@lru_cache(maxsize=16)
+def _powers(n: int, deg: int) -> np.ndarray:
+    """``x^j`` for j = 0..deg at n points x evenly spaced over -1..1, as columns (read-only)."""
+    x = np.linspace(-1.0, 1.0, n)
+    out = np.stack([x ** j for j in range(deg + 1)], axis=1)
+    out.flags.writeable = False
+    return out
+
+
 def _fit_block(block: list[PreparedOrder], coef, var_t, ok_t, state: TemplateState, settings: TemplateSettings,
-               delta0: float):
+               delta0: float, pair=None):
     """Gauss-Newton for (delta, c0..c_deg) of several orders of equal length at once.
 
     Returns per order (rv_topo, rv_err, reduced chi-square), NaN where the fit is impossible, and
     per order its binned relative residuals (:func:`.response.bin_residuals`).
+
+    The model is ``P(x) T``, so its derivatives are ``g = -P dT`` (the shift) and ``x^j T`` (the
+    polynomial): the normal equations need only the moments ``sum w T^2 x^m`` (m up to twice the
+    degree), ``sum w T g x^j``, ``sum w g^2`` and the like with the residual, each a matrix product
+    with the powers of x; the B-spline is evaluated in place (its interval and fraction serve the
+    template's usable points and variances too).  :func:`_fit_block_reference` builds the Jacobian
+    instead: the same sums in another order.  ``pair``: (usable and the next point usable, variance
+    step to the next point) of the template, when the caller has them for several blocks.
     """
+    if pair is None:
+        pair = (ok_t[:-1] & ok_t[1:], np.diff(var_t))
+    ok2, dvar = pair
+    seg = np.array([state.segment(o.index) for o in block], dtype=float)   # (k, 3): start, offset, length
+    base = (seg[:, 1] - seg[:, 0])[:, None]          # grid index -> index in the segment arrays
+    lo_i, hi_i = seg[:, 1:2] + 2, seg[:, 1:2] + seg[:, 2:3] - 3
+    wave = np.vstack([o.wave for o in block])
+    flux = np.vstack([o.flux for o in block])
+    var = np.vstack([o.var for o in block])
+    use = np.vstack([o.good for o in block])
+    k, n = flux.shape
+    use[:, : settings.edge_pixels] = False
+    use[:, n - settings.edge_pixels:] = False
+    xi0 = (np.log(wave) - state.lng0) / state.dlng + base   # template index at delta = 0
+    deg = settings.poly_degree
+    npar = deg + 2
+    pw = _powers(n, 2 * deg)                                      # (n, 2 deg + 1): 1, x, x^2, ...
+    powers = pw[:, :deg + 1]
+    moment = np.add.outer(np.arange(deg + 1), np.arange(deg + 1))  # x^i x^j = x^(i+j)
+    p = np.zeros((k, npar))
+    p[:, 0] = delta0
+    p[:, 1] = 1.0
+    alive = np.ones(k, dtype=bool)
+    A = np.empty((k, npar, npar))
+    b = np.empty((k, npar))
+    for _ in range(settings.iterations):
+        xi = xi0 - p[:, 0:1] / state.dlng
+        inside = (xi > lo_i) & (xi < hi_i)
+        xi = np.clip(xi, lo_i, hi_i)
+        i0 = xi.astype(np.intp)                      # xi >= 2: truncation is the floor
+        fr = xi - i0
+        # the cubic B-spline and its derivatives per grid step (as coadd.bspline)
+        c0, c1, c2, c3 = coef[i0 - 1], coef[i0], coef[i0 + 1], coef[i0 + 2]
+        q1 = (c2 - c0) / 2.0
+        q2 = (c0 - 2.0 * c1 + c2) / 2.0
+        q3 = (3.0 * (c1 - c2) + c3 - c0) / 6.0
+        T = (c0 + 4.0 * c1 + c2) / 6.0 + fr * (q1 + fr * (q2 + fr * q3))
+        dT = q1 + fr * (2 * q2 + 3 * fr * q3)       # per grid step
+        d2T = 2 * q2 + 6 * fr * q3
+        m = use & inside & ok2[i0]
+        poly = p[:, 1:] @ powers.T
+        w = np.where(m, 1.0 / (var + poly * poly * (var_t[i0] + fr * dvar[i0])), 0.0)
+        r = np.where(m, flux - poly * T, 0.0)
+        g = poly * dT * (-1.0 / state.dlng)                    # d model / d delta
+        wT, wr = w * T, w * r
+        A[:, 1:, 1:] = ((wT * T) @ pw)[:, moment]
+        A[:, 0, 1:] = (wT * g) @ powers
+        A[:, 1:, 0] = A[:, 0, 1:]
+        A[:, 0, 0] = np.einsum("ij,ij->i", w * g, g)
+        b[:, 0] = np.einsum("ij,ij->i", wr, g)
+        b[:, 1:] = (wr * T) @ powers
+        info = A.copy()                              # expected information, for the errors
+        # Newton in delta: the residual x curvature term Gauss-Newton leaves out (a noisy template has
+        # a large curvature; without it the iteration converges only linearly)
+        A[:, 0, 0] -= np.einsum("ij,ij->i", wr * poly, d2T) / state.dlng**2
+        A[:, 0, 0] = np.where(A[:, 0, 0] > 0.1 * info[:, 0, 0], A[:, 0, 0], info[:, 0, 0])
+        used = np.count_nonzero(m, axis=1)
+        alive &= used >= 20
+        A[~alive] = np.eye(npar)
+        b[~alive] = 0.0
+        dp = np.linalg.solve(A, b[..., None])[..., 0]
+        p += dp
+        chi2 = np.einsum("ij,ij->i", wr, r) / np.maximum(used - npar, 1)
+        # Newton converges quadratically: after a step below 1e-9 (0.3 m/s) what remains is ~1e-11
+        # (3 mm/s), so stop there
+        if np.all(np.abs(dp[:, 0]) < 1e-9):
+            break
+    info[~alive] = np.eye(npar)
+    cov = np.linalg.inv(info)
+    v = C_MS * np.expm1(p[:, 0])
+    e = C_MS * np.exp(p[:, 0]) * np.sqrt(np.abs(cov[:, 0, 0]))
+    bad = ~alive | ~np.isfinite(p).all(axis=1)
+    bins = bin_residuals(wave, r, poly * T, w, g)
+    return [(np.nan, np.nan, np.nan) if bad[j] else (v[j], e[j], chi2[j]) for j in range(k)], bins
+
+
+def _fit_block_reference(block: list[PreparedOrder], coef, var_t, ok_t, state: TemplateState,
+                         settings: TemplateSettings, delta0: float, pair=None):
+    """Plain form of :func:`_fit_block`: the Jacobian built column by column, normal equations by a
+    batched product with it."""
     seg = np.array([state.segment(o.index) for o in block], dtype=float)   # (k, 3): start, offset, length
     base = (seg[:, 1] - seg[:, 0])[:, None]          # grid index -> index in the segment arrays
     lo_i, hi_i = seg[:, 1:2] + 2, seg[:, 1:2] + seg[:, 2:3] - 3

@@ -452,7 +452,7 @@ def _template_row(task: Task, obs: Observation, orders, ctx: Context) -> dict:
         raise MeasurementError("no first-pass velocity to start the template fit from", path=task.path,
                                status="no velocity")
     res = measure_template(orders, ctx.template, TemplateSettings(), delta0=task.delta0, factor=task.factor,
-                           berv=task.berv, path=task.path, band_factor=_band_factor(task))
+                           berv=task.berv, path=task.path, band_factor=_band_factor(task), key=task.path)
     flagged = [o for o in res.orders if o["flag"]]
     notes = tuple(obs.notes) + task.notes + ((f"{len(flagged)} order(s) flagged (poor fit or rejected)",)
                                              if flagged else ())
@@ -533,7 +533,7 @@ def _run_template(tasks: list[Task], first: dict[int, dict], ctx: Context, *, wo
     Returns the rows, the last template and the co-adding factor of each spectrum in it."""
     from lineshift.measure.coadd import TemplateAccumulator, log_grid, on_common_continuum
     from lineshift.measure.response import detector_response
-    from lineshift.measure.template_engine import TemplateState, template_smoothing
+    from lineshift.measure.template_engine import KEEP_BYTES, TemplateState, template_smoothing
 
     rows = dict(first)
     bands = np.zeros((0, 2)) if ctx.settings.telluric_bands is False else read_telluric_bands(
@@ -561,25 +561,51 @@ def _run_template(tasks: list[Task], first: dict[int, dict], ctx: Context, *, wo
         fwhm = fwhm[np.isfinite(fwhm)]
         smooth = template_smoothing(float(np.median(fwhm)) if fwhm.size else 0.0)
 
-        def coadd(screen, use=use, grid=grid, continua=continua, factor=factor, smooth=smooth):
+        def coadd(screen, unscreened=None, use=use, grid=grid, continua=continua, factor=factor, smooth=smooth):
+            """The co-add of ``use``, each screened against ``screen`` (if any); each spectrum's
+            screening and contribution kept in the template for its fit (TemplateState.keep).
+            ``unscreened``: a co-add of the same inputs without screening that kept theirs: an
+            order that screening leaves as it was has the same contribution."""
             acc = TemplateAccumulator(grid, bands=bands, per_order=True, levelled=True)
+            pending, size = [], 0
             for t in use:
+                f, bf = factor[t.index], _band_factor(t)
                 orders = on_common_continuum(_load_prepared(t.path, ctx.settings)[1], continua)
+                goods = [None] * len(orders)
+                own = None if unscreened is None else unscreened.kept(t.path, f, bf)
+                own = None if own is None else list(own[1])
                 if screen is not None:
-                    orders = screen.screened(orders, factor[t.index])
-                acc.add(orders, factor[t.index], _band_factor(t))
-            return TemplateState.from_accumulator(acc, smooth, continua)
+                    screened = screen.screened(orders, f)
+                    goods = [b.good if b is not a else None for a, b in zip(orders, screened, strict=True)]
+                    if own is not None:
+                        for k, g in enumerate(goods):
+                            if g is not None:
+                                own[k] = acc.contribution_list([screened[k]], f, bf)[0]
+                    orders = screened
+                if own is None:
+                    own = acc.contribution_list(orders, f, bf)
+                acc.add(orders, f, bf, contributions=own)
+                nbytes = sum(a.nbytes for c in own if c is not None for a in c[2:])
+                if size + nbytes <= KEEP_BYTES:
+                    pending.append((t.path, f, bf, goods, own))
+                    size += nbytes
+            out = TemplateState.from_accumulator(acc, smooth, continua)
+            for entry in pending:
+                out.keep(*entry)
+            return out
 
         # No spectrum's cosmic ray may enter the co-added template: every input is screened against
         # a template (the previous pass's, else a first co-add of the unscreened inputs) and its
         # pixels far above it are left out of the co-add and of its own fit (TemplateState.screened)
         prev = state if state is not None else coadd(None)
         screen = replace(prev, ref_flux=prev.flux(), ref_segments=prev.segments)
-        state = coadd(screen)
+        state = coadd(screen, prev if it == 0 else None)
+        prev.forget()
         state.ref_flux, state.ref_segments = screen.ref_flux, screen.ref_segments
         residuals: dict[int, dict] = {}
         new = _fit_against(use, first, {t.index: rows[t.index]["rv"] for t in use}, ctx, state, factor,
                            workers=workers, scheduler=scheduler, residuals=residuals)
+        state.forget()   # what it kept of its inputs served their fits
         moved = [abs(new[i]["rv"] - rows[i]["rv"]) / new[i]["rv_err"] for i in new
                  if new[i]["status"] == "ok" and rows[i].get("method") in CO_ADDED]
         rows.update(new)
