@@ -38,3 +38,21 @@ def test_offline_context_restores_settings():
         with offline():
             assert data.conf.allow_internet is False and iers.conf.auto_download is False
         assert data.conf.allow_internet is True and iers.conf.auto_download is True
+
+
+SIM_PROBE = r"""
+import sys
+import lineshift.cli.app  # noqa: the command line's parser
+parsed = "scipy" in sys.modules
+import lineshift.sim.writers  # noqa: imports the observe submodule before anything asks the package
+from lineshift import sim
+print(parsed, callable(sim.observe), sim.observe.__module__, sorted(set(sim.__all__) - set(dir(sim))))
+"""
+
+
+def test_simulator_is_imported_on_first_use():
+    # the parser does not import SciPy through the simulator; the package's names are what they were
+    # when everything was imported eagerly, ``observe`` the function although a submodule has its name
+    out = subprocess.run([sys.executable, "-c", SIM_PROBE], capture_output=True, text=True, check=True,
+                         env={"PYTHONPATH": "src", "PATH": ""})
+    assert out.stdout.strip() == "False True lineshift.sim.observe []", out.stdout

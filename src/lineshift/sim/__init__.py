@@ -12,6 +12,8 @@ photon-noise bound of the noise-free model (``noise``), and writes files in ever
 """
 
 import importlib
+import sys
+import types
 
 #: public name -> the submodule that defines it
 _HOME = {
@@ -35,6 +37,25 @@ def __getattr__(name: str):
 
 def __dir__() -> list[str]:
     return sorted(set(globals()) | set(_HOME))
+
+
+class _Package(types.ModuleType):
+    """``observe`` names both a submodule and its main function.  Importing the submodule binds the
+    package attribute to the module (the import system does so after loading it); the function keeps
+    the name here, as it did when everything was imported eagerly."""
+
+    @property
+    def observe(self):
+        from lineshift.sim.observe import observe
+
+        return observe
+
+    @observe.setter
+    def observe(self, value) -> None:   # the submodule binding: ignored, the function keeps the name
+        pass
+
+
+sys.modules[__name__].__class__ = _Package
 
 
 __all__ = [
