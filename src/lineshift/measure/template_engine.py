@@ -215,6 +215,11 @@ class TemplateState:
             return None
         return entry[2], entry[3]
 
+    @property
+    def n_kept(self) -> int:
+        """How many spectra :meth:`keep` kept (their fits are cheapest in this process)."""
+        return len(self.__dict__.get("_kept", {}))
+
     def forget(self) -> None:
         """Drop what :meth:`keep` kept."""
         self.__dict__.pop("_kept", None)
