@@ -249,9 +249,12 @@ def test_flat_top_search_on_a_block_equals_each_row():
     assert block[1, 100:106].all()
 
 
-def test_compiled_preparation_equals_the_numpy_form_to_the_last_bit():
+def test_compiled_preparation_equals_the_numpy_form():
+    # the last per-pixel step to the last bit; the whole preparation (whose continuum iterations
+    # sum in another order) to rounding: rtol 1e-12 (from memory, a few eps times ~1000 terms)
     pytest.importorskip("numba")
-    from lineshift.measure.prepare import _prepare_block, pixel_edges
+    from lineshift.measure import kernels
+    from lineshift.measure.prepare import _finish_numpy, _prepare_block, pixel_edges
     from lineshift.model import Order
 
     rng = np.random.default_rng(14)
@@ -265,8 +268,16 @@ def test_compiled_preparation_equals_the_numpy_form_to_the_last_bit():
     assert fast[3] is None and plain[3] is None and sum(p is not None for p in fast) == 4
     for a, b in zip(fast, plain, strict=True):
         if a is not None:
-            for name in ("flux", "var", "weight", "good", "continuum", "edges"):
+            for name in ("good", "edges"):
                 np.testing.assert_array_equal(getattr(a, name), getattr(b, name), err_msg=name)
+            for name in ("flux", "var", "weight", "continuum"):
+                np.testing.assert_allclose(getattr(a, name), getattr(b, name), rtol=1e-12, atol=0, err_msg=name)
+    good = np.isfinite(flux) & (var > 0)
+    f, v = np.where(good, flux, 0.0), np.where(good, var, 0.0)
+    cont = np.vstack([p.continuum if p is not None else np.full(1200, np.nan) for p in plain])
+    args = (f, v, good, cont, f.mean(axis=1), v.mean(axis=1), np.full(5, 0.9), 0.25 * v.mean(axis=1))
+    for x, y in zip(kernels.prepare_finish(*args), _finish_numpy(*args), strict=True):
+        np.testing.assert_array_equal(x, y)
     np.testing.assert_array_equal(pixel_edges(np.vstack([wave, wave + 1])), [pixel_edges(wave), pixel_edges(wave + 1)])
 
 
@@ -411,3 +422,34 @@ def test_kept_screening_of_a_wide_hit_equals_recomputing_it(tmp_path, monkeypatc
     assert [r["status"] for r in kept] == ["ok"] * len(paths)
     for a, b in zip(kept, recomputed, strict=True):
         assert {k: v for k, v in a.items() if k != "_span"} == {k: v for k, v in b.items() if k != "_span"}
+
+
+@pytest.mark.parametrize("seed", [21, 22])
+def test_compiled_continuum_iterations_equal_the_array_form(seed):
+    # the continuum's clipping iterations compiled (normal equations updated by the pixels that change)
+    # against the array form: the same pixels kept; coefficients and scatter to rounding (rtol 1e-12,
+    # from memory: a few eps times the ~1000 terms summed in another order)
+    pytest.importorskip("numba")
+    from lineshift.measure.prepare import _continuum_core
+
+    rng = np.random.default_rng(seed)
+    flux, var, _ = _orders(rng, rows=6, n=4096)
+    good = np.isfinite(flux) & (var > 0)
+    good[4, :] = False                                   # an order without a usable pixel
+    good[5, 40:] = False                                 # and one with too few for the clipped fit
+    fast = _continuum_core(flux, var, good, 4, 2.0, 3.0, 10, compiled=True)
+    plain = _continuum_core(flux, var, good, 4, 2.0, 3.0, 10, compiled=False)
+    np.testing.assert_array_equal(fast[1], plain[1])
+    assert fast[2] == plain[2] == 4
+    # the polynomials where they rest on data (coefficients of an order fitted on a short stretch are
+    # ill-conditioned: their rounding differences say nothing about the continuum)
+    design = np.polynomial.legendre.legvander(np.linspace(-1.0, 1.0, 4096), 4)[::4]
+    at = good[:, ::4]
+    cf, cp = fast[0] @ design.T, plain[0] @ design.T
+    np.testing.assert_allclose(cf[:4][at[:4]], cp[:4][at[:4]], rtol=1e-12, atol=0)
+    # the short stretch (10 points for 5 coefficients): rounding grows with the condition number
+    np.testing.assert_allclose(cf[5][at[5]], cp[5][at[5]], rtol=1e-8, atol=0)
+    np.testing.assert_allclose(fast[3][:4], plain[3][:4], rtol=1e-12, atol=0)
+    np.testing.assert_allclose(fast[3][5], plain[3][5], rtol=1e-6, atol=0)   # its residuals' square: twice the digits
+    assert 0 < plain[1].sum() < good[:, ::4].sum()        # clipping did remove pixels
+    np.testing.assert_array_equal(fast[0][4], 0.0)

@@ -12,6 +12,9 @@ its caller that it is tested against (tests/test_fast_kernels.py).
 * :func:`prepare_finish`: the normalised flux, its variance and the photon weight of every pixel
   (:func:`.prepare._prepare_block`; plain form :func:`.prepare._finish_numpy`), the same operations
   pixel by pixel instead of array by array: the same results to the last bit.
+* :func:`continuum_iterations`: the clipping iterations of the continuum fit
+  (:func:`.prepare._continuum_core`, whose array form is the plain one), the normal equations
+  updated by the pixels that change between steps: the same pixels kept, coefficients ~1e-15 apart.
 
 The compiled forms are used when numba imports, from the :data:`WARMUP_SPECTRA`-th spectrum a process
 prepares on (``LINESHIFT_JIT=1``: from the first, ``0``: never; see :func:`compiled`).  Each is
@@ -26,7 +29,8 @@ from types import SimpleNamespace
 
 import numpy as np
 
-__all__ = ["WARMUP_SPECTRA", "ccf_pairs", "compiled", "count_spectrum", "cumsums", "prepare_finish",
+__all__ = ["WARMUP_SPECTRA", "ccf_pairs", "compiled", "compiled_always", "continuum_iterations", "count_spectrum",
+           "cumsums", "prepare_finish",
            "term_variances"]
 
 _COMPILED: SimpleNamespace | bool | None = None
@@ -172,8 +176,11 @@ def _load() -> SimpleNamespace | None:
             pass
         else:
             jit = numba.njit(cache=True, nogil=True)
+            global _solve_small
+            _solve_small = jit(_solve_small)   # called from a kernel: numba needs it compiled too
             _COMPILED = SimpleNamespace(ccf_pairs=jit(_ccf_pairs), term_variances=jit(_term_variances),
-                                        cumsums=jit(_cumsums), prepare_finish=jit(_prepare_finish))
+                                        cumsums=jit(_cumsums), prepare_finish=jit(_prepare_finish),
+                                        continuum_iterations=jit(_continuum_iterations))
     return _COMPILED or None
 
 
@@ -187,6 +194,11 @@ def compiled() -> SimpleNamespace | None:
     if mode == "0" or (mode != "1" and _prepared < WARMUP_SPECTRA):
         return None
     return _load()
+
+
+def compiled_always() -> SimpleNamespace:
+    """The compiled kernels whatever the warm-up (for a caller told to use them); needs numba."""
+    return _kernels()
 
 
 def _kernels() -> SimpleNamespace:
@@ -257,6 +269,131 @@ def _prepare_finish(f, v, good, cont, mc, mv, alpha, floor):   # pragma: no cove
                 den = max(vcont, floor[r])
             q[r, i] = c2 / den if (gd and den > 0) else 0.0
     return gout, fn, vn, q
+
+
+def _solve_small(M, x, k):   # pragma: no cover (compiled)
+    """M x = b in place (b given in ``x``): Gaussian elimination with partial pivoting, as LAPACK's
+    getrf/getrs do it for a small matrix."""
+    for c in range(k):
+        p = c
+        for i in range(c + 1, k):
+            if abs(M[i, c]) > abs(M[p, c]):
+                p = i
+        if p != c:
+            for j in range(k):
+                M[c, j], M[p, j] = M[p, j], M[c, j]
+            x[c], x[p] = x[p], x[c]
+        for i in range(c + 1, k):
+            f = M[i, c] / M[c, c]
+            for j in range(c, k):
+                M[i, j] -= f * M[c, j]
+            x[i] -= f * x[c]
+    for c in range(k - 1, -1, -1):
+        t = x[c]
+        for j in range(c + 1, k):
+            t -= M[c, j] * x[j]
+        x[c] = t / M[c, c]
+
+
+def _continuum_iterations(flux, var, good, V, A, b, clip_low, clip_high, max_iter):   # pragma: no cover (compiled)
+    rows, n = flux.shape
+    k = V.shape[1]
+    y = np.empty((rows, n))
+    v0 = np.empty((rows, n))
+    for r in range(rows):
+        for i in range(n):
+            y[r, i] = flux[r, i] if good[r, i] else 0.0
+            v0[r, i] = var[r, i] if good[r, i] else 0.0
+    # A, b: the normal equations of the first step (every good pixel), kept and updated between steps
+    nw = np.zeros(rows, dtype=np.int64)
+    for r in range(rows):
+        for i in range(n):
+            nw[r] += good[r, i]
+    w = good.copy()
+    VV = np.empty((n, k * k))
+    for i in range(n):
+        for j in range(k):
+            for m in range(k):
+                VV[i, j * k + m] = V[i, j] * V[i, m]
+    sig = np.empty(n)
+    used = good.copy()
+    new = np.empty((rows, n), dtype=np.bool_)
+    coef = np.zeros((rows, k))
+    scatter2 = np.zeros(rows)
+    resid = np.empty(n)
+    M = np.empty((k, k))
+    rhs = np.empty(k)
+    VT = np.ascontiguousarray(V.T)
+    tol = 1e-3 * rows * n
+    for _ in range(max_iter):
+        changed = 0
+        for r in range(rows):
+            count = 0
+            for i in range(n):
+                count += used[r, i]
+            enough = count > k
+            for i in range(n):                       # only the pixels that joined or left the fit
+                wi = used[r, i] if enough else good[r, i]
+                if wi != w[r, i]:
+                    sgn = 1.0 if wi else -1.0
+                    for j in range(k * k):
+                        A[r, j] += sgn * VV[i, j]
+                    for j in range(k):
+                        b[r, j] += sgn * y[r, i] * V[i, j]
+                    nw[r] += 1 if wi else -1
+                    w[r, i] = wi
+            if nw[r] == 0:                            # no usable pixel: coefficients 0
+                for j in range(k):
+                    coef[r, j] = 0.0
+            else:
+                tr = 0.0
+                for j in range(k):
+                    tr += A[r, j * k + j]
+                for j in range(k):
+                    for m in range(k):
+                        M[j, m] = A[r, j * k + m]
+                    M[j, j] += 1e-12 * tr
+                for j in range(k):
+                    rhs[j] = b[r, j]
+                _solve_small(M, rhs, k)
+                for j in range(k):
+                    coef[r, j] = rhs[j]
+            for i in range(n):
+                resid[i] = y[r, i]
+            for j in range(k):                        # by columns of V: contiguous, vectorisable
+                cj = coef[r, j]
+                for i in range(n):
+                    resid[i] -= cj * VT[j, i]
+            s = 0.0
+            for i in range(n):
+                s += (resid[i] * resid[i] - v0[r, i]) * used[r, i]
+            s2 = max(s / max(count, 1), 0.0)
+            scatter2[r] = s2
+            for i in range(n):
+                sig[i] = np.sqrt(v0[r, i] + s2)
+            for i in range(n):
+                ok = good[r, i] & (resid[i] > sig[i] * -clip_low) & (resid[i] < sig[i] * clip_high)
+                new[r, i] = ok
+                changed += ok != used[r, i]
+        used, new = new, used
+        if changed <= tol:
+            break
+    return coef, used, scatter2
+
+
+def continuum_iterations(flux, var, good, V, VV, clip_low, clip_high, max_iter):
+    """The clipping iterations of the continuum fit for a block of orders (:func:`.prepare._continuum_core`
+    holds the plain array form): (coefficients, pixels kept, scatter^2 per order).  The same steps,
+    with one change: the normal equations are kept between steps and updated by the pixels that
+    joined or left the fit instead of being summed afresh, and sums run sequentially, so the
+    coefficients differ from the plain form's in the last bits (~1e-15 relative)."""
+    flux, var = np.ascontiguousarray(flux, dtype=float), np.ascontiguousarray(var, dtype=float)
+    good = np.ascontiguousarray(good)
+    g = good.astype(float)
+    A = g @ VV                                        # the first step's sums by BLAS (every good pixel)
+    b = (g * np.where(good, flux, 0.0)) @ V
+    return _kernels().continuum_iterations(flux, var, good, np.ascontiguousarray(V), A, b, float(clip_low),
+                                           float(clip_high), int(max_iter))
 
 
 def prepare_finish(f, v, good, cont, mc, mv, alpha, floor):

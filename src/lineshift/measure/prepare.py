@@ -105,17 +105,28 @@ def _weighted_polyfit(V: np.ndarray, y: np.ndarray, w: np.ndarray, work: np.ndar
     return np.linalg.solve(A, b[..., None])[..., 0]
 
 
-def _continuum_core(flux, var, good, degree, clip_low, clip_high, max_iter, n=None):
+def _compiled_core(flux, var, good, V, clip_low, clip_high, max_iter, stride):
+    coef, used, scatter2 = kernels.continuum_iterations(flux, var, good, V, _outer_rows(V), clip_low, clip_high,
+                                                        max_iter)
+    return coef, used, stride, scatter2
+
+
+def _continuum_core(flux, var, good, degree, clip_low, clip_high, max_iter, n=None, compiled=None):
     """Clipping iterations on every ``stride``-th pixel; returns (coef, used, stride, scatter^2).
 
     With ``n`` the arrays are already that subset of orders of ``n`` pixels.  The iterations reuse
-    their work arrays (the same operations, without a fresh allocation per step)."""
+    their work arrays (the same operations, without a fresh allocation per step).  ``compiled``: the
+    iterations by :func:`.kernels.continuum_iterations` (default: when the compiled kernels are in
+    use) or by the array form below, which is the plain form it is tested against."""
     # a degree-4 polynomial needs no more than ~1000 points: the iterations run on a subset
     stride = max(1, (flux.shape[1] if n is None else n) // 1024)
     if n is None:
         n = flux.shape[1]
         flux, var, good = flux[:, ::stride], var[:, ::stride], good[:, ::stride]
     V = _legendre_design(n, degree)[::stride]
+    fast = kernels.compiled() if compiled is None else (kernels.compiled_always() if compiled else None)
+    if fast is not None:
+        return _compiled_core(flux, var, good, V, clip_low, clip_high, max_iter, stride)
     VT = V.T
     g = good
     y = np.where(g, flux, 0.0)
@@ -220,7 +231,7 @@ def _prepare_block(orders: list[Order], degree: int, compiled: bool | None = Non
     stride = max(1, n // 1024)
     bs = blaze[:, ::stride]
     coef, used, stride, _ = _continuum_core(f[:, ::stride] / bs, v[:, ::stride] / bs**2, good[:, ::stride],
-                                            degree, 2.0, 3.0, 10, n=n)
+                                            degree, 2.0, 3.0, 10, n=n, compiled=compiled)
     enough = used.sum(axis=1) > degree + 1
     cont = np.where(enough[:, None], coef @ _legendre_design(n, degree).T, np.nan) * blaze
     # photon weight q = 1 / var_f at continuum level = c^2 / (alpha c + beta): the variance of the
