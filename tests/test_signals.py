@@ -24,8 +24,8 @@ def test_no_process_outlives_a_stopped_run(sample_set, tmp_path, sig):
     work = tmp_path / "many"
     work.mkdir()
     first = next(r for r in rows if r["layout"] == "multi-order")
-    for k in range(60):  # enough work that the run is still busy when the signal comes
-        shutil.copy(os.path.join(directory, first["file"]), work / f"s{k:02d}.fits")
+    for k in range(400):  # enough work that the run is still busy when the signal comes (60 were done in ~1 s)
+        shutil.copy(os.path.join(directory, first["file"]), work / f"s{k:03d}.fits")
     env = {**os.environ, "PYTHONPATH": SRC}
     proc = subprocess.Popen([sys.executable, "-m", "lineshift", "measure", str(work), "--mask", mask,
                              "--workers", "2", "-q", "-o", str(tmp_path / "out.csv")],
