@@ -466,6 +466,23 @@ def _powers(n: int, deg: int) -> np.ndarray:
     return out
 
 
+def _block_arrays(block: list[PreparedOrder], state: TemplateState, settings: TemplateSettings):
+    """A block of orders stacked for a fit: grid-index offset into the segment arrays and the usable
+    template index range per order, wavelengths, fluxes, variances, and the usable pixels (order
+    ends of ``settings.edge_pixels`` left out)."""
+    seg = np.array([state.segment(o.index) for o in block], dtype=float)   # (k, 3): start, offset, length
+    base = (seg[:, 1] - seg[:, 0])[:, None]          # grid index -> index in the segment arrays
+    lo_i, hi_i = seg[:, 1:2] + 2, seg[:, 1:2] + seg[:, 2:3] - 3
+    wave = np.vstack([o.wave for o in block])
+    flux = np.vstack([o.flux for o in block])
+    var = np.vstack([o.var for o in block])
+    use = np.vstack([o.good for o in block])
+    n = flux.shape[1]
+    use[:, : settings.edge_pixels] = False
+    use[:, n - settings.edge_pixels:] = False
+    return base, lo_i, hi_i, wave, flux, var, use
+
+
 def _fit_block(block: list[PreparedOrder], coef, var_t, ok_t, state: TemplateState, settings: TemplateSettings,
                delta0: float, pair=None):
     """Gauss-Newton for (delta, c0..c_deg) of several orders of equal length at once.
@@ -484,16 +501,8 @@ def _fit_block(block: list[PreparedOrder], coef, var_t, ok_t, state: TemplateSta
     if pair is None:
         pair = (ok_t[:-1] & ok_t[1:], np.diff(var_t))
     ok2, dvar = pair
-    seg = np.array([state.segment(o.index) for o in block], dtype=float)   # (k, 3): start, offset, length
-    base = (seg[:, 1] - seg[:, 0])[:, None]          # grid index -> index in the segment arrays
-    lo_i, hi_i = seg[:, 1:2] + 2, seg[:, 1:2] + seg[:, 2:3] - 3
-    wave = np.vstack([o.wave for o in block])
-    flux = np.vstack([o.flux for o in block])
-    var = np.vstack([o.var for o in block])
-    use = np.vstack([o.good for o in block])
+    base, lo_i, hi_i, wave, flux, var, use = _block_arrays(block, state, settings)
     k, n = flux.shape
-    use[:, : settings.edge_pixels] = False
-    use[:, n - settings.edge_pixels:] = False
     xi0 = (np.log(wave) - state.lng0) / state.dlng + base   # template index at delta = 0
     deg = settings.poly_degree
     npar = deg + 2
@@ -561,16 +570,8 @@ def _fit_block_reference(block: list[PreparedOrder], coef, var_t, ok_t, state: T
                          settings: TemplateSettings, delta0: float, pair=None):
     """Plain form of :func:`_fit_block`: the Jacobian built column by column, normal equations by a
     batched product with it."""
-    seg = np.array([state.segment(o.index) for o in block], dtype=float)   # (k, 3): start, offset, length
-    base = (seg[:, 1] - seg[:, 0])[:, None]          # grid index -> index in the segment arrays
-    lo_i, hi_i = seg[:, 1:2] + 2, seg[:, 1:2] + seg[:, 2:3] - 3
-    wave = np.vstack([o.wave for o in block])
-    flux = np.vstack([o.flux for o in block])
-    var = np.vstack([o.var for o in block])
-    use = np.vstack([o.good for o in block])
+    base, lo_i, hi_i, wave, flux, var, use = _block_arrays(block, state, settings)
     k, n = flux.shape
-    use[:, : settings.edge_pixels] = False
-    use[:, n - settings.edge_pixels:] = False
     u = np.log(wave)
     x = np.linspace(-1.0, 1.0, n)[None, :]
     deg = settings.poly_degree
