@@ -191,3 +191,23 @@ def test_series_warns_about_a_velocity_bisector_correlation(tmp_path, capfd, dra
     df.to_csv(tmp_path / "quiet.csv", index=False)
     assert main(["series", str(tmp_path / "quiet.csv"), "-o", str(tmp_path / "o2.csv")]) == 0
     assert "WARNING" not in capfd.readouterr().err
+
+
+def test_not_a_knot_coefficients_are_scipys_cubic_spline():
+    # reference library: scipy.interpolate.CubicSpline (default not-a-knot ends), values and slopes
+    # anywhere on an uneven grid, for several columns at once
+    from scipy.interpolate import CubicSpline
+
+    from lineshift.measure.profile import not_a_knot_coefficients
+
+    rng = np.random.default_rng(8)
+    x = np.cumsum(rng.uniform(0.5, 1.5, 23))
+    Y = rng.normal(size=(x.size, 3))
+    coef = not_a_knot_coefficients(x, Y)
+    q = rng.uniform(x[0], x[-1], 400)
+    j = np.clip(np.searchsorted(x, q, side="right") - 1, 0, x.size - 2)
+    t = (q - x[j])[:, None]
+    c = coef[:, j]
+    ref = CubicSpline(x, Y)
+    assert np.allclose(((c[0] * t + c[1]) * t + c[2]) * t + c[3], ref(q), rtol=0, atol=1e-12)
+    assert np.allclose((3 * c[0] * t + 2 * c[1]) * t + c[2], ref(q, 1), rtol=0, atol=1e-11)

@@ -24,7 +24,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-__all__ = ["BOTTOM", "TOP", "Bisector", "bisector", "order_velocities"]
+__all__ = ["BOTTOM", "TOP", "Bisector", "bisector", "not_a_knot_coefficients", "order_velocities"]
 
 TOP = (0.10, 0.40)
 BOTTOM = (0.55, 0.90)
@@ -51,38 +51,77 @@ def _side(v, y, levels, i_min, direction):
     return idx[j - 1], idx[j], found
 
 
+def not_a_knot_coefficients(x: np.ndarray, Y: np.ndarray) -> np.ndarray:
+    """Coefficients (4, n - 1, k) of the cubic splines through ``(x, Y[:, j])`` with not-a-knot ends
+    (the third derivative continuous at the second and the last-but-one point; de Boor 1978,
+    *A Practical Guide to Splines*, ch. IV): on ``[x_i, x_{i+1}]`` the spline of column ``j`` is
+    ``((c0 t + c1) t + c2) t + c3`` with ``t = x - x_i``.
+
+    The slopes at the points solve the usual tridiagonal system (one banded solve for every column),
+    in the form scipy.interpolate.CubicSpline uses, so the result is that class's to rounding
+    (tests/test_profile.py); without its set-up per call (~0.3 ms, twice per spectrum).  ``n >= 4``."""
+    from scipy.linalg import solve_banded
+
+    dx = np.diff(x)
+    slope = np.diff(Y, axis=0) / dx[:, None]
+    n = x.size
+    A = np.zeros((3, n))
+    A[1, 1:-1] = 2 * (dx[:-1] + dx[1:])
+    A[0, 2:] = dx[:-1]
+    A[-1, :-2] = dx[1:]
+    b = np.empty(Y.shape)
+    b[1:-1] = 3 * (dx[1:, None] * slope[:-1] + dx[:-1, None] * slope[1:])
+    d = x[2] - x[0]
+    A[1, 0], A[0, 1] = dx[1], d
+    b[0] = ((dx[0] + 2 * d) * dx[1] * slope[0] + dx[0] ** 2 * slope[1]) / d
+    d = x[-1] - x[-3]
+    A[1, -1], A[-1, -2] = dx[-2], d
+    b[-1] = (dx[-1] ** 2 * slope[-2] + (2 * d + dx[-1]) * dx[-2] * slope[-1]) / d
+    s = solve_banded((1, 1), A, b, overwrite_ab=True, overwrite_b=True, check_finite=False)
+    t = (s[:-1] + s[1:] - 2 * slope) / dx[:, None]
+    return np.stack((t / dx[:, None], (slope - s[:-1]) / dx[:, None] - t, s[:-1], Y[:-1]))
+
+
 def _bisector_velocities(v, y, c0, amp, depths, i_min):
     """Bisector velocities at fractional depths, from a cubic spline through the CCF points.
 
     A straight line between grid points makes a spurious span that depends on where the grid falls
     (~2 m/s for a 4.7 km/s-wide profile sampled every 0.8 km/s); the spline removes it.  The spline is
     linear in the data, ``S(x) = sum_i y_i B_i(x)``, so a crossing ``S(x*) = L`` responds as
-    ``dx*/dy_i = -B_i(x*) / S'(x*)`` and ``dx*/dL = 1 / S'(x*)``.
+    ``dx*/dy_i = -B_i(x*) / S'(x*)`` and ``dx*/dL = 1 / S'(x*)``.  The spline (not-a-knot, as
+    scipy.interpolate.CubicSpline's default) and its basis come from one banded solve
+    (:func:`not_a_knot_coefficients`); each crossing stays on its bracketing interval.
     """
-    from scipy.interpolate import CubicSpline
-
     levels = c0 - depths * amp
-    spline = CubicSpline(v, y)
-    basis = CubicSpline(v, np.eye(v.size))        # B_i(x) for every i at once
+    if v.size < 4:
+        return np.full(depths.size, np.nan), np.zeros((depths.size, v.size)), np.zeros(depths.size)
+    coef = not_a_knot_coefficients(v, np.column_stack((y, np.eye(v.size))))
     k = depths.size
-    # both sides at once (left: the first k entries, right: the last k): one spline call per step
+    # both sides at once (left: the first k entries, right: the last k)
     a_l, b_l, found_l = _side(v, y, levels, i_min, -1)
     a_r, b_r, found_r = _side(v, y, levels, i_min, 1)
     a, b = np.concatenate((a_l, a_r)), np.concatenate((b_l, b_r))
     lv = np.concatenate((levels, levels))
     ok2 = np.concatenate((found_l, found_r)) & (y[b] != y[a])
-    # start from the straight-line crossing, then Newton on the spline (bracketed in [v_a, v_b])
+    # start from the straight-line crossing, then Newton on the spline (bracketed in [v_a, v_b], so
+    # on the spline's piece of that interval)
     dy = np.where(y[b] != y[a], y[b] - y[a], 1.0)
     x = v[a] + (lv - y[a]) / dy * (v[b] - v[a])
-    lo, hi = np.minimum(v[a], v[b]), np.maximum(v[a], v[b])
+    j = np.minimum(a, b)
+    lo, hi = v[j], v[j + 1]
+    c3, c2, c1, c0_ = coef[0, j, 0], coef[1, j, 0], coef[2, j, 0], coef[3, j, 0]
     for _ in range(8):
-        d1 = spline(x, 1)
-        step = np.where(d1 != 0, (spline(x) - lv) / np.where(d1 != 0, d1, 1.0), 0.0)
+        t = x - lo
+        d1 = (3 * c3 * t + 2 * c2) * t + c1
+        step = np.where(d1 != 0, (((c3 * t + c2) * t + c1) * t + c0_ - lv) / np.where(d1 != 0, d1, 1.0), 0.0)
         x = np.clip(x - step, lo, hi)
-    d1 = spline(x, 1)
+    t = x - lo
+    d1 = (3 * c3 * t + 2 * c2) * t + c1
     ok2 &= d1 != 0
     d1 = np.where(d1 != 0, d1, 1.0)
-    bx = basis(x)
+    cb = coef[:, j, 1:]                                   # (4, crossings, n): B_i's pieces
+    tt = t[:, None]
+    bx = ((cb[0] * tt + cb[1]) * tt + cb[2]) * tt + cb[3]
     ok = np.ones(k, dtype=bool) & ok2[:k] & ok2[k:]
     vel = np.zeros(k) + 0.5 * x[:k] + 0.5 * x[k:]
     sens = np.zeros((k, v.size)) + 0.5 * (-bx[:k] / d1[:k, None]) + 0.5 * (-bx[k:] / d1[k:, None])
