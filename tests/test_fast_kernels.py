@@ -281,6 +281,28 @@ def test_compiled_preparation_equals_the_numpy_form():
     np.testing.assert_array_equal(pixel_edges(np.vstack([wave, wave + 1])), [pixel_edges(wave), pixel_edges(wave + 1)])
 
 
+@pytest.mark.parametrize("seed", [4, 5, 6])
+def test_compiled_pixel_screen_gives_the_same_pixels(seed):
+    # the one compiled pass of the screening against bad_pixels and find_spikes' array steps: the
+    # same bad pixels and spikes exactly, on hostile orders (spikes at the ends, NaN runs, zero
+    # variance) with non-positive counts and a clipped flat top added
+    pytest.importorskip("numba")
+    from lineshift.measure import kernels
+    from lineshift.measure.badpixels import bad_pixels, screened_bad_pixels
+
+    rng = np.random.default_rng(seed)
+    flux, var, _ = _orders(rng, rows=6, n=1500)
+    flux[4, 200:205] = -3.0                              # non-positive counts
+    top = np.nanmax(flux[5]) * 1.01
+    flux[5, 700:706] = top                               # a saturated run clipped to one value
+    flux[5, 900:903] = top
+    base_bad, bad, tie, cand = kernels.pixel_screen(flux, var, 3, 8.0, 0.5)
+    assert tie[5] and bad.shape == flux.shape
+    np.testing.assert_array_equal(screened_bad_pixels(flux, bad.copy(), tie), bad_pixels(flux, var))
+    np.testing.assert_array_equal(find_spikes(flux, var, screened=(base_bad, cand)), find_spikes(flux, var))
+    assert find_spikes(flux, var).sum() > 20             # the check has spikes to find
+
+
 def test_template_run_with_kept_contributions_equals_recomputing_them(sample_set, monkeypatch):
     # the co-add keeps each input's screening and contribution for its leave-one-out fit; recomputed
     # (nothing kept) they are the same numbers, so every row is the same

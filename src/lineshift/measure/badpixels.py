@@ -16,7 +16,7 @@ from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["bad_pixels", "clipped_pixels"]
+__all__ = ["bad_pixels", "clipped_pixels", "screened_bad_pixels"]
 
 
 def clipped_pixels(flux: np.ndarray, *, top: float = 0.99, max_fraction: float = 0.5) -> np.ndarray:
@@ -72,11 +72,24 @@ def bad_pixels(flux: np.ndarray, var: np.ndarray | None = None, *, saturation: f
             bad |= flux >= saturation
         if clipped:
             bad |= clipped_pixels(flux)
+    return _grown(bad, grow)
+
+
+def _grown(bad: np.ndarray, grow: int) -> np.ndarray:
+    """``bad`` widened by ``grow`` pixels on both sides along the last axis (each row on its own)."""
     if grow > 0 and bad.any():
-        # widen along the last axis (each row of a 2-D array on its own)
         out = bad.copy()
         for k in range(1, grow + 1):
             out[..., :-k] |= bad[..., k:]
             out[..., k:] |= bad[..., :-k]
         bad = out
     return bad
+
+
+def screened_bad_pixels(flux: np.ndarray, bad: np.ndarray, tie: np.ndarray, *, grow: int = 2) -> np.ndarray:
+    """:func:`bad_pixels` ``(flux, var)`` (defaults) of a block of orders from the compiled screen of
+    :func:`.kernels.pixel_screen`: its ``bad`` (before growing) and ``tie`` rows, the only rows
+    :func:`clipped_pixels` can mark."""
+    for k in np.flatnonzero(tie):
+        bad[k] |= clipped_pixels(flux[k])
+    return _grown(bad, grow)

@@ -30,7 +30,7 @@ from types import SimpleNamespace
 import numpy as np
 
 __all__ = ["WARMUP_SPECTRA", "ccf_pairs", "compiled", "compiled_always", "continuum_iterations", "count_spectrum",
-           "cumsums", "prepare_finish",
+           "cumsums", "pixel_screen", "prepare_finish",
            "term_variances"]
 
 _COMPILED: SimpleNamespace | bool | None = None
@@ -159,6 +159,50 @@ WARMUP_SPECTRA = 64
 _prepared = 0
 
 
+def _pixel_screen(flux, var, h, nsigma, contrast):   # pragma: no cover (compiled)
+    rows, n = flux.shape
+    size = rows * n
+    width = 2 * h + 1
+    base_bad = np.empty((rows, n), dtype=np.bool_)
+    bad = np.empty((rows, n), dtype=np.bool_)
+    tie = np.zeros(rows, dtype=np.bool_)
+    p = np.empty(size + 2 * h)                  # the rows laid end to end, the ends extended by their values
+    for r in range(rows):
+        for i in range(n):
+            f = flux[r, i]
+            v = var[r, i]
+            bb = not (np.isfinite(f) and np.isfinite(v) and v > 0)
+            base_bad[r, i] = bb
+            bad[r, i] = bb or not f > 0
+            p[h + r * n + i] = np.inf if bb else f
+            if i > 0 and f == flux[r, i - 1] and np.isfinite(f):
+                tie[r] = True
+    for t in range(h):
+        p[t] = p[h]
+        p[h + size + t] = p[h + size - 1]
+    # running minimum over width neighbours by doubling spans (as outliers._running_min does)
+    m = p.size
+    span = 1
+    while 2 * span <= width:
+        m -= span
+        for t in range(m):
+            p[t] = min(p[t], p[t + span])
+        span *= 2
+    cand = np.empty(size, dtype=np.intp)
+    nc = 0
+    for r in range(rows):
+        for i in range(n):
+            if base_bad[r, i]:
+                continue
+            q = r * n + i
+            lo = min(p[q], p[q + width - span]) if span < width else p[q]
+            lift = flux[r, i] - lo
+            if lift > contrast * max(lo, 0.0) and lift > nsigma * np.sqrt(var[r, i]):
+                cand[nc] = q
+                nc += 1
+    return base_bad, bad, tie, cand[:nc]
+
+
 def count_spectrum() -> None:
     """Note one more prepared spectrum in this process (:data:`WARMUP_SPECTRA`)."""
     global _prepared
@@ -180,7 +224,8 @@ def _load() -> SimpleNamespace | None:
             _solve_small = jit(_solve_small)   # called from a kernel: numba needs it compiled too
             _COMPILED = SimpleNamespace(ccf_pairs=jit(_ccf_pairs), term_variances=jit(_term_variances),
                                         cumsums=jit(_cumsums), prepare_finish=jit(_prepare_finish),
-                                        continuum_iterations=jit(_continuum_iterations))
+                                        continuum_iterations=jit(_continuum_iterations),
+                                        pixel_screen=jit(_pixel_screen))
     return _COMPILED or None
 
 
@@ -394,6 +439,18 @@ def continuum_iterations(flux, var, good, V, VV, clip_low, clip_high, max_iter):
     b = (g * np.where(good, flux, 0.0)) @ V
     return _kernels().continuum_iterations(flux, var, good, np.ascontiguousarray(V), A, b, float(clip_low),
                                            float(clip_high), int(max_iter))
+
+
+def pixel_screen(flux, var, max_width, nsigma, contrast):
+    """One pass over a block of orders (rows) for the screening of :mod:`.badpixels` and :mod:`.outliers`:
+    (``base_bad``: non-finite flux or variance or variance <= 0; ``bad``: that or flux <= 0, before
+    growing; ``tie``: rows where two finite neighbours are equal, the only rows that can have a clipped
+    flat top; ``cand``: the flat indices of :func:`.outliers.find_spikes`' candidates, the pixels that
+    stand out of the running minimum of ``2 max_width + 1`` neighbours by ``nsigma`` noise sigma and
+    ``contrast`` times that minimum).  The plain forms are the array steps in those modules; the same
+    comparisons on the same values, so the same pixels."""
+    return _kernels().pixel_screen(np.ascontiguousarray(flux, dtype=float), np.ascontiguousarray(var, dtype=float),
+                                   int(max_width), float(nsigma), float(contrast))
 
 
 def prepare_finish(f, v, good, cont, mc, mv, alpha, floor):

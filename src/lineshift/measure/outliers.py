@@ -197,7 +197,8 @@ def _spike_runs(flux, var, bad, spikes, high, max_width, nsigma, contrast) -> tu
 
 def find_spikes(flux: np.ndarray, var: np.ndarray, good: np.ndarray | None = None, *,
                 model: np.ndarray | None = None, max_width: int = 3, nsigma: float = 8.0,
-                contrast: float = 0.5, grow: int = 1, max_iter: int = 5) -> np.ndarray:
+                contrast: float = 0.5, grow: int = 1, max_iter: int = 5,
+                screened: tuple[np.ndarray, np.ndarray] | None = None) -> np.ndarray:
     """Boolean array marking cosmic-ray / hot-pixel pixels (plus ``grow`` neighbours each side).
 
     ``model`` is the expected flux in the same units as ``flux`` (e.g. the scaled, shifted
@@ -209,14 +210,22 @@ def find_spikes(flux: np.ndarray, var: np.ndarray, good: np.ndarray | None = Non
 
     The arrays are 1-D (one spectrum) or 2-D (one order per row, each row searched on its own).
     Vectorised over rows and runs; :func:`find_spikes_reference` is the plain form it must equal.
+    ``screened`` = (``base_bad``, candidates) of :func:`.kernels.pixel_screen` on the same 2-D arrays
+    (no ``good``, no ``model``, the same ``max_width``, ``nsigma``, ``contrast``) replaces the first,
+    whole-array step below with the compiled pass that gives the same pixels.
     """
     flux = np.asarray(flux, dtype=float)
     one = flux.ndim == 1
     flux = np.atleast_2d(flux)
     var = np.atleast_2d(np.asarray(var, dtype=float))
-    base_bad = ~np.isfinite(flux) | ~np.isfinite(var) | (var <= 0)
-    if good is not None:
-        base_bad |= ~np.atleast_2d(np.asarray(good, dtype=bool))
+    if screened is not None:
+        if good is not None or model is not None:
+            raise ValueError("screened candidates are for a search without good or model")
+        base_bad, cand = screened
+    else:
+        base_bad = ~np.isfinite(flux) | ~np.isfinite(var) | (var <= 0)
+        if good is not None:
+            base_bad |= ~np.atleast_2d(np.asarray(good, dtype=bool))
     spikes = np.zeros(flux.shape, dtype=bool)
     n = flux.shape[1]
     if model is None:
@@ -225,12 +234,13 @@ def find_spikes(flux: np.ndarray, var: np.ndarray, good: np.ndarray | None = Non
         # The minimum (over the good pixels at the start, a superset of those left later, and
         # across row ends, a superset again) is cheap; the median is taken only where it can matter,
         # and only there can a pixel be high (the reference is NaN elsewhere).
-        with np.errstate(invalid="ignore", divide="ignore"):
-            sig = nsigma * np.sqrt(var)
-        low = _running_min(np.where(base_bad, np.inf, flux).ravel(), 2 * max_width + 1).reshape(flux.shape)
-        with np.errstate(invalid="ignore"):
-            lift = flux - low
-            cand = np.flatnonzero((lift > sig) & (lift > contrast * np.maximum(low, 0.0)) & ~base_bad)
+        if screened is None:
+            with np.errstate(invalid="ignore", divide="ignore"):
+                sig = nsigma * np.sqrt(var)
+            low = _running_min(np.where(base_bad, np.inf, flux).ravel(), 2 * max_width + 1).reshape(flux.shape)
+            with np.errstate(invalid="ignore"):
+                lift = flux - low
+                cand = np.flatnonzero((lift > sig) & (lift > contrast * np.maximum(low, 0.0)) & ~base_bad)
         cand_r, cand_i = cand // n, cand % n
         sig_c = nsigma * np.sqrt(var[cand_r, cand_i])
         # each candidate's window of good pixels (NaN for bad ones and beyond the row's ends)

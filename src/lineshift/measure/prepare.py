@@ -25,7 +25,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from lineshift.measure import kernels
-from lineshift.measure.badpixels import bad_pixels
+from lineshift.measure.badpixels import bad_pixels, screened_bad_pixels
 from lineshift.measure.outliers import find_spikes
 from lineshift.model import C_MS, LineMask, Order, Spectrum
 
@@ -210,14 +210,20 @@ def _finish_numpy(f, v, good, cont, mc, mv, alpha, floor):
 def _prepare_block(orders: list[Order], degree: int, compiled: bool | None = None) -> list[PreparedOrder | None]:
     """Prepare orders of equal length together (array operations across orders).
 
-    ``compiled``: the last per-pixel step by :func:`.kernels.prepare_finish` (default: when numba is
-    there) or by :func:`_finish_numpy`; the results are the same to the last bit."""
+    ``compiled``: the screening's first pass by :func:`.kernels.pixel_screen` and the last per-pixel
+    step by :func:`.kernels.prepare_finish` (default: when the compiled kernels are in use), or
+    :func:`.badpixels.bad_pixels`, :func:`.outliers.find_spikes` and :func:`_finish_numpy`; the results
+    are the same to the last bit."""
     flux = np.vstack([o.flux for o in orders])
     var = np.vstack([o.var for o in orders])
     n = flux.shape[1]
     # bad pixels grown by the reach of a reduction's interpolation, and cosmic-ray / hot-pixel
     # spikes against a running median (measure/badpixels.py, measure/outliers.py)
-    good = ~bad_pixels(flux, var) & ~find_spikes(flux, var)
+    if kernels.compiled() is not None if compiled is None else compiled:
+        base_bad, bad, tie, cand = kernels.pixel_screen(flux, var, 3, 8.0, 0.5)   # find_spikes' defaults
+        good = ~screened_bad_pixels(flux, bad, tie) & ~find_spikes(flux, var, screened=(base_bad, cand))
+    else:
+        good = ~bad_pixels(flux, var) & ~find_spikes(flux, var)
     blaze = np.ones_like(flux)
     given = [k for k, o in enumerate(orders) if o.blaze is not None]
     if given:
