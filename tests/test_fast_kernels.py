@@ -475,3 +475,45 @@ def test_compiled_continuum_iterations_equal_the_array_form(seed):
     np.testing.assert_allclose(fast[3][5], plain[3][5], rtol=1e-6, atol=0)   # its residuals' square: twice the digits
     assert 0 < plain[1].sum() < good[:, ::4].sum()        # clipping did remove pixels
     np.testing.assert_array_equal(fast[0][4], 0.0)
+
+
+def test_rows_view_only_for_consecutive_rows_of_one_buffer():
+    # numpy.concatenate is the reference: the view must hold the same values, and anything that is
+    # not consecutive rows of one buffer must be left to concatenate (None)
+    from lineshift.measure.prepare import joined, rows_view
+
+    a = np.arange(24.0).reshape(4, 6)
+    rows = [a[0], a[1], a[2]]
+    np.testing.assert_array_equal(joined(rows), np.concatenate(rows))
+    assert rows_view(rows) is not None and not rows_view(rows).flags.writeable
+    assert rows_view([a[0], a[2]]) is None                      # a gap
+    assert rows_view([a[1], a[0]]) is None                      # out of order
+    assert rows_view([a[0], a[1, :5]]) is None                  # unequal lengths
+    assert rows_view([a[0], np.arange(24.0).reshape(4, 6)[1]]) is None   # another buffer
+    assert rows_view([a[:, 0], a[:, 1]]) is None                # not contiguous
+    np.testing.assert_array_equal(joined([a[0], a[2]]), np.concatenate([a[0], a[2]]))
+
+
+def test_compiled_snr_sample_and_pixel_width_equal_the_per_order_forms(monkeypatch):
+    # the per-order loops (np.flatnonzero(good)[::4], np.concatenate) are the plain forms
+    pytest.importorskip("numba")
+    from lineshift.measure import kernels
+    from lineshift.measure.mask_engine import _good_snr, pixel_velocity_width
+    from lineshift.measure.prepare import _prepare_block
+    from lineshift.model import Order
+
+    rng = np.random.default_rng(21)
+    flux, var, _ = _orders(rng, rows=5, n=1200)
+    wave = np.vstack([5000.0 + 30.0 * k + 0.02 * np.arange(1200) * (1 + 1e-3 * k) for k in range(5)])
+    orders = _prepare_block([Order(wave[k], flux[k], var[k], index=k) for k in range(5)], 4)
+    from lineshift.measure.prepare import rows_view
+
+    assert all(rows_view([getattr(o, a) for o in orders]) is not None for a in ("flux", "var", "good", "edges", "wave"))
+    monkeypatch.setenv("LINESHIFT_JIT", "1")
+    fast_snr, fast_width = _good_snr(orders), pixel_velocity_width(orders)
+    monkeypatch.setenv("LINESHIFT_JIT", "0")
+    copies = [type(o)(o.wave.copy(), o.edges.copy(), o.flux.copy(), o.var.copy(), o.weight, o.good.copy(), o.index)
+              for o in orders]                                   # no longer rows of one block
+    np.testing.assert_array_equal(fast_snr, _good_snr(copies))
+    assert fast_width == pixel_velocity_width(copies)
+    assert kernels.good_snr(np.ones((1, 9)), np.ones((1, 9)), np.ones((1, 9), dtype=bool), 4).size == 3

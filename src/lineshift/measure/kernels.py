@@ -30,7 +30,7 @@ from types import SimpleNamespace
 import numpy as np
 
 __all__ = ["WARMUP_SPECTRA", "ccf_pairs", "compiled", "compiled_always", "continuum_iterations", "count_spectrum",
-           "cumsums", "pixel_screen", "prepare_finish",
+           "cumsums", "good_snr", "pixel_screen", "prepare_finish",
            "term_variances"]
 
 _COMPILED: SimpleNamespace | bool | None = None
@@ -203,6 +203,21 @@ def _pixel_screen(flux, var, h, nsigma, contrast):   # pragma: no cover (compile
     return base_bad, bad, tie, cand[:nc]
 
 
+def _good_snr(flux, var, good, step):   # pragma: no cover (compiled)
+    rows, n = flux.shape
+    out = np.empty(rows * n)
+    m = 0
+    for r in range(rows):
+        c = 0
+        for i in range(n):
+            if good[r, i]:
+                if c % step == 0:
+                    out[m] = flux[r, i] / np.sqrt(var[r, i])
+                    m += 1
+                c += 1
+    return out[:m]
+
+
 def count_spectrum() -> None:
     """Note one more prepared spectrum in this process (:data:`WARMUP_SPECTRA`)."""
     global _prepared
@@ -225,7 +240,7 @@ def _load() -> SimpleNamespace | None:
             _COMPILED = SimpleNamespace(ccf_pairs=jit(_ccf_pairs), term_variances=jit(_term_variances),
                                         cumsums=jit(_cumsums), prepare_finish=jit(_prepare_finish),
                                         continuum_iterations=jit(_continuum_iterations),
-                                        pixel_screen=jit(_pixel_screen))
+                                        pixel_screen=jit(_pixel_screen), good_snr=jit(_good_snr))
     return _COMPILED or None
 
 
@@ -439,6 +454,12 @@ def continuum_iterations(flux, var, good, V, VV, clip_low, clip_high, max_iter):
     b = (g * np.where(good, flux, 0.0)) @ V
     return _kernels().continuum_iterations(flux, var, good, np.ascontiguousarray(V), A, b, float(clip_low),
                                            float(clip_high), int(max_iter))
+
+
+def good_snr(flux, var, good, step):
+    """``flux / sqrt(var)`` at every ``step``-th good pixel of each row, rows one after another (the
+    plain form: ``np.flatnonzero(good_row)[::step]`` row by row, in :func:`.mask_engine.measure_mask`)."""
+    return _kernels().good_snr(flux, var, good, int(step))
 
 
 def pixel_screen(flux, var, max_width, nsigma, contrast):

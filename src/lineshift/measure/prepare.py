@@ -29,8 +29,8 @@ from lineshift.measure.badpixels import bad_pixels, screened_bad_pixels
 from lineshift.measure.outliers import find_spikes
 from lineshift.model import C_MS, LineMask, Order, Spectrum
 
-__all__ = ["PreparedOrder", "fit_continuum", "pixel_edges", "prepare_order", "prepare_spectrum",
-           "reject_telluric_lines"]
+__all__ = ["PreparedOrder", "fit_continuum", "joined", "pixel_edges", "prepare_order", "prepare_spectrum",
+           "reject_telluric_lines", "rows_view"]
 
 
 @dataclass(frozen=True)
@@ -65,6 +65,32 @@ def pixel_edges(wave: np.ndarray) -> np.ndarray:
     mid = 0.5 * (wave[..., 1:] + wave[..., :-1])
     return np.concatenate((wave[..., :1] - (mid[..., :1] - wave[..., :1]), mid,
                            wave[..., -1:] + (wave[..., -1:] - mid[..., -1:])), axis=-1)
+
+
+def rows_view(arrays: list[np.ndarray]) -> np.ndarray | None:
+    """The 1-D ``arrays`` as the rows of one 2-D array without a copy, when they are consecutive,
+    equally long rows of one buffer (as :func:`prepare_spectrum` leaves the orders of a block when
+    every one is kept); None otherwise."""
+    if not arrays:
+        return None
+    a0 = arrays[0]
+    owner = a0.base
+    if owner is None or a0.ndim != 1 or not a0.flags.c_contiguous:
+        return None
+    n, nbytes = a0.size, a0.nbytes
+    p0 = a0.__array_interface__["data"][0]
+    for k, a in enumerate(arrays):
+        if (a.base is not owner or a.size != n or a.dtype != a0.dtype or not a.flags.c_contiguous
+                or a.__array_interface__["data"][0] != p0 + k * nbytes):
+            return None
+    return np.lib.stride_tricks.as_strided(a0, shape=(len(arrays), n), strides=(nbytes, a0.itemsize),
+                                           writeable=False)
+
+
+def joined(arrays: list[np.ndarray]) -> np.ndarray:
+    """``np.concatenate(arrays)``: a read-only view when :func:`rows_view` finds them laid end to end."""
+    rows = rows_view(arrays)
+    return np.concatenate(arrays) if rows is None else rows.reshape(-1)
 
 
 _DESIGN_CACHE: dict[tuple[int, int], np.ndarray] = {}
@@ -260,7 +286,8 @@ def _prepare_block(orders: list[Order], degree: int, compiled: bool | None = Non
     else:
         good, fn, vn, q = _finish_numpy(f, v, good, cont, mc, mv, alpha, floor)
     usable = (good.sum(axis=1) >= max(32, 4 * (degree + 1))) & (used.sum(axis=1) * stride >= 10)
-    return [PreparedOrder(o.wave, pixel_edges(o.wave), fn[k], vn[k], q[k], good[k], o.index, cont[k]) if usable[k]
+    edges = pixel_edges(np.vstack([o.wave for o in orders]))   # one block: rows_view finds the rows again
+    return [PreparedOrder(o.wave, edges[k], fn[k], vn[k], q[k], good[k], o.index, cont[k]) if usable[k]
             else None
             for k, o in enumerate(orders)]
 
