@@ -477,21 +477,32 @@ def test_compiled_continuum_iterations_equal_the_array_form(seed):
     np.testing.assert_array_equal(fast[0][4], 0.0)
 
 
-def test_rows_view_only_for_consecutive_rows_of_one_buffer():
-    # numpy.concatenate is the reference: the view must hold the same values, and anything that is
-    # not consecutive rows of one buffer must be left to concatenate (None)
-    from lineshift.measure.prepare import joined, rows_view
+def test_block_rows_only_for_consecutive_orders_that_still_hold_the_block():
+    # numpy.concatenate of the orders' own arrays is the reference; anything that is not consecutive
+    # rows of the block (a gap, another order, an order made again with a new array, one that crossed
+    # a process) must be left to the loop (None)
+    import pickle
+    from dataclasses import replace
 
-    a = np.arange(24.0).reshape(4, 6)
-    rows = [a[0], a[1], a[2]]
-    np.testing.assert_array_equal(joined(rows), np.concatenate(rows))
-    assert rows_view(rows) is not None and not rows_view(rows).flags.writeable
-    assert rows_view([a[0], a[2]]) is None                      # a gap
-    assert rows_view([a[1], a[0]]) is None                      # out of order
-    assert rows_view([a[0], a[1, :5]]) is None                  # unequal lengths
-    assert rows_view([a[0], np.arange(24.0).reshape(4, 6)[1]]) is None   # another buffer
-    assert rows_view([a[:, 0], a[:, 1]]) is None                # not contiguous
-    np.testing.assert_array_equal(joined([a[0], a[2]]), np.concatenate([a[0], a[2]]))
+    from lineshift.measure.prepare import _prepare_block, block_rows, joined
+    from lineshift.model import Order
+
+    rng = np.random.default_rng(22)
+    flux, var, _ = _orders(rng, rows=4, n=800)
+    wave = 5000.0 + 0.02 * np.arange(800)
+    orders = _prepare_block([Order(wave + 20.0 * k, flux[k], var[k], index=k) for k in range(4)], 4)
+    for name in ("wave", "edges", "flux", "var", "weight", "good", "continuum"):
+        np.testing.assert_array_equal(joined(orders, name), np.concatenate([getattr(o, name) for o in orders]))
+        np.testing.assert_array_equal(block_rows(orders[1:3], name), np.vstack([getattr(o, name) for o in orders[1:3]]))
+    assert block_rows([orders[0], orders[2]], "flux") is None             # a gap
+    assert block_rows([orders[1], orders[0]], "flux") is None             # out of order
+    assert block_rows([orders[0], replace(orders[1], flux=orders[1].flux * 2)], "flux") is None
+    assert block_rows([orders[0], replace(orders[1], flux=orders[1].flux * 2)], "var") is not None
+    other = _prepare_block([Order(wave, flux[1], var[1], index=1)], 4)
+    assert block_rows([orders[0], other[0]], "flux") is None              # another block
+    sent = pickle.loads(pickle.dumps(orders))
+    assert block_rows(sent, "flux") is None
+    np.testing.assert_array_equal(joined(sent, "flux"), joined(orders, "flux"))
 
 
 def test_compiled_snr_sample_and_pixel_width_equal_the_per_order_forms(monkeypatch):
@@ -506,9 +517,9 @@ def test_compiled_snr_sample_and_pixel_width_equal_the_per_order_forms(monkeypat
     flux, var, _ = _orders(rng, rows=5, n=1200)
     wave = np.vstack([5000.0 + 30.0 * k + 0.02 * np.arange(1200) * (1 + 1e-3 * k) for k in range(5)])
     orders = _prepare_block([Order(wave[k], flux[k], var[k], index=k) for k in range(5)], 4)
-    from lineshift.measure.prepare import rows_view
+    from lineshift.measure.prepare import block_rows
 
-    assert all(rows_view([getattr(o, a) for o in orders]) is not None for a in ("flux", "var", "good", "edges", "wave"))
+    assert all(block_rows(orders, a) is not None for a in ("flux", "var", "good", "edges", "wave"))
     monkeypatch.setenv("LINESHIFT_JIT", "1")
     fast_snr, fast_width = _good_snr(orders), pixel_velocity_width(orders)
     monkeypatch.setenv("LINESHIFT_JIT", "0")
@@ -517,3 +528,22 @@ def test_compiled_snr_sample_and_pixel_width_equal_the_per_order_forms(monkeypat
     np.testing.assert_array_equal(fast_snr, _good_snr(copies))
     assert fast_width == pixel_velocity_width(copies)
     assert kernels.good_snr(np.ones((1, 9)), np.ones((1, 9)), np.ones((1, 9), dtype=bool), 4).size == 3
+
+
+@pytest.mark.parametrize("compiled", [True, False])
+def test_rejected_pixel_count_of_the_blocks_equals_counting_against_the_file(compiled):
+    # the count the output's n_rejected_pixels reports, against the plain count over the file's arrays
+    if compiled:
+        pytest.importorskip("numba")
+    from lineshift.measure.prepare import _prepare_block, rejected_pixels
+    from lineshift.model import Order
+
+    rng = np.random.default_rng(23)
+    flux, var, _ = _orders(rng, rows=5, n=900)
+    raw = [Order(5000.0 + 20.0 * k + 0.02 * np.arange(900), flux[k], var[k], index=k) for k in range(5)]
+    orders = [o for o in _prepare_block(raw, 4, compiled=compiled) if o is not None]
+    plain = 0
+    for p in orders:
+        o = raw[p.index]
+        plain += int(np.count_nonzero(np.isfinite(o.flux) & np.isfinite(o.var) & (o.var > 0) & ~p.good))
+    assert plain > 50 and rejected_pixels(orders) == plain

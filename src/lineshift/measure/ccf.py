@@ -24,7 +24,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from lineshift.measure import kernels
-from lineshift.measure.prepare import PreparedOrder, joined, rows_view
+from lineshift.measure.prepare import PreparedOrder, block_rows, joined
 from lineshift.model import C_MS, LineMask
 
 __all__ = ["CorrelationData", "box_adjoint", "box_integrals", "correlate", "reference_ccf"]
@@ -219,8 +219,9 @@ def _compiled_variances(terms: list[_OrderTerms], sens: np.ndarray, own: np.ndar
     x = np.concatenate([t.edges_x for t in terms]) if len(terms) > 1 else terms[0].edges_x
     lstart = np.concatenate(([0], np.cumsum([t.lines.size for t in terms]))).astype(np.intp)
     pstart = np.concatenate(([0], np.cumsum([t.order.flux.size for t in terms]))).astype(np.intp)
-    q = joined([t.order.weight for t in terms])
-    qv = q * q * joined([t.order.var for t in terms])
+    kept = [t.order for t in terms]
+    q = joined(kept, "weight")
+    qv = q * q * joined(kept, "var")
     w = np.concatenate([t.weights for t in terms])
     return kernels.term_variances(np.ascontiguousarray(x, dtype=float), terms[0].r, w, lstart, pstart, qv,
                                   np.ascontiguousarray(sens), None if own is None else np.ascontiguousarray(own))
@@ -263,14 +264,14 @@ class _Orders:
 
     def __init__(self, orders: list[PreparedOrder], compiled: bool):
         self.orders = tuple(orders)
-        good2 = rows_view([o.good for o in orders])
+        good2 = block_rows(orders, "good")
         if good2 is not None and good2.shape[1] and good2.any(axis=1).all():   # a block's rows: no loop
             n = good2.shape[1]
             first = np.argmax(good2, axis=1)
             last = n - 1 - np.argmax(good2[:, ::-1], axis=1)
             count = np.count_nonzero(good2, axis=1)
             k = np.arange(len(orders))
-            edges2 = rows_view([o.edges for o in orders])
+            edges2 = block_rows(orders, "edges")
             lo = edges2[k, first] if edges2 is not None else [o.edges[i] for o, i in zip(orders, first, strict=True)]
             hi = edges2[k, last + 1] if edges2 is not None else [o.edges[i + 1] for o, i in zip(orders, last,
                                                                                                strict=True)]
@@ -286,10 +287,10 @@ class _Orders:
         self.sums: list | None = None
         self.packed: tuple | None = None
         if compiled:
-            edges = joined([o.edges for o in orders])
+            edges = joined(orders, "edges")
             estart = np.concatenate(([0], np.cumsum([o.edges.size for o in orders]))).astype(np.intp)
-            gden = joined([o.weight for o in orders])
-            gnum = joined([o.flux for o in orders]) * gden
+            gden = joined(orders, "weight")
+            gnum = joined(orders, "flux") * gden
             self.packed = (edges, estart, kernels.cumsums(gnum, estart), gnum, kernels.cumsums(gden, estart), gden)
         else:
             self.sums = []

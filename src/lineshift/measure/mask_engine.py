@@ -18,7 +18,7 @@ from lineshift.linefit import weighted_line
 from lineshift.measure import kernels
 from lineshift.measure.ccf import correlate
 from lineshift.measure.peak import fit_gaussian
-from lineshift.measure.prepare import PreparedOrder, rows_view
+from lineshift.measure.prepare import PreparedOrder, block_rows
 from lineshift.measure.profile import bisector, order_velocities
 from lineshift.measure.recentre import line_moments
 from lineshift.model import C_MS, CCFResult, LineMask
@@ -64,7 +64,7 @@ CLEAR_FWHM = 2.0
 def pixel_velocity_width(orders: list[PreparedOrder]) -> float:
     """Median width of one pixel in velocity, m/s (from every 8th pixel: plenty for a median)."""
     # np.diff(o.edges)[::8] without the differences left out; a block's rows all at once
-    E, W = rows_view([o.edges for o in orders]), rows_view([o.wave for o in orders])
+    E, W = block_rows(orders, "edges"), block_rows(orders, "wave")
     if E is not None and W is not None:
         return float(np.median(C_MS * (E[:, 1::8] - E[:, :-1:8]) / W[:, ::8]))
     return float(np.median(np.concatenate([C_MS * (o.edges[1::8] - o.edges[:-1:8]) / o.wave[::8] for o in orders])))
@@ -73,7 +73,7 @@ def pixel_velocity_width(orders: list[PreparedOrder]) -> float:
 def _good_snr(orders: list[PreparedOrder]) -> np.ndarray:
     """flux / sigma at every 4th good pixel of each order (plenty for the median SNR per pixel)."""
     if kernels.compiled() is not None:
-        F, V, G = (rows_view([getattr(o, a) for o in orders]) for a in ("flux", "var", "good"))
+        F, V, G = (block_rows(orders, a) for a in ("flux", "var", "good"))
         if F is not None and V is not None and G is not None:
             return kernels.good_snr(F, V, G, 4)
     out = []

@@ -20,7 +20,7 @@ Photon weighting
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 
@@ -29,8 +29,8 @@ from lineshift.measure.badpixels import bad_pixels, screened_bad_pixels
 from lineshift.measure.outliers import find_spikes
 from lineshift.model import C_MS, LineMask, Order, Spectrum
 
-__all__ = ["PreparedOrder", "fit_continuum", "joined", "pixel_edges", "prepare_order", "prepare_spectrum",
-           "reject_telluric_lines", "rows_view"]
+__all__ = ["OrderBlock", "PreparedOrder", "block_rows", "fit_continuum", "joined", "pixel_edges", "prepare_order",
+           "prepare_spectrum", "reject_telluric_lines", "rejected_pixels"]
 
 
 @dataclass(frozen=True)
@@ -57,6 +57,9 @@ class PreparedOrder:
     good: np.ndarray
     index: int
     continuum: np.ndarray | None = None
+    #: the block of orders prepared together that this order's arrays are row ``row`` of (:func:`block_rows`)
+    block: OrderBlock | None = field(default=None, repr=False, compare=False)
+    row: int = field(default=-1, repr=False, compare=False)
 
 
 def pixel_edges(wave: np.ndarray) -> np.ndarray:
@@ -67,30 +70,60 @@ def pixel_edges(wave: np.ndarray) -> np.ndarray:
                            wave[..., -1:] + (wave[..., -1:] - mid[..., -1:])), axis=-1)
 
 
-def rows_view(arrays: list[np.ndarray]) -> np.ndarray | None:
-    """The 1-D ``arrays`` as the rows of one 2-D array without a copy, when they are consecutive,
-    equally long rows of one buffer (as :func:`prepare_spectrum` leaves the orders of a block when
-    every one is kept); None otherwise."""
-    if not arrays:
+class OrderBlock:
+    """The 2-D arrays (one row per order) that a block of prepared orders are rows of, and the row
+    arrays themselves, so that code working on all the orders of a spectrum can take a whole block
+    at once instead of looping and concatenating (:func:`block_rows`)."""
+
+    __slots__ = ("arrays", "rows")
+
+    def __init__(self, arrays: dict[str, np.ndarray], rows: dict[str, list[np.ndarray]]):
+        self.arrays = arrays
+        self.rows = rows
+
+    def __reduce__(self):
+        # an order sent to another process carries its own arrays (pickled apart from any block), so a
+        # block there could not recognise them: it travels empty and block_rows falls back to loops
+        return (OrderBlock, ({}, {}))
+
+
+def block_rows(orders: list[PreparedOrder], name: str) -> np.ndarray | None:
+    """The attribute ``name`` of ``orders`` as the rows of one 2-D array, without a copy, when the
+    orders are consecutive rows of one :class:`OrderBlock` and still hold its arrays (an order made
+    again with another ``name`` array does not); None otherwise (the caller loops instead)."""
+    if not orders:
         return None
-    a0 = arrays[0]
-    owner = a0.base
-    if owner is None or a0.ndim != 1 or not a0.flags.c_contiguous:
+    b = orders[0].block
+    if b is None or name not in b.rows:
         return None
-    n, nbytes = a0.size, a0.nbytes
-    p0 = a0.__array_interface__["data"][0]
-    for k, a in enumerate(arrays):
-        if (a.base is not owner or a.size != n or a.dtype != a0.dtype or not a.flags.c_contiguous
-                or a.__array_interface__["data"][0] != p0 + k * nbytes):
+    r0 = orders[0].row
+    rows = b.rows[name]
+    if r0 + len(orders) > len(rows):
+        return None
+    for k, o in enumerate(orders):
+        if o.block is not b or o.row != r0 + k or getattr(o, name) is not rows[r0 + k]:
             return None
-    return np.lib.stride_tricks.as_strided(a0, shape=(len(arrays), n), strides=(nbytes, a0.itemsize),
-                                           writeable=False)
+    return b.arrays[name][r0:r0 + len(orders)]
 
 
-def joined(arrays: list[np.ndarray]) -> np.ndarray:
-    """``np.concatenate(arrays)``: a read-only view when :func:`rows_view` finds them laid end to end."""
-    rows = rows_view(arrays)
-    return np.concatenate(arrays) if rows is None else rows.reshape(-1)
+def rejected_pixels(orders: list[PreparedOrder]) -> int | None:
+    """Pixels the file gave as usable (finite flux and variance, variance > 0) that the preparation
+    masked, summed over ``orders``, as their blocks counted them; None when an order does not hold its
+    block's ``good`` row (the caller counts against the file's arrays instead)."""
+    n = 0
+    for o in orders:
+        b = o.block
+        if b is None or "rejected" not in b.arrays or o.good is not b.rows["good"][o.row]:
+            return None
+        n += int(b.arrays["rejected"][o.row])
+    return n
+
+
+def joined(orders: list[PreparedOrder], name: str) -> np.ndarray:
+    """``np.concatenate([o.<name> for o in orders])``, as a view of the block when :func:`block_rows`
+    finds one."""
+    rows = block_rows(orders, name)
+    return np.concatenate([getattr(o, name) for o in orders]) if rows is None else rows.reshape(-1)
 
 
 _DESIGN_CACHE: dict[tuple[int, int], np.ndarray] = {}
@@ -248,8 +281,11 @@ def _prepare_block(orders: list[Order], degree: int, compiled: bool | None = Non
     if kernels.compiled() is not None if compiled is None else compiled:
         base_bad, bad, tie, cand = kernels.pixel_screen(flux, var, 3, 8.0, 0.5)   # find_spikes' defaults
         good = ~screened_bad_pixels(flux, bad, tie) & ~find_spikes(flux, var, screened=(base_bad, cand))
+        given_ok = ~base_bad
     else:
         good = ~bad_pixels(flux, var) & ~find_spikes(flux, var)
+        with np.errstate(invalid="ignore"):
+            given_ok = np.isfinite(flux) & np.isfinite(var) & (var > 0)
     blaze = np.ones_like(flux)
     given = [k for k, o in enumerate(orders) if o.blaze is not None]
     if given:
@@ -286,10 +322,24 @@ def _prepare_block(orders: list[Order], degree: int, compiled: bool | None = Non
     else:
         good, fn, vn, q = _finish_numpy(f, v, good, cont, mc, mv, alpha, floor)
     usable = (good.sum(axis=1) >= max(32, 4 * (degree + 1))) & (used.sum(axis=1) * stride >= 10)
-    edges = pixel_edges(np.vstack([o.wave for o in orders]))   # one block: rows_view finds the rows again
-    return [PreparedOrder(o.wave, edges[k], fn[k], vn[k], q[k], good[k], o.index, cont[k]) if usable[k]
-            else None
-            for k, o in enumerate(orders)]
+    keep = np.flatnonzero(usable)
+    if keep.size == 0:
+        return [None] * len(orders)
+    every = keep.size == len(orders)
+    wave = np.vstack([orders[k].wave for k in keep])
+    arrays = {"wave": wave, "edges": pixel_edges(wave)}
+    for name, a in (("flux", fn), ("var", vn), ("weight", q), ("good", good), ("continuum", cont)):
+        arrays[name] = a if every else a[keep]
+    # pixels the file gives as usable (finite, positive variance) that the preparation masked
+    arrays["rejected"] = np.count_nonzero(given_ok & ~good, axis=1)[keep]
+    rows = {name: list(a) for name, a in arrays.items() if name != "rejected"}
+    rows["wave"] = [orders[k].wave for k in keep]           # the orders keep the file's own wavelengths
+    block = OrderBlock(arrays, rows)
+    result: list[PreparedOrder | None] = [None] * len(orders)
+    for j, k in enumerate(keep):
+        result[k] = PreparedOrder(orders[k].wave, rows["edges"][j], rows["flux"][j], rows["var"][j],
+                                  rows["weight"][j], rows["good"][j], orders[k].index, rows["continuum"][j], block, j)
+    return result
 
 
 def prepare_order(order: Order, *, degree: int = 4) -> PreparedOrder | None:

@@ -35,7 +35,7 @@ from lineshift.io.linelists import read_telluric_bands
 from lineshift.io.loaders import load_spectrum, read_observation
 from lineshift.io.table import COLUMNS, EXTRA_COLUMNS, SB2_COLUMNS, printable
 from lineshift.measure.mask_engine import SearchSettings, measure_mask
-from lineshift.measure.prepare import prepare_spectrum, reject_telluric_lines
+from lineshift.measure.prepare import prepare_spectrum, reject_telluric_lines, rejected_pixels
 from lineshift.model import C_MS, LineMask, Observation
 from lineshift.run import reuse
 from lineshift.run.config import check_settings
@@ -312,6 +312,9 @@ def _rejected_pixels(spectrum, orders) -> int:
     These are the neighbours of bad pixels, non-positive or saturated counts and cosmic-ray /
     hot-pixel spikes (measure/badpixels.py, measure/outliers.py), in the orders that were kept.
     """
+    counted = rejected_pixels(orders)                 # as the preparation counted them
+    if counted is not None:
+        return counted
     raw = {id(o.wave): o for o in spectrum.orders}   # a prepared order keeps its order's wave array
     n = 0
     for p in orders:
