@@ -1,5 +1,6 @@
 """TIMESYS: every time scale of the FITS standard 4.0 (sect. 9.2.1) handled or refused."""
 
+import numpy as np
 import pytest
 from astropy.time import Time
 
@@ -60,3 +61,33 @@ def test_tdb_tcg_tcb_ut1_accepted():
 def test_refused_with_reason(timesys, reason):
     with pytest.raises(MetadataError, match=reason):
         _time(TIMESYS=timesys, **{"DATE-AVG": "2020-01-01T00:00:00"})
+
+
+def test_fast_iso_dates_equal_astropy_time():
+    # reference library: astropy.time.Time (isot / iso formats) for the same strings and scales, to the
+    # last bit; a leap second of UTC (2016-12-31T23:59:60.5, IERS Bulletin C 52) included, and what
+    # astropy warns about or refuses left to astropy (None)
+    import warnings
+
+    from lineshift.io.metadata import _iso_fast
+
+    rng = np.random.default_rng(2)
+    texts = ["2016-12-31T23:59:60.5", "2000-01-01", "1999-12-31T23:59:59.999999", "2026-03-04 05:06",
+             "2025-11-20T03:04:05.6"]
+    texts += [Time(m, format="mjd", scale="tai").isot for m in rng.uniform(48000, 61500, 60)]
+    checked = 0
+    for scale in ("utc", "tai", "tt", "tdb"):
+        for text in texts:
+            fast = _iso_fast(text, scale)
+            with warnings.catch_warnings():
+                warnings.simplefilter("error")
+                try:
+                    ref = Time(text, format="isot" if "T" in text else "iso", scale=scale).mjd
+                except Exception:
+                    assert fast is None, (text, scale)
+                    continue
+            assert fast == ref, (text, scale)
+            checked += 1
+    assert checked > 250
+    assert _iso_fast("2026-13-01", "utc") is None and _iso_fast("2026-02-30T00:00:00", "utc") is None
+    assert _iso_fast("2026-01-01T00:00:00Z", "utc") is None        # not a form this path reads

@@ -101,10 +101,39 @@ def parse_dec(value, path: str | None = None) -> float:
     return deg
 
 
+#: the ISO-8601 forms FITS dates take (FITS 4.0, section 9.1.1): date, or date and time, seconds optional
+_ISO_DATE = re.compile(r"(\d{4})-(\d{2})-(\d{2})(?:[T ](\d{2}):(\d{2})(?::(\d{2}(?:\.\d*)?))?)?")
+
+
+def _iso_fast(text: str, scale: str) -> float | None:
+    """MJD of a plain ISO-8601 date by ERFA's ``dtf2d`` (leap-second days in UTC included), the routine
+    astropy.time's ISO formats call; None for anything else (or anything ERFA warns about), which then
+    goes through astropy.time itself.  ~5 us against ~100-250 us for building a Time."""
+    m = _ISO_DATE.fullmatch(text)
+    if m is None or scale not in ("utc", "tai", "tt", "tdb", "tcg", "tcb", "ut1"):
+        return None
+    import warnings
+
+    import erfa
+
+    y, mo, d, h, mi, sec = m.groups()
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        try:
+            d1, d2 = erfa.dtf2d(scale.upper(), int(y), int(mo), int(d), int(h or 0), int(mi or 0),
+                                float(sec or 0.0))
+        except Exception:   # a date ERFA refuses or warns about: astropy.time has the last word
+            return None
+    return float((d1 - 2400000.5) + d2)
+
+
 def _iso_to_mjd(value, key: str, scale: str, path: str | None) -> float:
+    text = str(value).strip()
+    fast = _iso_fast(text, scale)
+    if fast is not None:
+        return fast
     from astropy.time import Time
 
-    text = str(value).strip()
     try:
         return float(Time(text, format="isot" if "T" in text else "iso", scale=scale).mjd)
     except (ValueError, TypeError):
