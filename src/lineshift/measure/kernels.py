@@ -168,15 +168,17 @@ def _pixel_screen(flux, var, h, nsigma, contrast):   # pragma: no cover (compile
     tie = np.zeros(rows, dtype=np.bool_)
     p = np.empty(size + 2 * h)                  # the rows laid end to end, the ends extended by their values
     for r in range(rows):
-        for i in range(n):
+        anytie = False
+        for i in range(n):                       # no branches: selects and bitwise ands on vector lanes
             f = flux[r, i]
             v = var[r, i]
-            bb = not (np.isfinite(f) and np.isfinite(v) and v > 0)
+            bb = ~(np.isfinite(f) & np.isfinite(v) & (v > 0))
             base_bad[r, i] = bb
-            bad[r, i] = bb or not f > 0
+            bad[r, i] = bb | ~(f > 0)
             p[h + r * n + i] = np.inf if bb else f
-            if i > 0 and f == flux[r, i - 1] and np.isfinite(f):
-                tie[r] = True
+        for i in range(1, n):
+            anytie |= (flux[r, i] == flux[r, i - 1]) & np.isfinite(flux[r, i])
+        tie[r] = anytie
     for t in range(h):
         p[t] = p[h]
         p[h + size + t] = p[h + size - 1]
@@ -235,12 +237,15 @@ def _load() -> SimpleNamespace | None:
             pass
         else:
             jit = numba.njit(cache=True, nogil=True)
+            # numpy's error model (a quotient by zero is inf or nan, not an exception): lets a loop of
+            # quotients run on vector lanes; used where every such quotient is then replaced
+            lanes = numba.njit(cache=True, nogil=True, error_model="numpy")
             global _solve_small
             _solve_small = jit(_solve_small)   # called from a kernel: numba needs it compiled too
             _COMPILED = SimpleNamespace(ccf_pairs=jit(_ccf_pairs), term_variances=jit(_term_variances),
-                                        cumsums=jit(_cumsums), prepare_finish=jit(_prepare_finish),
+                                        cumsums=jit(_cumsums), prepare_finish=lanes(_prepare_finish),
                                         continuum_iterations=jit(_continuum_iterations),
-                                        pixel_screen=jit(_pixel_screen), good_snr=jit(_good_snr))
+                                        pixel_screen=lanes(_pixel_screen), good_snr=jit(_good_snr))
     return _COMPILED or None
 
 
@@ -314,7 +319,10 @@ def _prepare_finish(f, v, good, cont, mc, mv, alpha, floor):   # pragma: no cove
     vn = np.empty((rows, n))
     q = np.empty((rows, n))
     for r in range(rows):
+        m_c, m_v, a, fl = mc[r], mv[r], alpha[r], floor[r]
         for i in range(n):
+            # without branches (selects), so the loop runs on vector lanes: every quotient is formed
+            # and the ones the plain form does not take are replaced by its zeros
             cn = cont[r, i]
             gd = good[r, i] and np.isfinite(cn) and cn > 0
             c = cn if gd else 1.0
@@ -322,12 +330,10 @@ def _prepare_finish(f, v, good, cont, mc, mv, alpha, floor):   # pragma: no cove
             gout[r, i] = gd
             fn[r, i] = f[r, i] / c if gd else 0.0
             vn[r, i] = v[r, i] / c2 if gd else 0.0
-            vcont = mv[r] + alpha[r] * (c - mc[r])
-            if np.isnan(vcont) or np.isnan(floor[r]):
-                den = np.nan                       # np.maximum propagates NaN
-            else:
-                den = max(vcont, floor[r])
-            q[r, i] = c2 / den if (gd and den > 0) else 0.0
+            vcont = m_v + a * (c - m_c)
+            den = np.nan if (np.isnan(vcont) or np.isnan(fl)) else (vcont if vcont > fl else fl)  # np.maximum
+            qq = c2 / den
+            q[r, i] = qq if (gd and den > 0) else 0.0
     return gout, fn, vn, q
 
 
@@ -424,9 +430,20 @@ def _continuum_iterations(flux, var, good, V, A, b, clip_low, clip_high, max_ite
                 cj = coef[r, j]
                 for i in range(n):
                     resid[i] -= cj * VT[j, i]
-            s = 0.0
-            for i in range(n):
-                s += (resid[i] * resid[i] - v0[r, i]) * used[r, i]
+            # four running sums (a sequential sum waits on each add; the order of a sum is free here:
+            # the plain form's np.sum adds pairwise)
+            s0 = s1 = s2_ = s3 = 0.0
+            i = 0
+            while i + 4 <= n:
+                s0 += (resid[i] * resid[i] - v0[r, i]) * used[r, i]
+                s1 += (resid[i + 1] * resid[i + 1] - v0[r, i + 1]) * used[r, i + 1]
+                s2_ += (resid[i + 2] * resid[i + 2] - v0[r, i + 2]) * used[r, i + 2]
+                s3 += (resid[i + 3] * resid[i + 3] - v0[r, i + 3]) * used[r, i + 3]
+                i += 4
+            while i < n:
+                s0 += (resid[i] * resid[i] - v0[r, i]) * used[r, i]
+                i += 1
+            s = (s0 + s1) + (s2_ + s3)
             s2 = max(s / max(count, 1), 0.0)
             scatter2[r] = s2
             for i in range(n):
