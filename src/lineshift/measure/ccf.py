@@ -381,17 +381,25 @@ def correlate(orders: list[PreparedOrder], mask: LineMask, velocity: np.ndarray,
     pair_order, pair_line = np.nonzero(inside)          # order by order, lines ascending
     bounds = np.searchsorted(pair_order, np.arange(len(orders) + 1))
     fac = 1 + edge_v / C_MS
+    present = np.flatnonzero(bounds[1:] > bounds[:-1])
     if compiled and pair_line.size:
         x_all, bnum, bden = kernels.ccf_pairs(*info.packed, pair_order.astype(np.intp), lam_lines[pair_line], fac, r, m)
+        # every order's weighted sums at once: one reduceat, whose sums run row after row within each
+        # order, as the one-order reduceat below does (the same sums to the last bit)
+        wp = mask.weight[pair_line][:, None]
+        starts = bounds[present]
+        num_all = np.add.reduceat(wp * bnum, starts, axis=0)
+        den_all = np.add.reduceat(wp * bden, starts, axis=0)
+        positive = (den_all > 0).all(axis=1)
     terms = []
-    for k in np.flatnonzero(bounds[1:] > bounds[:-1]):
+    for j, k in enumerate(present):
         order = orders[k]
         sl = slice(bounds[k], bounds[k + 1])
         idx = pair_line[sl]
         w = mask.weight[idx]
         if compiled:
-            x = x_all[sl]
-            boxes = [bnum[sl], bden[sl]]
+            x, boxes = x_all[sl], [bnum[sl], bden[sl]]
+            num, den, ok = num_all[j], den_all[j], positive[j]
         else:
             # line-major layout (lines x edges): consecutive queries are neighbouring pixels, which
             # numpy's interp finds from its previous answer without a full binary search
@@ -400,11 +408,11 @@ def correlate(orders: list[PreparedOrder], mask: LineMask, velocity: np.ndarray,
             for g, S in info.sums[k]:
                 c = _cum(S, g, x)
                 boxes.append(c[:, r:] - c[:, :m] if r else c[:, m:] - c[:, :m])
-        num, den = w @ boxes[0], w @ boxes[1]
-        if not (den > 0).all():
-            continue
-        terms.append(_OrderTerms(order, w, idx, x, r, num, den, lam_lines[idx],
-                                 *(boxes if keep_lines else (None, None))))
+            num, den = (np.add.reduceat(w[:, None] * b, [0], axis=0)[0] for b in boxes)
+            ok = (den > 0).all()
+        if ok:
+            terms.append(_OrderTerms(order, w, idx, x, r, num, den, lam_lines[idx],
+                                     *(boxes if keep_lines else (None, None))))
     return CorrelationData(velocity, terms, n_cleared, compiled)
 
 
