@@ -547,3 +547,24 @@ def test_rejected_pixel_count_of_the_blocks_equals_counting_against_the_file(com
         o = raw[p.index]
         plain += int(np.count_nonzero(np.isfinite(o.flux) & np.isfinite(o.var) & (o.var > 0) & ~p.good))
     assert plain > 50 and rejected_pixels(orders) == plain
+
+
+@pytest.mark.parametrize("compiled", [True, False])
+def test_ccf_values_alone_equal_the_full_correlation(compiled):
+    # the search's short form against the full result's ccf, to the last bit (and no order: empty)
+    if compiled:
+        pytest.importorskip("numba")
+    from lineshift.measure.ccf import correlate
+    from lineshift.model import LineMask
+
+    orders = _holed_orders()
+    mask = LineMask(np.array([4999.0, 5000.4, 5001.0, 5002.5, 5003.0, 5004.1, 5008.1, 5009.2, 5011.9]),
+                    np.linspace(0.2, 1.0, 9))
+    v = np.linspace(-10e3, 10e3, 41)
+    for lines in (None, np.array([1, 3, 7])):
+        full = correlate(orders, mask, v, 500.0, lines=lines, compiled=compiled)
+        short = correlate(orders, mask, v, 500.0, lines=lines, compiled=compiled, values_only=True)
+        assert short.n_orders == len(full.terms) > 0
+        np.testing.assert_array_equal(short.ccf, full.ccf)
+    far = LineMask(np.array([7000.0]), np.array([1.0]))
+    assert correlate(orders, far, v, 500.0, compiled=compiled, values_only=True).n_orders == 0

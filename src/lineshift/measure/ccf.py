@@ -334,7 +334,8 @@ def _inside(info: _Orders, mask: LineMask, v_lo: float, v_hi: float, box_width: 
 
 def correlate(orders: list[PreparedOrder], mask: LineMask, velocity: np.ndarray, box_width: float,
               *, lines: np.ndarray | None = None, clear_of_bad: bool = False, sums: dict | None = None,
-              keep_lines: bool = False, compiled: bool | None = None) -> CorrelationData:
+              keep_lines: bool = False, compiled: bool | None = None,
+              values_only: bool = False) -> CorrelationData | CCFValues:
     """CCF of prepared orders with a mask on a velocity grid (m/s, observatory frame).
 
     Parameters
@@ -361,6 +362,9 @@ def correlate(orders: list[PreparedOrder], mask: LineMask, velocity: np.ndarray,
         Box integrals (and later the error propagation) by the compiled kernels of
         :mod:`.kernels` (default: when numba is there), or by the NumPy form below (``np.interp``
         and :func:`_cum` per order), which gives the same CCF to the last bit.
+    values_only : bool
+        Return the CCF's values alone (:class:`CCFValues`, the same values as the full result's
+        ``ccf``), without the per-order terms the error propagation needs: for a search.
     """
     velocity = np.asarray(velocity, dtype=float)
     m = velocity.size
@@ -383,14 +387,14 @@ def correlate(orders: list[PreparedOrder], mask: LineMask, velocity: np.ndarray,
     fac = 1 + edge_v / C_MS
     present = np.flatnonzero(bounds[1:] > bounds[:-1])
     if compiled and pair_line.size:
-        x_all, bnum, bden = kernels.ccf_pairs(*info.packed, pair_order.astype(np.intp), lam_lines[pair_line], fac, r, m)
-        # every order's weighted sums at once: one reduceat, whose sums run row after row within each
-        # order, as the one-order reduceat below does (the same sums to the last bit)
-        wp = mask.weight[pair_line][:, None]
-        starts = bounds[present]
-        num_all = np.add.reduceat(wp * bnum, starts, axis=0)
-        den_all = np.add.reduceat(wp * bden, starts, axis=0)
-        positive = (den_all > 0).all(axis=1)
+        x_all, bnum, bden, num_all, den_all, positive = _compiled_sums(info, mask, pair_order, pair_line, bounds,
+                                                                       present, fac, r, m)
+        if values_only:
+            if not positive.any():
+                return CCFValues(velocity, np.zeros(0), 0)
+            # CorrelationData.ccf's sums over the same rows in the same order
+            return CCFValues(velocity, np.sum(num_all[positive], axis=0) / np.sum(den_all[positive], axis=0),
+                             int(positive.sum()))
     terms = []
     for j, k in enumerate(present):
         order = orders[k]
@@ -413,7 +417,32 @@ def correlate(orders: list[PreparedOrder], mask: LineMask, velocity: np.ndarray,
         if ok:
             terms.append(_OrderTerms(order, w, idx, x, r, num, den, lam_lines[idx],
                                      *(boxes if keep_lines else (None, None))))
-    return CorrelationData(velocity, terms, n_cleared, compiled)
+    data = CorrelationData(velocity, terms, n_cleared, compiled)
+    if values_only:
+        return CCFValues(velocity, data.ccf if terms else np.zeros(0), len(terms))
+    return data
+
+
+def _compiled_sums(info, mask, pair_order, pair_line, bounds, present, fac, r, m):
+    """The compiled box integrals of every (order, line) pair, and every order's weighted sums at once:
+    one reduceat, whose sums run row after row within each order, as the plain form's one-order
+    reduceat does (the same sums to the last bit)."""
+    lam = mask.wavelength[pair_line]
+    x_all, bnum, bden = kernels.ccf_pairs(*info.packed, pair_order.astype(np.intp), lam, fac, r, m)
+    wp = mask.weight[pair_line][:, None]
+    starts = bounds[present]
+    num_all = np.add.reduceat(wp * bnum, starts, axis=0)
+    den_all = np.add.reduceat(wp * bden, starts, axis=0)
+    return x_all, bnum, bden, num_all, den_all, (den_all > 0).all(axis=1)
+
+
+@dataclass(frozen=True)
+class CCFValues:
+    """A CCF's values alone (``correlate(..., values_only=True)``): what a search needs of it."""
+
+    velocity: np.ndarray
+    ccf: np.ndarray     # empty when no order contributed
+    n_orders: int
 
 
 def reference_ccf(orders: list[PreparedOrder], mask: LineMask, velocity: np.ndarray,

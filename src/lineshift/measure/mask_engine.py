@@ -123,8 +123,9 @@ def coarse_ccf(orders, mask, settings: SearchSettings, berv: float, dv_pix: floa
         raise MeasurementError("velocity range is narrower than eight coarse steps", path=path,
                                status="velocity range too narrow")
     lines = None if all_lines else np.sort(np.argsort(mask.weight)[::-1][: settings.coarse_lines])
-    data = correlate(orders, mask, grid, max(step, settings.box_width or dv_pix), lines=lines, sums=sums)
-    if not data.terms:
+    data = correlate(orders, mask, grid, max(step, settings.box_width or dv_pix), lines=lines, sums=sums,
+                     values_only=True)
+    if not data.n_orders:
         raise MeasurementError("no mask line falls on the spectrum", path=path, status="outside mask range")
     y = data.ccf
     base = float(np.median(y))
