@@ -412,7 +412,8 @@ def correlate(orders: list[PreparedOrder], mask: LineMask, velocity: np.ndarray,
             for g, S in info.sums[k]:
                 c = _cum(S, g, x)
                 boxes.append(c[:, r:] - c[:, :m] if r else c[:, m:] - c[:, :m])
-            num, den = (np.add.reduceat(w[:, None] * b, [0], axis=0)[0] for b in boxes)
+            # the lines added in turn (np.cumsum is sequential), as the compiled kernel adds them
+            num, den = (np.cumsum(w[:, None] * b, axis=0)[-1] for b in boxes)
             ok = (den > 0).all()
         if ok:
             terms.append(_OrderTerms(order, w, idx, x, r, num, den, lam_lines[idx],
@@ -424,15 +425,12 @@ def correlate(orders: list[PreparedOrder], mask: LineMask, velocity: np.ndarray,
 
 
 def _compiled_sums(info, mask, pair_order, pair_line, bounds, present, fac, r, m):
-    """The compiled box integrals of every (order, line) pair, and every order's weighted sums at once:
-    one reduceat, whose sums run row after row within each order, as the plain form's one-order
-    reduceat does (the same sums to the last bit)."""
-    lam = mask.wavelength[pair_line]
-    x_all, bnum, bden = kernels.ccf_pairs(*info.packed, pair_order.astype(np.intp), lam, fac, r, m)
-    wp = mask.weight[pair_line][:, None]
-    starts = bounds[present]
-    num_all = np.add.reduceat(wp * bnum, starts, axis=0)
-    den_all = np.add.reduceat(wp * bden, starts, axis=0)
+    """The compiled box integrals of every (order, line) pair, and every order's weighted sums, formed
+    in the kernel line after line within each order, as the plain form's cumulative sum adds them
+    (the same sums to the last bit)."""
+    x_all, bnum, bden, onum, oden = kernels.ccf_pairs(*info.packed, pair_order.astype(np.intp),
+                                                      mask.wavelength[pair_line], fac, r, m, mask.weight[pair_line])
+    num_all, den_all = onum[present], oden[present]
     return x_all, bnum, bden, num_all, den_all, (den_all > 0).all(axis=1)
 
 

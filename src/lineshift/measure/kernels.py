@@ -36,12 +36,14 @@ __all__ = ["WARMUP_SPECTRA", "ccf_pairs", "compiled", "compiled_always", "contin
 _COMPILED: SimpleNamespace | bool | None = None
 
 
-def _ccf_pairs(edges, estart, snum, gnum, sden, gden, porder, plam, fac, r, m):   # pragma: no cover (compiled)
+def _ccf_pairs(edges, estart, snum, gnum, sden, gden, porder, plam, fac, r, m, pw):   # pragma: no cover (compiled)
     npair = plam.size
     ncol = fac.size
     x = np.empty((npair, ncol))
     bnum = np.empty((npair, m))
     bden = np.empty((npair, m))
+    onum = np.zeros((estart.size - 1, m))       # each order's weighted sums, its pairs added in turn
+    oden = np.zeros((estart.size - 1, m))
     cnum = np.empty(ncol)
     cden = np.empty(ncol)
     for p in range(npair):
@@ -74,11 +76,16 @@ def _ccf_pairs(edges, estart, snum, gnum, sden, gden, porder, plam, fac, r, m): 
             f = xv - i
             cnum[c] = snum[e0 + i] + f * gnum[g0 + i]
             cden[c] = sden[e0 + i] + f * gden[g0 + i]
+        wp = pw[p]
         for k in range(m):
             hi = k + r if r else m + k
-            bnum[p, k] = cnum[hi] - cnum[k]
-            bden[p, k] = cden[hi] - cden[k]
-    return x, bnum, bden
+            bn = cnum[hi] - cnum[k]
+            bd = cden[hi] - cden[k]
+            bnum[p, k] = bn
+            bden[p, k] = bd
+            onum[o, k] += wp * bn
+            oden[o, k] += wp * bd
+    return x, bnum, bden, onum, oden
 
 
 def _term_variances(x, r, w, lstart, pstart, qv, sens, own, has_own):   # pragma: no cover (compiled)
@@ -273,15 +280,17 @@ def _kernels() -> SimpleNamespace:
     return k
 
 
-def ccf_pairs(edges, estart, snum, gnum, sden, gden, porder, plam, fac, r, m):
-    """Pixel coordinates ``x`` (pairs, edge columns) of the box edges of each (order, line) pair and
-    the box integrals of the numerator and denominator (pairs, m).
+def ccf_pairs(edges, estart, snum, gnum, sden, gden, porder, plam, fac, r, m, pw):
+    """Pixel coordinates ``x`` (pairs, edge columns) of the box edges of each (order, line) pair, the
+    box integrals of the numerator and denominator (pairs, m), and each order's sums of them weighted
+    by the pairs' line weights ``pw`` (orders, m), its pairs added in turn (as ``np.cumsum`` adds).
 
     ``edges``, ``snum``, ``sden`` are the orders' pixel edges and cumulative sums concatenated
     (``n + 1`` per order, order ``o`` from ``estart[o]``), ``gnum``, ``gden`` their pixel values
     (``n`` per order); pair ``p`` is line wavelength ``plam[p]`` on order ``porder[p]``, its edge
     ``c`` at ``plam[p] * fac[c]``; ``r`` is the edge layout of :func:`.ccf._edge_layout`."""
-    return _kernels().ccf_pairs(edges, estart, snum, gnum, sden, gden, porder, plam, fac, int(r), int(m))
+    return _kernels().ccf_pairs(edges, estart, snum, gnum, sden, gden, porder, plam, fac, int(r), int(m),
+                                np.ascontiguousarray(pw, dtype=float))
 
 
 def term_variances(x, r, w, lstart, pstart, qv, sens, own=None):
