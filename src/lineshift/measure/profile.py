@@ -148,30 +148,42 @@ def bisector(v: np.ndarray, ccf: np.ndarray, c0: float, amp: float, *, top=TOP, 
     return Bisector(depths, bis, span, w @ sens, float(np.sum(w * dlevel)), float(np.sum(w * dlevel * -depths)))
 
 
+def _normal_matrix(e: np.ndarray, g: np.ndarray, m: int) -> np.ndarray:
+    """``J^T J`` per order for the columns (1, -e, -g) of the fixed-width fit (orders, 3, 3)."""
+    s1, s2 = -e.sum(axis=1), -g.sum(axis=1)
+    s11, s12, s22 = (e * e).sum(axis=1), (e * g).sum(axis=1), (g * g).sum(axis=1)
+    return np.stack((np.stack((np.full_like(s1, m), s1, s2), axis=1), np.stack((s1, s11, s12), axis=1),
+                     np.stack((s2, s12, s22), axis=1)), axis=1)
+
+
 def order_velocities(v: np.ndarray, order_ccfs: list[np.ndarray], c0: float, amp: float, mu: float,
                      sigma: float) -> tuple[np.ndarray, np.ndarray]:
     """Per-order velocity (m/s) with the width fixed; returns (velocities, gains).
 
     ``gains[k]`` is d(velocity_k)/d(CCF_k) at the solution (rows over the grid), for the error.
+    Gauss-Newton steps on the columns (1, -e, -g) of the model ``c0 - a e``, ``e`` the Gaussian and
+    ``g = a e z / sigma``, their normal equations summed column by column.
     """
     n = len(order_ccfs)
     Y = np.asarray(order_ccfs)
+    m = Y.shape[1]
     p = np.tile([c0, amp, mu], (n, 1)).astype(float)
+    eye = 1e-12 * np.eye(3)[None]
     for _ in range(3):
         z = (v[None, :] - p[:, 2:3]) / sigma
         e = np.exp(-0.5 * z * z)
-        f = p[:, 0:1] - p[:, 1:2] * e
-        J = np.stack((np.ones_like(e), -e, -p[:, 1:2] * e * z / sigma), axis=2)
-        A = np.einsum("nki,nkj->nij", J, J)
-        b = np.einsum("nki,nk->ni", J, Y - f)
+        g = p[:, 1:2] * e * z / sigma
+        resid = Y - (p[:, 0:1] - p[:, 1:2] * e)
+        A = _normal_matrix(e, g, m)
+        b = np.stack((resid.sum(axis=1), -(e * resid).sum(axis=1), -(g * resid).sum(axis=1)), axis=1)
         with np.errstate(all="ignore"):
-            dp = np.linalg.solve(A + 1e-12 * np.eye(3)[None] * np.abs(A).max(), b[..., None])[..., 0]
+            dp = np.linalg.solve(A + eye * np.abs(A).max(), b[..., None])[..., 0]
         p += np.where(np.isfinite(dp), dp, 0.0)
     z = (v[None, :] - p[:, 2:3]) / sigma
     e = np.exp(-0.5 * z * z)
-    J = np.stack((np.ones_like(e), -e, -p[:, 1:2] * e * z / sigma), axis=2)
-    A = np.einsum("nki,nkj->nij", J, J)
+    g = p[:, 1:2] * e * z / sigma
+    J = np.stack((np.ones_like(e), -e, -g), axis=1)                 # (n, 3, m)
     with np.errstate(all="ignore"):
-        G = np.linalg.solve(A, np.transpose(J, (0, 2, 1)))    # (n, 3, m)
+        G = np.linalg.solve(_normal_matrix(e, g, m), J)             # (n, 3, m)
     ok = (p[:, 1] > 0) & np.isfinite(p).all(axis=1)
     return np.where(ok, p[:, 2], np.nan), G[:, 2, :]
