@@ -30,7 +30,7 @@ from types import SimpleNamespace
 import numpy as np
 
 __all__ = ["WARMUP_SPECTRA", "ccf_pairs", "compiled", "compiled_always", "continuum_iterations", "count_spectrum",
-           "cumsums", "good_snr", "pixel_screen", "prepare_finish",
+           "cumsums", "gauss_fit", "good_snr", "pixel_screen", "prepare_finish",
            "term_variances"]
 
 _COMPILED: SimpleNamespace | bool | None = None
@@ -227,6 +227,83 @@ def _good_snr(flux, var, good, step):   # pragma: no cover (compiled)
     return out[:m]
 
 
+def _gauss_cost(v, y, p, scale, r):   # pragma: no cover (compiled)
+    c0, a, mu, sg = p[0] * scale[0], p[1] * scale[1], p[2] * scale[2], p[3] * scale[3]
+    s = 0.0
+    for i in range(v.size):
+        z = (v[i] - mu) / sg
+        r[i] = c0 - a * np.exp(-0.5 * z * z) - y[i]
+        s += r[i] * r[i]
+    return s
+
+
+def _gauss_fit(v, y, p0, scale, xtol, max_iter):   # pragma: no cover (compiled)
+    m = v.size
+    p = p0.copy()
+    r = np.empty(m)
+    rt = np.empty(m)
+    trial = np.empty(4)
+    A = np.empty((4, 4))
+    M = np.empty((4, 4))
+    g = np.empty(4)
+    step = np.empty(4)
+    J = np.empty((m, 4))
+    cost = _gauss_cost(v, y, p, scale, r)
+    lam = 1e-3
+    polish = 2                      # Gauss-Newton steps after the first step below xtol
+    for _ in range(max_iter):
+        a, mu, sg = p[1] * scale[1], p[2] * scale[2], p[3] * scale[3]
+        for i in range(m):
+            z = (v[i] - mu) / sg
+            e = np.exp(-0.5 * z * z)
+            J[i, 0] = scale[0]
+            J[i, 1] = -e * scale[1]
+            J[i, 2] = -a * e * z / sg * scale[2]
+            J[i, 3] = -a * e * z * z / sg * scale[3]
+        for j in range(4):
+            t = 0.0
+            for i in range(m):
+                t += J[i, j] * r[i]
+            g[j] = -t
+            for k in range(j, 4):
+                t = 0.0
+                for i in range(m):
+                    t += J[i, j] * J[i, k]
+                A[j, k] = t
+                A[k, j] = t
+        while True:
+            for j in range(4):
+                for k in range(4):
+                    M[j, k] = A[j, k]
+                M[j, j] += lam * A[j, j]
+                step[j] = g[j]
+            _solve_small(M, step, 4)
+            small = True
+            for j in range(4):
+                trial[j] = p[j] + step[j]
+                if not abs(step[j]) <= xtol * (abs(trial[j]) + xtol):
+                    small = False
+            ct = _gauss_cost(v, y, trial, scale, rt)
+            if np.isfinite(ct) and (ct <= cost or small):
+                break
+            lam = max(lam * 10.0, 1e-6)
+            if lam > 1e16:
+                return p, r, False
+        for j in range(4):
+            p[j] = trial[j]
+        for i in range(m):
+            r[i] = rt[i]
+        cost = ct
+        if small:
+            polish -= 1
+            lam = 0.0               # at the minimum: plain Gauss-Newton, which converges quadratically
+            if polish == 0:
+                return p, r, True
+        else:
+            lam = max(lam * 0.1, 1e-15)
+    return p, r, False
+
+
 def count_spectrum() -> None:
     """Note one more prepared spectrum in this process (:data:`WARMUP_SPECTRA`)."""
     global _prepared
@@ -249,10 +326,13 @@ def _load() -> SimpleNamespace | None:
             lanes = numba.njit(cache=True, nogil=True, error_model="numpy")
             global _solve_small
             _solve_small = jit(_solve_small)   # called from a kernel: numba needs it compiled too
+            global _gauss_cost
+            _gauss_cost = jit(_gauss_cost)
             _COMPILED = SimpleNamespace(ccf_pairs=jit(_ccf_pairs), term_variances=jit(_term_variances),
                                         cumsums=jit(_cumsums), prepare_finish=lanes(_prepare_finish),
                                         continuum_iterations=jit(_continuum_iterations),
-                                        pixel_screen=lanes(_pixel_screen), good_snr=jit(_good_snr))
+                                        pixel_screen=lanes(_pixel_screen), good_snr=jit(_good_snr),
+                                        gauss_fit=jit(_gauss_fit))
     return _COMPILED or None
 
 
@@ -480,6 +560,17 @@ def continuum_iterations(flux, var, good, V, VV, clip_low, clip_high, max_iter):
     b = (g * np.where(good, flux, 0.0)) @ V
     return _kernels().continuum_iterations(flux, var, good, np.ascontiguousarray(V), A, b, float(clip_low),
                                            float(clip_high), int(max_iter))
+
+
+def gauss_fit(v, y, guess, scale, xtol=1e-12, max_iter=200):
+    """Least squares of ``c0 - a exp(-(v - mu)^2 / (2 s^2)) - y`` over (c0, a, mu, s) = ``p * scale``
+    from ``guess``: Levenberg-Marquardt steps (Marquardt 1963, the damping scaled by the diagonal of
+    ``J^T J``) until a step changes every parameter by less than ``xtol`` relative (MINPACK's ``xtol``
+    test, More 1978), then two Gauss-Newton steps.  Returns (p, residuals, converged).  The plain form
+    is scipy.optimize.least_squares (:func:`.peak.fit_gaussian` with ``reference=True``)."""
+    return _kernels().gauss_fit(np.ascontiguousarray(v, dtype=float), np.ascontiguousarray(y, dtype=float),
+                                np.asarray(guess, dtype=float), np.asarray(scale, dtype=float), float(xtol),
+                                int(max_iter))
 
 
 def good_snr(flux, var, good, step):

@@ -17,6 +17,7 @@ import numpy as np
 from scipy.optimize import least_squares
 
 from lineshift.errors import MeasurementError
+from lineshift.measure import kernels
 
 __all__ = ["FWHM_PER_SIGMA", "GaussianFit", "fit_gaussian", "gaussian_profile"]
 
@@ -66,8 +67,12 @@ class GaussianFit:
 
 
 def fit_gaussian(v: np.ndarray, ccf: np.ndarray, *, guess: tuple[float, float, float, float] | None = None,
-                 path: str | None = None) -> GaussianFit:
+                 path: str | None = None, reference: bool = False) -> GaussianFit:
     """Fit an inverted Gaussian plus constant to a CCF (velocities in m/s).
+
+    With the compiled kernels in use the least squares run in :func:`.kernels.gauss_fit`; otherwise,
+    with ``reference=True`` or when that does not converge, in scipy's ``least_squares`` (MINPACK's
+    Levenberg-Marquardt, xtol = ftol = 1e-12), the plain form (tests/test_peak.py compares the two).
 
     Raises
     ------
@@ -94,17 +99,25 @@ def fit_gaussian(v: np.ndarray, ccf: np.ndarray, *, guess: tuple[float, float, f
     def jac(p):
         return _jacobian(v, *(p * scale)) * scale
 
-    try:
-        sol = least_squares(resid, np.asarray(guess) / scale, jac=jac, method="lm", xtol=1e-12, ftol=1e-12)
-    except (ValueError, np.linalg.LinAlgError) as exc:
-        raise MeasurementError(f"correlation peak fit failed ({exc})", path=path, status="peak fit failed") from None
-    c0, amp, mu, sigma = sol.x * scale
+    found = None
+    if not reference and kernels.compiled() is not None:
+        x, fun, converged = kernels.gauss_fit(v, y, np.asarray(guess, dtype=float) / scale, scale)
+        found = (x, fun) if converged else None      # else the plain form decides
+    if found is None:
+        try:
+            sol = least_squares(resid, np.asarray(guess) / scale, jac=jac, method="lm", xtol=1e-12, ftol=1e-12)
+        except (ValueError, np.linalg.LinAlgError) as exc:
+            raise MeasurementError(f"correlation peak fit failed ({exc})", path=path,
+                                   status="peak fit failed") from None
+        found = (sol.x if sol.success else np.full(4, np.nan), sol.fun)
+    x, fun = found
+    c0, amp, mu, sigma = x * scale
     sigma = abs(sigma)
-    if not (sol.success and np.isfinite([c0, amp, mu, sigma]).all() and amp > 0 and c0 > 0
+    if not (np.isfinite([c0, amp, mu, sigma]).all() and amp > 0 and c0 > 0
             and v[0] < mu < v[-1] and sigma < (v[-1] - v[0])):
         raise MeasurementError("correlation peak fit did not converge to a dip inside the window",
                                path=path, status="peak fit failed")
-    rms = float(np.sqrt(np.mean(sol.fun**2)))
+    rms = float(np.sqrt(np.mean(fun**2)))
     if amp < 3.0 * rms:
         raise MeasurementError(f"no correlation peak (fitted depth {amp:.2g} is within 3x the residual rms)",
                                path=path, status="no correlation peak")
