@@ -250,11 +250,10 @@ def test_flat_top_search_on_a_block_equals_each_row():
 
 
 def test_compiled_preparation_equals_the_numpy_form():
-    # the last per-pixel step to the last bit; the whole preparation (whose continuum iterations
-    # sum in another order) to rounding: rtol 1e-12 (from memory, a few eps times ~1000 terms)
+    # the same pixels; the values (whose continuum iterations and regressions sum in another order)
+    # to rounding: rtol 1e-12 (from memory, a few eps times ~1000 terms); blazes given, refused, absent
     pytest.importorskip("numba")
-    from lineshift.measure import kernels
-    from lineshift.measure.prepare import _finish_numpy, _prepare_block, pixel_edges
+    from lineshift.measure.prepare import _prepare_block, pixel_edges
     from lineshift.model import Order
 
     rng = np.random.default_rng(14)
@@ -263,21 +262,19 @@ def test_compiled_preparation_equals_the_numpy_form():
     blaze = 0.5 + np.sin(np.linspace(0.3, 2.8, 1200))
     orders = [Order(wave + 30.0 * k, flux[k], var[k], index=k, blaze=blaze if k % 2 else None) for k in range(5)]
     orders[3] = Order(orders[3].wave, np.full(1200, np.nan), var[3], index=3)       # nothing usable
+    bad_blaze = blaze.copy()
+    bad_blaze[600] = np.nan                  # at a good pixel: the order's blaze is not used
+    orders[4] = Order(orders[4].wave, flux[4], var[4], index=4, blaze=bad_blaze)
     fast = _prepare_block(orders, 4, compiled=True)
     plain = _prepare_block(orders, 4, compiled=False)
     assert fast[3] is None and plain[3] is None and sum(p is not None for p in fast) == 4
+    assert plain[4].good[600]                # the refused blaze's NaN sits at a usable pixel
     for a, b in zip(fast, plain, strict=True):
         if a is not None:
             for name in ("good", "edges"):
                 np.testing.assert_array_equal(getattr(a, name), getattr(b, name), err_msg=name)
             for name in ("flux", "var", "weight", "continuum"):
                 np.testing.assert_allclose(getattr(a, name), getattr(b, name), rtol=1e-12, atol=0, err_msg=name)
-    good = np.isfinite(flux) & (var > 0)
-    f, v = np.where(good, flux, 0.0), np.where(good, var, 0.0)
-    cont = np.vstack([p.continuum if p is not None else np.full(1200, np.nan) for p in plain])
-    args = (f, v, good, cont, f.mean(axis=1), v.mean(axis=1), np.full(5, 0.9), 0.25 * v.mean(axis=1))
-    for x, y in zip(kernels.prepare_finish(*args), _finish_numpy(*args), strict=True):
-        np.testing.assert_array_equal(x, y)
     np.testing.assert_array_equal(pixel_edges(np.vstack([wave, wave + 1])), [pixel_edges(wave), pixel_edges(wave + 1)])
 
 

@@ -9,9 +9,11 @@ its caller that it is tested against (tests/test_fast_kernels.py).
   order at once (:meth:`.ccf.CorrelationData.variances`; plain form: the adjoint of the box
   integrals, one row at a time).  Same arithmetic, summed in another order and over the pixels the
   boxes reach only (elsewhere the plain form adds rounding residues of ~1e-17): differences ~1e-15.
-* :func:`prepare_finish`: the normalised flux, its variance and the photon weight of every pixel
-  (:func:`.prepare._prepare_block`; plain form :func:`.prepare._finish_numpy`), the same operations
-  pixel by pixel instead of array by array: the same results to the last bit.
+* :func:`pixel_screen`, :func:`prepare_blaze`, :func:`prepare_tail`: the preparation's per-pixel
+  steps (:func:`.prepare._prepare_block`, whose array steps and :func:`.prepare._finish_numpy` are the
+  plain form): the screening's first pass, the blaze and the bad-pixel zeros, the continuum, the
+  photon weight's regression and the normalised flux, variance and weight; the same operations pixel
+  by pixel (the regression's sums in sequence: ~1e-15 relative).
 * :func:`continuum_iterations`: the clipping iterations of the continuum fit
   (:func:`.prepare._continuum_core`, whose array form is the plain one), the normal equations
   updated by the pixels that change between steps: the same pixels kept, coefficients ~1e-15 apart.
@@ -30,8 +32,8 @@ from types import SimpleNamespace
 import numpy as np
 
 __all__ = ["WARMUP_SPECTRA", "ccf_pairs", "compiled", "compiled_always", "continuum_iterations", "count_spectrum",
-           "cumsums", "gauss_fit", "good_snr", "pixel_screen", "prepare_finish",
-           "term_variances"]
+           "cumsums", "gauss_fit", "good_snr", "pixel_screen", "prepare_blaze",
+           "prepare_tail", "term_variances"]
 
 _COMPILED: SimpleNamespace | bool | None = None
 
@@ -304,6 +306,94 @@ def _gauss_fit(v, y, p0, scale, xtol, max_iter):   # pragma: no cover (compiled)
     return p, r, False
 
 
+def _prepare_blaze(flux, var, good, B, has_b, stride):   # pragma: no cover (compiled)
+    rows, n = flux.shape
+    ns = (n + stride - 1) // stride
+    blaze = np.empty((rows, n))
+    f = np.empty((rows, n))
+    v = np.empty((rows, n))
+    fs = np.empty((rows, ns))
+    vs = np.empty((rows, ns))
+    for r in range(rows):
+        usable = has_b[r]
+        if usable:
+            for i in range(n):
+                b = B[r, i]
+                if not ((np.isfinite(b) and b > 0) or not good[r, i]):
+                    usable = False
+                    break
+        for i in range(n):
+            gd = good[r, i]
+            blaze[r, i] = B[r, i] if (usable and gd) else 1.0
+            f[r, i] = flux[r, i] if gd else 0.0
+            v[r, i] = var[r, i] if gd else 0.0
+        for t in range(ns):
+            bs = blaze[r, t * stride]
+            fs[r, t] = f[r, t * stride] / bs
+            vs[r, t] = v[r, t * stride] / (bs * bs)
+    return blaze, f, v, fs, vs
+
+
+def _prepare_tail(coef, enough, V, blaze, good, f, v, used, stride):   # pragma: no cover (compiled)
+    rows, n = f.shape
+    k = coef.shape[1]
+    ns = used.shape[1]
+    cont = np.empty((rows, n))
+    gout = np.empty((rows, n), dtype=np.bool_)
+    fn = np.empty((rows, n))
+    vn = np.empty((rows, n))
+    q = np.empty((rows, n))
+    for r in range(rows):
+        for i in range(n):
+            if enough[r]:
+                t = 0.0
+                for j in range(k):
+                    t += coef[r, j] * V[i, j]
+            else:
+                t = np.nan
+            cont[r, i] = t * blaze[r, i]
+        # the photon weight's regression of variance on continuum, on the clipping's pixel subset
+        nw = 0.0
+        sc = 0.0
+        sv = 0.0
+        for t in range(ns):
+            i = t * stride
+            c = cont[r, i]
+            gs = good[r, i] and np.isfinite(c) and c > 0
+            u = used[r, t] and gs
+            used[r, t] = u
+            if u:
+                nw += 1.0
+                sc += c
+                sv += v[r, i]
+        nw = max(nw, 1.0)
+        mc = sc / nw
+        mv = sv / nw
+        cov = 0.0
+        scc = 0.0
+        for t in range(ns):
+            if used[r, t]:
+                i = t * stride
+                dc = cont[r, i] - mc
+                cov += dc * (v[r, i] - mv)
+                scc += dc * dc
+        a = cov / scc if scc > 0 else 0.0
+        fl = 0.25 * mv
+        for i in range(n):
+            cn = cont[r, i]
+            gd = good[r, i] and np.isfinite(cn) and cn > 0
+            c = cn if gd else 1.0
+            c2 = c * c
+            gout[r, i] = gd
+            fn[r, i] = f[r, i] / c if gd else 0.0
+            vn[r, i] = v[r, i] / c2 if gd else 0.0
+            vcont = mv + a * (c - mc)
+            den = np.nan if (np.isnan(vcont) or np.isnan(fl)) else (vcont if vcont > fl else fl)  # np.maximum
+            qq = c2 / den
+            q[r, i] = qq if (gd and den > 0) else 0.0
+    return cont, gout, fn, vn, q
+
+
 def count_spectrum() -> None:
     """Note one more prepared spectrum in this process (:data:`WARMUP_SPECTRA`)."""
     global _prepared
@@ -329,10 +419,10 @@ def _load() -> SimpleNamespace | None:
             global _gauss_cost
             _gauss_cost = jit(_gauss_cost)
             _COMPILED = SimpleNamespace(ccf_pairs=jit(_ccf_pairs), term_variances=jit(_term_variances),
-                                        cumsums=jit(_cumsums), prepare_finish=lanes(_prepare_finish),
-                                        continuum_iterations=jit(_continuum_iterations),
+                                        cumsums=jit(_cumsums), continuum_iterations=jit(_continuum_iterations),
                                         pixel_screen=lanes(_pixel_screen), good_snr=jit(_good_snr),
-                                        gauss_fit=jit(_gauss_fit))
+                                        gauss_fit=jit(_gauss_fit), prepare_blaze=lanes(_prepare_blaze),
+                                        prepare_tail=lanes(_prepare_tail))
     return _COMPILED or None
 
 
@@ -399,31 +489,6 @@ def cumsums(g, estart):
     """Each order's ``concatenate(([0], np.cumsum(g_o)))``, concatenated (``estart`` as in
     :func:`ccf_pairs`); sequential sums, as ``np.cumsum`` adds."""
     return _kernels().cumsums(g, estart)
-
-
-def _prepare_finish(f, v, good, cont, mc, mv, alpha, floor):   # pragma: no cover (compiled)
-    rows, n = f.shape
-    gout = np.empty((rows, n), dtype=np.bool_)
-    fn = np.empty((rows, n))
-    vn = np.empty((rows, n))
-    q = np.empty((rows, n))
-    for r in range(rows):
-        m_c, m_v, a, fl = mc[r], mv[r], alpha[r], floor[r]
-        for i in range(n):
-            # without branches (selects), so the loop runs on vector lanes: every quotient is formed
-            # and the ones the plain form does not take are replaced by its zeros
-            cn = cont[r, i]
-            gd = good[r, i] and np.isfinite(cn) and cn > 0
-            c = cn if gd else 1.0
-            c2 = c * c
-            gout[r, i] = gd
-            fn[r, i] = f[r, i] / c if gd else 0.0
-            vn[r, i] = v[r, i] / c2 if gd else 0.0
-            vcont = m_v + a * (c - m_c)
-            den = np.nan if (np.isnan(vcont) or np.isnan(fl)) else (vcont if vcont > fl else fl)  # np.maximum
-            qq = c2 / den
-            q[r, i] = qq if (gd and den > 0) else 0.0
-    return gout, fn, vn, q
 
 
 def _solve_small(M, x, k):   # pragma: no cover (compiled)
@@ -573,6 +638,32 @@ def gauss_fit(v, y, guess, scale, xtol=1e-12, max_iter=200):
                                 int(max_iter))
 
 
+def prepare_blaze(flux, var, good, blazes, stride):
+    """The blaze of every pixel (the order's where it is given, finite and positive at every good
+    pixel, else 1), the flux and variance zeroed at bad pixels, and both divided by the blaze (squared
+    for the variance) at every ``stride``-th pixel, for the continuum's iterations: (blaze, f, v, fs, vs).
+    ``blazes`` is one array or None per row.  The plain form is the array steps of
+    :func:`.prepare._prepare_block`; the same operations, the same values."""
+    rows, n = flux.shape
+    has_b = np.array([b is not None for b in blazes], dtype=np.bool_)
+    B = np.ones((rows, n))
+    for r, b in enumerate(blazes):
+        if b is not None:
+            B[r] = b
+    return _kernels().prepare_blaze(flux, var, np.ascontiguousarray(good), B, has_b, int(stride))
+
+
+def prepare_tail(coef, enough, V, blaze, good, f, v, used, stride):
+    """The continuum ``coef @ V.T`` times the blaze (NaN for an order with too few pixels), the photon
+    weight's regression of variance on continuum over the clipping's pixels (``used``, updated in
+    place as the plain form updates it) and the per-pixel finish (:func:`.prepare._finish_numpy`'s
+    operations pixel by pixel): (continuum, good, flux, variance, weight).  The plain form is
+    :func:`.prepare._prepare_block`'s array steps; sums run in sequence instead of numpy's pairs
+    (~1e-15 relative)."""
+    return _kernels().prepare_tail(np.ascontiguousarray(coef), np.ascontiguousarray(enough), np.ascontiguousarray(V),
+                                   blaze, np.ascontiguousarray(good), f, v, used, int(stride))
+
+
 def good_snr(flux, var, good, step):
     """``flux / sqrt(var)`` at every ``step``-th good pixel of each row, rows one after another (the
     plain form: ``np.flatnonzero(good_row)[::step]`` row by row, in :func:`.mask_engine.measure_mask`)."""
@@ -591,8 +682,3 @@ def pixel_screen(flux, var, max_width, nsigma, contrast):
                                    int(max_width), float(nsigma), float(contrast))
 
 
-def prepare_finish(f, v, good, cont, mc, mv, alpha, floor):
-    """(good, normalised flux, its variance, photon weight) of every pixel of a block of orders
-    (:func:`.prepare._finish_numpy` is the plain form: the same operations on whole arrays)."""
-    return _kernels().prepare_finish(np.ascontiguousarray(f), np.ascontiguousarray(v), np.ascontiguousarray(good),
-                                     np.ascontiguousarray(cont), mc, mv, alpha, floor)

@@ -255,7 +255,7 @@ def fit_continuum(flux: np.ndarray, var: np.ndarray, good: np.ndarray, *, degree
 
 def _finish_numpy(f, v, good, cont, mc, mv, alpha, floor):
     """Normalised flux and variance and the photon weight of every pixel (the plain NumPy form of
-    :func:`.kernels.prepare_finish`, which does the same operations pixel by pixel)."""
+    :func:`.kernels.prepare_tail`, which does the same operations pixel by pixel)."""
     good = good & np.isfinite(cont) & (cont > 0)
     c = np.where(good, cont, 1.0)
     fn = np.where(good, f / c, 0.0)
@@ -269,10 +269,10 @@ def _finish_numpy(f, v, good, cont, mc, mv, alpha, floor):
 def _prepare_block(orders: list[Order], degree: int, compiled: bool | None = None) -> list[PreparedOrder | None]:
     """Prepare orders of equal length together (array operations across orders).
 
-    ``compiled``: the screening's first pass by :func:`.kernels.pixel_screen` and the last per-pixel
-    step by :func:`.kernels.prepare_finish` (default: when the compiled kernels are in use), or
-    :func:`.badpixels.bad_pixels`, :func:`.outliers.find_spikes` and :func:`_finish_numpy`; the results
-    are the same to the last bit."""
+    ``compiled``: the per-pixel steps by the compiled kernels (:func:`.kernels.pixel_screen`,
+    :func:`.kernels.prepare_blaze`, :func:`.kernels.prepare_tail`; default: when they are in use), or
+    the array steps below (:func:`.badpixels.bad_pixels`, :func:`.outliers.find_spikes`,
+    :func:`_finish_numpy`): the same pixels, values equal to ~1e-15 relative (sums in another order)."""
     flux = np.vstack([o.flux for o in orders])
     var = np.vstack([o.var for o in orders])
     n = flux.shape[1]
@@ -286,41 +286,46 @@ def _prepare_block(orders: list[Order], degree: int, compiled: bool | None = Non
         good = ~bad_pixels(flux, var) & ~find_spikes(flux, var)
         with np.errstate(invalid="ignore"):
             given_ok = np.isfinite(flux) & np.isfinite(var) & (var > 0)
-    blaze = np.ones_like(flux)
-    given = [k for k, o in enumerate(orders) if o.blaze is not None]
-    if given:
-        b = np.vstack([orders[k].blaze for k in given])
-        usable = np.all((np.isfinite(b) & (b > 0)) | ~good[given], axis=1)
-        rows = np.array(given)[usable]
-        blaze[rows] = np.where(good[rows], b[usable], 1.0)
-    f = np.where(good, flux, 0.0)
-    v = np.where(good, var, 0.0)
-    # the clipping iterations see every stride-th pixel only: divide by the blaze there alone
-    stride = max(1, n // 1024)
-    bs = blaze[:, ::stride]
-    coef, used, stride, _ = _continuum_core(f[:, ::stride] / bs, v[:, ::stride] / bs**2, good[:, ::stride],
-                                            degree, 2.0, 3.0, 10, n=n, compiled=compiled)
-    enough = used.sum(axis=1) > degree + 1
-    cont = np.where(enough[:, None], coef @ _legendre_design(n, degree).T, np.nan) * blaze
-    # photon weight q = 1 / var_f at continuum level = c^2 / (alpha c + beta): the variance of the
-    # counts at the continuum, regressed linearly on the continuum (exact for photon + read noise),
-    # on the same pixel subset as the continuum's clipping
-    cs = cont[:, ::stride]
-    gs = good[:, ::stride] & np.isfinite(cs) & (cs > 0)
-    used &= gs
-    w = used.astype(float)
-    cs, vs = np.where(gs, cs, 1.0), v[:, ::stride]
-    nw = np.maximum(w.sum(axis=1), 1.0)
-    mc = np.sum(w * cs, axis=1) / nw
-    mv = np.sum(w * vs, axis=1) / nw
-    cov = np.sum(w * (cs - mc[:, None]) * (vs - mv[:, None]), axis=1)
-    scc = np.sum(w * (cs - mc[:, None]) ** 2, axis=1)
-    alpha = np.where(scc > 0, cov / np.where(scc > 0, scc, 1.0), 0.0)
-    floor = 0.25 * mv
-    if kernels.compiled() is not None if compiled is None else compiled:
-        good, fn, vn, q = kernels.prepare_finish(f, v, good, cont, mc, mv, alpha, floor)
+    fast = kernels.compiled() is not None if compiled is None else compiled
+    stride = max(1, n // 1024)   # the clipping iterations see every stride-th pixel only
+    if fast:
+        blaze, f, v, fs, vs = kernels.prepare_blaze(flux, var, good, [o.blaze for o in orders], stride)
     else:
-        good, fn, vn, q = _finish_numpy(f, v, good, cont, mc, mv, alpha, floor)
+        blaze = np.ones_like(flux)
+        given = [k for k, o in enumerate(orders) if o.blaze is not None]
+        if given:
+            b = np.vstack([orders[k].blaze for k in given])
+            usable = np.all((np.isfinite(b) & (b > 0)) | ~good[given], axis=1)
+            rows = np.array(given)[usable]
+            blaze[rows] = np.where(good[rows], b[usable], 1.0)
+        f = np.where(good, flux, 0.0)
+        v = np.where(good, var, 0.0)
+        # divided by the blaze at the iterations' pixels alone
+        bs = blaze[:, ::stride]
+        fs, vs = f[:, ::stride] / bs, v[:, ::stride] / bs**2
+    coef, used, stride, _ = _continuum_core(fs, vs, good[:, ::stride], degree, 2.0, 3.0, 10, n=n, compiled=compiled)
+    enough = used.sum(axis=1) > degree + 1
+    if fast:
+        used = np.ascontiguousarray(used)
+        cont, good, fn, vn, q = kernels.prepare_tail(coef, enough, _legendre_design(n, degree), blaze, good, f, v,
+                                                     used, stride)
+    else:
+        cont = np.where(enough[:, None], coef @ _legendre_design(n, degree).T, np.nan) * blaze
+        # photon weight q = 1 / var_f at continuum level = c^2 / (alpha c + beta): the variance of the
+        # counts at the continuum, regressed linearly on the continuum (exact for photon + read noise),
+        # on the same pixel subset as the continuum's clipping
+        cs = cont[:, ::stride]
+        gs = good[:, ::stride] & np.isfinite(cs) & (cs > 0)
+        used &= gs
+        w = used.astype(float)
+        cs, vsub = np.where(gs, cs, 1.0), v[:, ::stride]
+        nw = np.maximum(w.sum(axis=1), 1.0)
+        mc = np.sum(w * cs, axis=1) / nw
+        mv = np.sum(w * vsub, axis=1) / nw
+        cov = np.sum(w * (cs - mc[:, None]) * (vsub - mv[:, None]), axis=1)
+        scc = np.sum(w * (cs - mc[:, None]) ** 2, axis=1)
+        alpha = np.where(scc > 0, cov / np.where(scc > 0, scc, 1.0), 0.0)
+        good, fn, vn, q = _finish_numpy(f, v, good, cont, mc, mv, alpha, 0.25 * mv)
     usable = (good.sum(axis=1) >= max(32, 4 * (degree + 1))) & (used.sum(axis=1) * stride >= 10)
     keep = np.flatnonzero(usable)
     if keep.size == 0:
