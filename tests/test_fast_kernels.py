@@ -565,3 +565,27 @@ def test_ccf_values_alone_equal_the_full_correlation(compiled):
         np.testing.assert_array_equal(short.ccf, full.ccf)
     far = LineMask(np.array([7000.0]), np.array([1.0]))
     assert correlate(orders, far, v, 500.0, compiled=compiled, values_only=True).n_orders == 0
+
+
+def test_line_pulls_equal_the_gradient_of_every_line():
+    # the plain form: np.gradient of each line's own CCF, weighted, over the summed denominator, times
+    # the fit's gain on the centre (what line_moments computed before the transpose)
+    from lineshift.measure.ccf import correlate
+    from lineshift.measure.recentre import line_moments
+    from lineshift.model import LineMask
+
+    orders = _holed_orders()
+    mask = LineMask(np.array([5001.0, 5002.5, 5003.0, 5004.1, 5009.2, 5011.9]), np.linspace(0.3, 1.0, 6))
+    v = np.linspace(-10e3, 10e3, 41)
+    data = correlate(orders, mask, v, 500.0, keep_lines=True)
+    gain = np.random.default_rng(3).normal(size=v.size)
+    mom = line_moments(data, 0.0, 3000.0, gain)
+    num = np.concatenate([t.line_num for t in data.terms])
+    w = np.concatenate([t.weights for t in data.terms])
+    den = np.concatenate([t.line_den for t in data.terms])
+    lines = np.concatenate([t.lines for t in data.terms])
+    with np.errstate(invalid="ignore", divide="ignore"):
+        ok = np.all(np.isfinite(num / den) & (den > 0), axis=1)       # the rows line_moments uses
+    plain = -(np.gradient(num, v, axis=1) * w[:, None] / data.denominator) @ gain
+    expect = np.array([plain[(lines == u) & ok].sum() for u in mom.lines])
+    np.testing.assert_allclose(mom.a, expect, rtol=1e-10, atol=1e-12 * np.abs(expect).max())

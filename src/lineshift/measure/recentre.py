@@ -73,11 +73,15 @@ def line_moments(data: CorrelationData, mu: float, sigma: float, gain_mu: np.nda
     ok = np.all(np.isfinite(c) & (den_l > 0), axis=1)
     coef = np.where(ok[:, None], c, 0.0) @ P
     weights = np.concatenate([t.weights for t in data.terms])
-    slope = np.gradient(num, v, axis=1) * weights[:, None] / data.denominator
+    # each line's pull (np.gradient(num, v, axis=1) * w / D) @ gain_mu, through the gradient's
+    # transpose applied to gain_mu / D once (np.gradient is linear: its matrix's rows are the gradients
+    # of the unit vectors) instead of the gradient of every line's CCF
+    gt = np.gradient(np.eye(v.size), v, axis=1)             # gt[i, j] = d gradient_j / d num_i
+    pull = (num @ (gt @ (gain_mu / data.denominator))) * weights
     lines = np.concatenate([t.lines for t in data.terms])[ok]
     u, inv = np.unique(lines, return_inverse=True)
     return LineMoments(u, np.bincount(inv, coef[ok, 1], u.size), np.bincount(inv, coef[ok, 2], u.size),
-                       np.bincount(inv, -(slope @ gain_mu)[ok], u.size), float(sigma), data.n_cleared)
+                       np.bincount(inv, -pull[ok], u.size), float(sigma), data.n_cleared)
 
 
 def batch_offsets(moments: list[LineMoments], n_lines: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
