@@ -31,7 +31,7 @@ import numpy as np
 from lineshift.measure.ccf import CorrelationData
 from lineshift.model import C_MS, LineMask
 
-__all__ = ["LineMoments", "batch_offsets", "line_moments", "recentred_mask"]
+__all__ = ["LineMoments", "MomentSums", "batch_offsets", "line_moments", "recentred_mask"]
 
 
 @dataclass(frozen=True)
@@ -84,24 +84,48 @@ def line_moments(data: CorrelationData, mu: float, sigma: float, gain_mu: np.nda
                        np.bincount(inv, -pull[ok], u.size), float(sigma), data.n_cleared)
 
 
-def batch_offsets(moments: list[LineMoments], n_lines: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+class MomentSums:
+    """What :func:`batch_offsets` needs of a batch's line moments, summed one spectrum at a time
+    (:meth:`add`), so that a batch holds a few arrays of the mask's size instead of every spectrum's
+    moments (~30 kB each for a mask of 1000 lines)."""
+
+    def __init__(self, n_lines: int):
+        self.B = np.zeros(n_lines)
+        self.E = np.zeros(n_lines)
+        self.W = np.zeros(n_lines)
+        self.measured = np.zeros(n_lines, dtype=bool)
+        self.sigmas: list[float] = []
+        self.cleared = False      # some spectrum left lines out because bad pixels met their boxes
+
+    def add(self, m: LineMoments) -> None:
+        np.add.at(self.B, m.lines, m.b)
+        np.add.at(self.E, m.lines, m.e)
+        np.add.at(self.W, m.lines, m.a)
+        self.measured[m.lines] = True
+        self.sigmas.append(m.sigma)
+        self.cleared |= m.n_cleared > 0
+
+    def __len__(self) -> int:
+        return len(self.sigmas)
+
+    @classmethod
+    def of(cls, moments: list[LineMoments], n_lines: int) -> MomentSums:
+        sums = cls(n_lines)
+        for m in moments:
+            sums.add(m)
+        return sums
+
+
+def batch_offsets(moments: list[LineMoments] | MomentSums, n_lines: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Offsets (m/s) of the mask's ``n_lines`` lines from the batch's summed coefficients.
 
-    Returns (offset, measured, usable): ``measured`` lines entered at least one spectrum; ``usable``
-    is false for measured lines with no dip in the batch mean or a centre more than half the
-    median sigma away.
+    ``moments``: every spectrum's :class:`LineMoments`, or their :class:`MomentSums`.  Returns
+    (offset, measured, usable): ``measured`` lines entered at least one spectrum; ``usable`` is false
+    for measured lines with no dip in the batch mean or a centre more than half the median sigma away.
     """
-    B = np.zeros(n_lines)
-    E = np.zeros(n_lines)
-    W = np.zeros(n_lines)
-    for m in moments:
-        np.add.at(B, m.lines, m.b)
-        np.add.at(E, m.lines, m.e)
-        np.add.at(W, m.lines, m.a)
-    measured = np.zeros(n_lines, dtype=bool)
-    for m in moments:
-        measured[m.lines] = True
-    sigma = float(np.median([m.sigma for m in moments])) if moments else np.inf
+    sums = moments if isinstance(moments, MomentSums) else MomentSums.of(moments, n_lines)
+    B, E, W, measured = sums.B, sums.E, sums.W, sums.measured
+    sigma = float(np.median(sums.sigmas)) if sums.sigmas else np.inf
     with np.errstate(invalid="ignore", divide="ignore"):
         off = np.where(measured & (B < 0), E / B, 0.0)
     usable = ~measured | ((B < 0) & (np.abs(off) < 0.5 * sigma))
@@ -113,7 +137,7 @@ def batch_offsets(moments: list[LineMoments], n_lines: int) -> tuple[np.ndarray,
     return np.where(usable, off, 0.0), measured, usable
 
 
-def recentred_mask(mask: LineMask, moments: list[LineMoments]) -> tuple[LineMask, str]:
+def recentred_mask(mask: LineMask, moments: list[LineMoments] | MomentSums) -> tuple[LineMask, str]:
     """The mask with each line moved to its batch-mean centre (unusable lines dropped), and a note."""
     off, measured, usable = batch_offsets(moments, len(mask))
     out = LineMask(mask.wavelength * (1 + off / C_MS), mask.weight, mask.species, mask.source,

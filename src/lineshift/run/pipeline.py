@@ -820,7 +820,7 @@ def measure_files(paths: list[str], mask: LineMask, settings: MeasureSettings, *
     else:
         done = run_tasks(measure_task, todo, replace(ctx, line_moments=recentre), workers=workers, scheduler=scheduler)
         if recentre:
-            done = _recentred_pass(list(done), ctx, workers=workers, scheduler=scheduler)
+            done = _recentred_pass(done, ctx, workers=workers, scheduler=scheduler)
         for task, row in done:
             row.pop("_line_moments", None)
             if store is not None and not (scheduler and cluster_failure(row)):
@@ -843,24 +843,39 @@ MIN_RECENTRE = 4
 RECENTRE_PASSES = 2
 
 
-def _recentred_pass(done: list, ctx: Context, *, workers: int, scheduler) -> list:
+def _summed(pairs, n_lines: int) -> tuple[list, object]:
+    """The (task, row) pairs, each row's line moments taken out of it and summed as it arrives (a
+    batch keeps the sums, not every spectrum's moments)."""
+    from lineshift.measure.recentre import MomentSums
+
+    sums, out = MomentSums(n_lines), []
+    for t, row in pairs:
+        m = row.pop("_line_moments", None)
+        if m is not None:
+            sums.add(m)
+        out.append((t, row))
+    return out, sums
+
+
+def _recentred_pass(done, ctx: Context, *, workers: int, scheduler) -> list:
     """Measure again against the mask recentred on the line offsets (measure/recentre.py); the offsets
     are first-order estimates, so the recentring is repeated on the residual offsets."""
     from lineshift.measure.recentre import recentred_mask
 
     mask, notes = ctx.mask, []
+    done, sums = _summed(done, len(mask))
     first = {t.index: row for t, row in done}
     for it in range(RECENTRE_PASSES):
-        moments = [row.pop("_line_moments") for _, row in done if row.get("_line_moments") is not None]
         # only where bad pixels made the line sets differ: clean batches are measured as before
-        if len(moments) < MIN_RECENTRE or (it == 0 and not any(m.n_cleared for m in moments)):
+        if len(sums) < MIN_RECENTRE or (it == 0 and not sums.cleared):
             break
-        mask, note = recentred_mask(mask, moments)
+        mask, note = recentred_mask(mask, sums)
         notes.append(note)
         last = it == RECENTRE_PASSES - 1
-        again = {t.index: (t, r) for t, r in run_tasks(measure_task, [t for t, _ in done],
-                                                        replace(ctx, mask=mask, line_moments=not last),
-                                                        workers=workers, scheduler=scheduler)}
+        pairs, sums = _summed(run_tasks(measure_task, [t for t, _ in done], replace(ctx, mask=mask,
+                                                                                    line_moments=not last),
+                                        workers=workers, scheduler=scheduler), len(mask))
+        again = {t.index: (t, r) for t, r in pairs}
         # a spectrum the recentred mask cannot measure keeps its earlier row
         done = [again[t.index] if again[t.index][1]["status"] == "ok" or row["status"] != "ok" else (t, row)
                 for t, row in done]
