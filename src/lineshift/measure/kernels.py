@@ -344,14 +344,15 @@ def _prepare_tail(coef, enough, V, blaze, good, f, v, used, stride):   # pragma:
     vn = np.empty((rows, n))
     q = np.empty((rows, n))
     for r in range(rows):
-        for i in range(n):
-            if enough[r]:
+        if enough[r]:
+            for i in range(n):
                 t = 0.0
                 for j in range(k):
                     t += coef[r, j] * V[i, j]
-            else:
-                t = np.nan
-            cont[r, i] = t * blaze[r, i]
+                cont[r, i] = t * blaze[r, i]
+        else:
+            for i in range(n):
+                cont[r, i] = np.nan * blaze[r, i]
         # the photon weight's regression of variance on continuum, on the clipping's pixel subset
         nw = 0.0
         sc = 0.0
@@ -379,18 +380,18 @@ def _prepare_tail(coef, enough, V, blaze, good, f, v, used, stride):   # pragma:
                 scc += dc * dc
         a = cov / scc if scc > 0 else 0.0
         fl = 0.25 * mv
-        for i in range(n):
+        for i in range(n):            # no branches: selects on vector lanes
             cn = cont[r, i]
-            gd = good[r, i] and np.isfinite(cn) and cn > 0
+            gd = good[r, i] & np.isfinite(cn) & (cn > 0)
             c = cn if gd else 1.0
             c2 = c * c
             gout[r, i] = gd
             fn[r, i] = f[r, i] / c if gd else 0.0
             vn[r, i] = v[r, i] / c2 if gd else 0.0
             vcont = mv + a * (c - mc)
-            den = np.nan if (np.isnan(vcont) or np.isnan(fl)) else (vcont if vcont > fl else fl)  # np.maximum
+            den = np.nan if (np.isnan(vcont) | np.isnan(fl)) else (vcont if vcont > fl else fl)  # np.maximum
             qq = c2 / den
-            q[r, i] = qq if (gd and den > 0) else 0.0
+            q[r, i] = qq if (gd & (den > 0)) else 0.0
     return cont, gout, fn, vn, q
 
 
@@ -644,13 +645,10 @@ def prepare_blaze(flux, var, good, blazes, stride):
     for the variance) at every ``stride``-th pixel, for the continuum's iterations: (blaze, f, v, fs, vs).
     ``blazes`` is one array or None per row.  The plain form is the array steps of
     :func:`.prepare._prepare_block`; the same operations, the same values."""
-    rows, n = flux.shape
     has_b = np.array([b is not None for b in blazes], dtype=np.bool_)
-    B = np.ones((rows, n))
-    for r, b in enumerate(blazes):
-        if b is not None:
-            B[r] = b
-    return _kernels().prepare_blaze(flux, var, np.ascontiguousarray(good), B, has_b, int(stride))
+    B = np.vstack([b if b is not None else flux[r] for r, b in enumerate(blazes)]) if has_b.any() else flux
+    return _kernels().prepare_blaze(flux, var, np.ascontiguousarray(good), np.ascontiguousarray(B, dtype=float),
+                                    has_b, int(stride))
 
 
 def prepare_tail(coef, enough, V, blaze, good, f, v, used, stride):
