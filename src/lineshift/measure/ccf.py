@@ -267,9 +267,12 @@ class _Orders:
         good2 = block_rows(orders, "good")
         if good2 is not None and good2.shape[1] and good2.any(axis=1).all():   # a block's rows: no loop
             n = good2.shape[1]
-            first = np.argmax(good2, axis=1)
-            last = n - 1 - np.argmax(good2[:, ::-1], axis=1)
-            count = np.count_nonzero(good2, axis=1)
+            if compiled:
+                first, last, count = kernels.good_spans(good2)
+            else:
+                first = np.argmax(good2, axis=1)
+                last = n - 1 - np.argmax(good2[:, ::-1], axis=1)
+                count = np.count_nonzero(good2, axis=1)
             k = np.arange(len(orders))
             edges2 = block_rows(orders, "edges")
             lo = edges2[k, first] if edges2 is not None else [o.edges[i] for o, i in zip(orders, first, strict=True)]

@@ -32,7 +32,7 @@ from types import SimpleNamespace
 import numpy as np
 
 __all__ = ["WARMUP_SPECTRA", "ccf_pairs", "compiled", "compiled_always", "continuum_iterations", "count_spectrum",
-           "cumsums", "gauss_fit", "good_snr", "pixel_screen", "prepare_blaze",
+           "cumsums", "gauss_fit", "good_snr", "good_spans", "pixel_screen", "prepare_blaze",
            "prepare_tail", "term_variances"]
 
 _COMPILED: SimpleNamespace | bool | None = None
@@ -395,6 +395,27 @@ def _prepare_tail(coef, enough, V, blaze, good, f, v, used, stride):   # pragma:
     return cont, gout, fn, vn, q
 
 
+def _good_spans(good):   # pragma: no cover (compiled)
+    rows, n = good.shape
+    first = np.full(rows, -1, dtype=np.intp)
+    last = np.full(rows, -1, dtype=np.intp)
+    count = np.zeros(rows, dtype=np.intp)
+    for r in range(rows):
+        c = 0
+        for i in range(n):
+            c += good[r, i]
+        count[r] = c
+        for i in range(n):
+            if good[r, i]:
+                first[r] = i
+                break
+        for i in range(n - 1, -1, -1):
+            if good[r, i]:
+                last[r] = i
+                break
+    return first, last, count
+
+
 def count_spectrum() -> None:
     """Note one more prepared spectrum in this process (:data:`WARMUP_SPECTRA`)."""
     global _prepared
@@ -422,7 +443,8 @@ def _load() -> SimpleNamespace | None:
             _COMPILED = SimpleNamespace(ccf_pairs=jit(_ccf_pairs), term_variances=jit(_term_variances),
                                         cumsums=jit(_cumsums), continuum_iterations=jit(_continuum_iterations),
                                         pixel_screen=lanes(_pixel_screen), good_snr=jit(_good_snr),
-                                        gauss_fit=jit(_gauss_fit), prepare_blaze=lanes(_prepare_blaze),
+                                        gauss_fit=jit(_gauss_fit), good_spans=jit(_good_spans),
+                                        prepare_blaze=lanes(_prepare_blaze),
                                         prepare_tail=lanes(_prepare_tail))
     return _COMPILED or None
 
@@ -660,6 +682,12 @@ def prepare_tail(coef, enough, V, blaze, good, f, v, used, stride):
     (~1e-15 relative)."""
     return _kernels().prepare_tail(np.ascontiguousarray(coef), np.ascontiguousarray(enough), np.ascontiguousarray(V),
                                    blaze, np.ascontiguousarray(good), f, v, used, int(stride))
+
+
+def good_spans(good):
+    """First and last True column and the count of True of each row of a 2-D boolean array (-1 where a
+    row has none): ``np.argmax`` from both ends and ``np.count_nonzero`` per row, in one pass."""
+    return _kernels().good_spans(np.ascontiguousarray(good))
 
 
 def good_snr(flux, var, good, step):
