@@ -41,6 +41,7 @@ import numpy as np
 from scipy.ndimage import gaussian_filter1d, spline_filter1d
 
 from lineshift.errors import MeasurementError
+from lineshift.measure import fit_kernels
 from lineshift.measure.coadd import (
     TemplateAccumulator,
     bspline,
@@ -285,11 +286,17 @@ class TemplateState:
         return flux, var, ok
 
     def fit_arrays(self, orders: list[PreparedOrder], factor: float | None, band_factor: float = 1.0,
-                   contributions: list | None = None):
+                   contributions: list | None = None, *, compiled: bool | None = None, out: tuple | None = None):
         """What :func:`measure_template` fits against: (B-spline coefficients, variance, usable) of the
         template without this spectrum (:meth:`without`), smoothed (:meth:`smoothed`), prefiltered
         (:meth:`prefilter`), with the variance 0 where it is not usable.  The same numbers as those
-        three in turn, computed one segment at a time (no temporaries of the whole template)."""
+        three in turn, computed one segment at a time (no temporaries of the whole template).
+
+        ``compiled``: each segment by :func:`.fit_kernels.template_segment` (True), by the array steps
+        below, its plain form (False), or as :func:`.fit_kernels.compiled` says (None): the same
+        numbers to the last bit (tests/test_fit_kernels.py).  ``out``: three arrays of the template's
+        size (float, float, bool) to fill and return instead of new ones."""
+        fast = fit_kernels.compiled() if compiled is None else (fit_kernels.compiled_always() if compiled else None)
         own: dict[int, list] = {}     # segment offset -> this spectrum's contributions to it
         if factor is not None:
             if contributions is None:
@@ -308,9 +315,29 @@ class TemplateState:
             floor = self.__dict__["_sw_floor"] = 1e-12 * np.max(self.sw)
         sig = self.smooth / (C_MS * np.expm1(self.dlng))
         corr = max(self.pixel_step / (C_MS * np.expm1(self.dlng)), 1.0) if self.pixel_step else 1.0
-        coef, var_out, ok_out = np.empty(self.sw.size), np.empty(self.sw.size), np.empty(self.sw.size, dtype=bool)
+        if out is None:
+            out = np.empty(self.sw.size), np.empty(self.sw.size), np.empty(self.sw.size, dtype=bool)
+        coef, var_out, ok_out = out
+        smooth = None
+        if fast is not None and sig >= 0.3:
+            smooth = (fit_kernels.gaussian_weights(sig), fit_kernels.gaussian_weights(sig / np.sqrt(2)),
+                      2 * np.sqrt(np.pi) * sig, corr)
         for _, _, off, n in self.segments:
             sl = slice(off, off + n)
+            if fast is not None:
+                pieces = own.get(off)
+                sw, swf, sw2v, piece = self.sw[sl], self.swf[sl], self.sw2v[sl], None
+                if pieces is not None and len(pieces) == 1:
+                    piece = pieces[0]
+                elif pieces is not None:          # several contributions to one segment: taken off here
+                    sw, swf, sw2v = sw.copy(), swf.copy(), sw2v.copy()
+                    for dst, src, w, wf, w2v in pieces:
+                        sw[dst] -= w[src]
+                        swf[dst] -= wf[src]
+                        sw2v[dst] -= w2v[src]
+                fit_kernels.template_segment(sw, swf, sw2v, self.flagged[sl], piece, floor, smooth, coef[sl],
+                                             var_out[sl], ok_out[sl])
+                continue
             sw, swf, sw2v = self.sw[sl], self.swf[sl], self.sw2v[sl]
             if off in own:
                 sw, swf, sw2v = sw.copy(), swf.copy(), sw2v.copy()
@@ -336,6 +363,8 @@ class TemplateState:
             ok &= np.isfinite(var)
             var_out[sl] = np.where(ok, var, 0.0)
             ok_out[sl] = ok
+        if fast is not None:   # the flux of every segment is in place: its B-spline coefficients
+            fit_kernels.prefilter_segments(coef, self.segments)
         return coef, var_out, ok_out
 
     def prefilter(self, flux: np.ndarray) -> np.ndarray:
@@ -378,15 +407,18 @@ class TemplateResult:
 
 def measure_template(orders: list[PreparedOrder], state: TemplateState, settings: TemplateSettings, *,
                      delta0: float, factor: float | None, berv: float = 0.0, path: str | None = None,
-                     band_factor: float = 1.0, key=None) -> TemplateResult:
+                     band_factor: float = 1.0, key=None, compiled: bool | None = None) -> TemplateResult:
     """Topocentric velocity (relative to the template's frame) of one prepared spectrum.
 
     ``delta0`` is the starting ln(1 + rv_topo/c); ``factor`` the co-adding factor this spectrum
     entered the template with (None when it is not part of it: nothing is subtracted);
     ``band_factor`` file-frame / observatory-frame wavelength, placing the telluric bands (1 unless
     the file is barycentric); ``key`` the name the co-add kept this spectrum's screening and
-    contribution under (:meth:`TemplateState.keep`), if any.
+    contribution under (:meth:`TemplateState.keep`), if any; ``compiled``: the template arrays and the
+    fits by the compiled kernels of :mod:`.fit_kernels` (True), by their NumPy forms (False), or as
+    :func:`.fit_kernels.compiled` says (None).
     """
+    fast = fit_kernels.compiled() if compiled is None else (fit_kernels.compiled_always() if compiled else None)
     if not orders:
         raise MeasurementError("no usable order (too few valid pixels)", path=path, status="no valid pixels")
     kept = state.kept(key, factor, band_factor)
@@ -397,7 +429,11 @@ def measure_template(orders: list[PreparedOrder], state: TemplateState, settings
     else:   # as the co-add screened and added it
         goods, own = kept
         orders = [o if g is None else replace(o, good=g) for o, g in zip(orders, goods, strict=True)]
-    coef, var_t, ok_t = state.fit_arrays(orders, factor, band_factor, own)
+    # with the compiled kernels in work arrays of this thread (allocating them anew costs more than filling)
+    out = None if fast is None else (fit_kernels.scratch("template_coef", state.sw.shape),
+                                     fit_kernels.scratch("template_var", state.sw.shape),
+                                     fit_kernels.scratch("template_ok", state.sw.shape, bool))
+    coef, var_t, ok_t = state.fit_arrays(orders, factor, band_factor, own, compiled=fast is not None, out=out)
     # this spectrum's telluric pixels (listed bands and lines found in the batch), in its own frame
     orders = [drop_bands(o, state.bands * band_factor) for o in orders]
     rows = []
@@ -409,17 +445,20 @@ def measure_template(orders: list[PreparedOrder], state: TemplateState, settings
             continue
         by_len.setdefault(o.flux.size, []).append(o)
     residuals = {}
-    pair = (ok_t[:-1] & ok_t[1:], np.diff(var_t))
+    if fast is not None:
+        fit, pair = _fit_block_compiled, None
+    else:
+        fit, pair = _fit_block, (ok_t[:-1] & ok_t[1:], np.diff(var_t))
     for block in _chunks(by_len.values()):
-        fits, bins = _fit_block(block, coef, var_t, ok_t, state, settings, delta0, pair)
+        fits, bins = fit(block, coef, var_t, ok_t, state, settings, delta0, pair)
         for o, (v, e, chi2), b in zip(block, fits, bins, strict=True):
             if np.isfinite(v):
                 residuals[int(o.index)] = b
             if not np.isfinite(v):
-                rows.append({"order": int(o.index), "wavelength": float(np.median(o.wave)), "rv": np.nan,
+                rows.append({"order": int(o.index), "wavelength": _median_wavelength(o, fast), "rv": np.nan,
                              "rv_err": np.nan, "chi2_red": np.nan, "flag": "no fit"})
                 continue
-            rows.append({"order": int(o.index), "wavelength": float(np.median(o.wave)), "rv": float(v),
+            rows.append({"order": int(o.index), "wavelength": _median_wavelength(o, fast), "rv": float(v),
                          "rv_err": float(e), "chi2_red": float(chi2),
                          "flag": "poor fit" if chi2 > settings.poor_chi2 else ""})
     rows.sort(key=lambda r: r["order"])
@@ -564,6 +603,41 @@ def _fit_block(block: list[PreparedOrder], coef, var_t, ok_t, state: TemplateSta
     bad = ~alive | ~np.isfinite(p).all(axis=1)
     bins = bin_residuals(wave, r, poly * T, w, g)
     return [(np.nan, np.nan, np.nan) if bad[j] else (v[j], e[j], chi2[j]) for j in range(k)], bins
+
+
+def _fit_block_compiled(block: list[PreparedOrder], coef, var_t, ok_t, state: TemplateState,
+                        settings: TemplateSettings, delta0: float, pair=None):
+    """:func:`_fit_block` by the compiled loop of :func:`.fit_kernels.fit_orders` (``pair`` is not
+    needed: it reads the template's usable points and variance steps where it uses them); the NumPy
+    form where an elimination met an exactly zero pivot, so a singular system fails as it does there."""
+    deg = settings.poly_degree
+    if deg > 3:   # the compiled loop keeps its sums in scalars for degrees up to 3
+        return _fit_block(block, coef, var_t, ok_t, state, settings, delta0, pair)
+    base, lo_i, hi_i, wave, flux, var, use = _block_arrays(block, state, settings)
+    k, n = flux.shape
+    p = np.zeros((k, deg + 2))
+    p[:, 0] = delta0
+    p[:, 1] = 1.0
+    xi0 = (np.log(wave) - state.lng0) / state.dlng + base   # template index at delta = 0
+    ok, alive, chi2, cov00, r, model, w, g = fit_kernels.fit_orders(
+        coef, var_t, ok_t, xi0, lo_i[:, 0], hi_i[:, 0], flux, var, use, _powers(n, 6), p, state.dlng,
+        settings.iterations)
+    if not ok:
+        return _fit_block(block, coef, var_t, ok_t, state, settings, delta0, pair)
+    v = C_MS * np.expm1(p[:, 0])
+    e = C_MS * np.exp(p[:, 0]) * np.sqrt(np.abs(cov00))
+    bad = ~alive | ~np.isfinite(p).all(axis=1)
+    bins = bin_residuals(wave, r, model, w, g)
+    return [(np.nan, np.nan, np.nan) if bad[j] else (v[j], e[j], chi2[j]) for j in range(k)], bins
+
+
+def _median_wavelength(o: PreparedOrder, fast) -> float:
+    """``np.median(o.wave)``; with the compiled kernels the middle of the array when it is monotone."""
+    if fast is not None:
+        m = fast.monotone_median(o.wave)
+        if m == m:
+            return float(m)
+    return float(np.median(o.wave))
 
 
 def _fit_block_reference(block: list[PreparedOrder], coef, var_t, ok_t, state: TemplateState,

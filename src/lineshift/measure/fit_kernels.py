@@ -1,0 +1,524 @@
+"""Compiled forms (numba) of the template engine's per-spectrum work (:mod:`.template_engine`), each
+with its plain NumPy form kept in the caller and tested against it (tests/test_fit_kernels.py).
+
+* :func:`template_segment`: one segment of what a spectrum is fitted against
+  (:meth:`.template_engine.TemplateState.fit_arrays`; plain form: the array steps there, which are
+  :meth:`~.template_engine.TemplateState.without`, :meth:`~.template_engine.TemplateState.smoothed` and
+  :meth:`~.template_engine.TemplateState.prefilter`): its own contribution taken off, flux and
+  variance, the Gaussian smoothing (a normalised convolution) and the cubic B-spline prefilter, in
+  two passes over the points instead of some thirty whole-array operations.  The Gaussian is the
+  kernel of ``scipy.ndimage.gaussian_filter1d`` (truncated at 4 sigma, normalised to a sum of 1,
+  zeros outside the segment) applied with the same additions in the same order, the prefilter the
+  recursive filter of Unser, Aldroubi & Eden (1991, IEEE PAMI 13, 277) with the mirror start of
+  ``scipy.ndimage.spline_filter1d``: the same numbers to the last bit (tested against scipy).
+* :func:`fit_orders`: the Gauss-Newton iterations of a block of orders (:func:`.template_engine._fit_block`,
+  whose plain forms are ``_fit_block`` itself and ``_fit_block_reference``): the B-spline, the
+  weights and residuals, and the moment sums of the normal equations in one loop over the pixels,
+  the 5 x 5 systems solved by Gaussian elimination with partial pivoting (as LAPACK's getrf/getrs).
+  The sums run sequentially over the pixels where the NumPy form's matrix products let BLAS block
+  (and fuse) them, so the velocities differ in the last bits: ~1e-12 of their errors.
+* :func:`monotone_median`: the median of an order's wavelengths, the middle of the array when it is
+  monotone (the same number as ``np.median``), NaN otherwise (the caller then takes ``np.median``).
+
+The compiled forms are used when :func:`.kernels.compiled` says so (``LINESHIFT_JIT``: ``1`` always,
+``0`` never, unset: from the :data:`.kernels.WARMUP_SPECTRA`-th spectrum a process prepares on), each
+compiled on first use and cached on disk by numba like those of :mod:`.kernels`.
+"""
+
+from __future__ import annotations
+
+import threading
+from types import SimpleNamespace
+
+import numpy as np
+
+from lineshift.measure import kernels
+
+__all__ = ["compiled", "compiled_always", "fit_orders", "gaussian_weights", "monotone_median", "prefilter",
+           "prefilter_segments", "smooth_constant", "template_segment"]
+
+_COMPILED: SimpleNamespace | bool | None = None
+_SCRATCH = threading.local()
+
+#: the pole of the cubic B-spline's recursive prefilter, sqrt(3) - 2 (Unser, Aldroubi & Eden 1991),
+#: written out to double precision (``np.sqrt(3.0) - 2.0`` rounds one unit lower)
+POLE = -0.267949192431122706472553658494127633
+
+
+def gaussian_weights(sigma: float) -> np.ndarray:
+    """The sampled Gaussian of ``scipy.ndimage.gaussian_filter1d`` (its default ``truncate=4``):
+    ``exp(-x^2 / (2 sigma^2))`` at x = -r..r, r = int(4 sigma + 0.5), divided by its sum."""
+    radius = int(4.0 * float(sigma) + 0.5)
+    x = np.arange(-radius, radius + 1)
+    phi = np.exp(-0.5 / (sigma * sigma) * x**2)
+    return phi / phi.sum()
+
+
+def _correlate(x, wts, out):   # pragma: no cover (compiled)
+    """``out = sum_j wts[j] x[i + j - r]`` with zeros beyond the ends, for symmetric ``wts`` of length
+    2r + 1: for every point the centre term first, then the pairs from the outermost in (scipy's
+    symmetric loop); the loops over the points innermost, so they run on vectors (views indexed by
+    the loop counter alone: no index can be negative)."""
+    n = x.size
+    r = (wts.size - 1) // 2
+    xp = np.zeros(n + 2 * r)
+    xp[r:r + n] = x
+    wc = wts[r]
+    for i in range(n):
+        out[i] = x[i] * wc
+    for j in range(r, 0, -1):
+        wj = wts[r - j]
+        a = xp[r - j:r - j + n]
+        b = xp[r + j:r + j + n]
+        for i in range(n):
+            out[i] += (a[i] + b[i]) * wj
+
+
+def _causal_start(c, z):   # pragma: no cover (compiled)
+    """The first coefficient of the causal recursion for a mirror-symmetric extension of ``c`` (after
+    the gain): ``sum_k z^k`` over the mirrored signal (its terms vanish once z^k underflows to 0)."""
+    n = c.size
+    zn1 = z ** (n - 1)
+    c0 = c[0] + zn1 * c[n - 1]
+    zi = z
+    for i in range(1, n - 1):
+        c0 += zi * (c[i] + zn1 * c[n - 1 - i])
+        zi *= z
+        if zi == 0.0:
+            break
+    return c0 / (1 - zn1 * zn1)
+
+
+def _prefilter(c, z):   # pragma: no cover (compiled)
+    """Cubic B-spline coefficients of ``c`` in place (mirror-symmetric extension): the gain, then a
+    causal and an anti-causal first-order recursion with pole ``z``, started as for a mirrored signal."""
+    n = c.size
+    if n < 2:
+        return
+    gain = (1.0 - z) * (1.0 - 1.0 / z)
+    for i in range(n):
+        c[i] *= gain
+    c[0] = _causal_start(c, z)
+    prev = c[0]
+    for i in range(1, n):
+        prev = c[i] + z * prev
+        c[i] = prev
+    prev = (z * c[n - 2] + c[n - 1]) * z / (z * z - 1)
+    c[n - 1] = prev
+    for i in range(n - 2, -1, -1):
+        prev = z * (prev - c[i])
+        c[i] = prev
+
+
+def _prefilter_segments(c, offsets, lengths, z):   # pragma: no cover (compiled)
+    """:func:`_prefilter` of each segment ``c[offsets[s]:offsets[s] + lengths[s]]``; segments of one
+    length four at a time, their recursions interleaved (each waits on its own previous value only,
+    so four run in the time of one): the same operations on each, in the same order."""
+    nseg = offsets.size
+    gain = (1.0 - z) * (1.0 - 1.0 / z)
+    order = np.argsort(lengths, kind="mergesort")
+    s = 0
+    while s < nseg:
+        n = lengths[order[s]]
+        if s + 4 <= nseg and lengths[order[s + 3]] == n and n >= 2:
+            o0, o1, o2, o3 = offsets[order[s]], offsets[order[s + 1]], offsets[order[s + 2]], offsets[order[s + 3]]
+            for o in (o0, o1, o2, o3):
+                seg = c[o:o + n]
+                for i in range(n):
+                    seg[i] *= gain
+                seg[0] = _causal_start(seg, z)
+            p0, p1, p2, p3 = c[o0], c[o1], c[o2], c[o3]
+            for i in range(1, n):
+                p0 = c[o0 + i] + z * p0
+                p1 = c[o1 + i] + z * p1
+                p2 = c[o2 + i] + z * p2
+                p3 = c[o3 + i] + z * p3
+                c[o0 + i] = p0
+                c[o1 + i] = p1
+                c[o2 + i] = p2
+                c[o3 + i] = p3
+            e = n - 1
+            p0 = (z * c[o0 + e - 1] + c[o0 + e]) * z / (z * z - 1)
+            p1 = (z * c[o1 + e - 1] + c[o1 + e]) * z / (z * z - 1)
+            p2 = (z * c[o2 + e - 1] + c[o2 + e]) * z / (z * z - 1)
+            p3 = (z * c[o3 + e - 1] + c[o3 + e]) * z / (z * z - 1)
+            c[o0 + e], c[o1 + e], c[o2 + e], c[o3 + e] = p0, p1, p2, p3
+            for i in range(n - 2, -1, -1):
+                p0 = z * (p0 - c[o0 + i])
+                p1 = z * (p1 - c[o1 + i])
+                p2 = z * (p2 - c[o2 + i])
+                p3 = z * (p3 - c[o3 + i])
+                c[o0 + i] = p0
+                c[o1 + i] = p1
+                c[o2 + i] = p2
+                c[o3 + i] = p3
+            s += 4
+        else:
+            o = offsets[order[s]]
+            _prefilter(c[o:o + n], z)
+            s += 1
+
+
+def _template_segment(sw, swf, sw2v, flagged, ow, owf, ow2v, d0, s0, m, floor, gw, vw, vden, corr, smooth,
+                      flux, var_out, ok_out):   # pragma: no cover (compiled)
+    """Flux (into ``flux``: the prefilter follows, :func:`_prefilter_segments`), variance and usable
+    points of one segment; every loop free of branches, so they run on vectors."""
+    n = sw.size
+    s = sw.copy()
+    sf = swf.copy()
+    s2 = sw2v.copy()
+    ds, dsf, ds2 = s[d0:d0 + m], sf[d0:d0 + m], s2[d0:d0 + m]
+    rw, rwf, rw2v = ow[s0:s0 + m], owf[s0:s0 + m], ow2v[s0:s0 + m]
+    for i in range(m):                   # this spectrum's own contribution taken off
+        ds[i] -= rw[i]
+        dsf[i] -= rwf[i]
+        ds2[i] -= rw2v[i]
+    var = np.empty(n)
+    ok = np.empty(n, dtype=np.bool_)
+    for i in range(n):
+        good = s[i] > floor
+        sd = s[i] if good else 1.0
+        f = sf[i] / sd
+        v = s2[i] / (sd * sd)
+        v = v if good else np.inf
+        flux[i] = f if good else 1.0
+        var[i] = 0.0 if v < 0.0 else v   # np.maximum(v, 0): NaN stays
+        ok[i] = good & ~flagged[i]
+    if smooth:
+        okf = np.empty(n)
+        fz = np.empty(n)
+        vz = np.empty(n)
+        for i in range(n):
+            okf[i] = 1.0 if ok[i] else 0.0
+            fz[i] = flux[i] if ok[i] else 0.0
+            vz[i] = var[i] if ok[i] else 0.0
+        den = np.empty(n)
+        num = np.empty(n)
+        v2 = np.empty(n)
+        _correlate(okf, gw, den)
+        _correlate(fz, gw, num)
+        _correlate(vz, vw, v2)
+        for i in range(n):
+            good = ok[i] & (den[i] > 0.95)
+            safe = den[i] if good else 1.0
+            f = num[i] / safe
+            a = corr * (v2[i] / vden) / (safe * safe)
+            b = var[i]
+            lo = a if (a < b or a != a) else b     # np.minimum: NaN wins
+            flux[i] = f if good else flux[i]
+            var[i] = lo if good else b
+            ok[i] = good
+    for i in range(n):
+        g = ok[i] & np.isfinite(var[i])
+        ok_out[i] = g
+        var_out[i] = var[i] if g else 0.0
+
+
+def _solve(M, x, k):   # pragma: no cover (compiled)
+    """M x = b in place (b given in ``x``), Gaussian elimination with partial pivoting; False when a
+    pivot is exactly zero (LAPACK reports the matrix singular; the caller then takes the NumPy form)."""
+    for c in range(k):
+        p = c
+        for i in range(c + 1, k):
+            if abs(M[i, c]) > abs(M[p, c]):
+                p = i
+        if M[p, c] == 0.0:
+            return False
+        if p != c:
+            for j in range(k):
+                M[c, j], M[p, j] = M[p, j], M[c, j]
+            x[c], x[p] = x[p], x[c]
+        for i in range(c + 1, k):
+            f = M[i, c] / M[c, c]
+            for j in range(c, k):
+                M[i, j] -= f * M[c, j]
+            x[i] -= f * x[c]
+    for c in range(k - 1, -1, -1):
+        t = x[c]
+        for j in range(c + 1, k):
+            t -= M[c, j] * x[j]
+        x[c] = t / M[c, c]
+    return True
+
+
+def _fit_orders(coef, var_t, ok_t, xi0, lo, hi, flux, var, use, pw, p, dlng, dlng2, iterations, tables, resid,
+                model, weight, deriv):   # pragma: no cover (compiled)
+    # polynomial degree up to 3 (``pw`` holds x^0..x^6): the sums in scalars, which the compiler keeps
+    # in registers (accumulators in an array are stored and loaded again at every pixel)
+    k, n = flux.shape
+    npar = p.shape[1]
+    deg = npar - 2
+    ng = -1.0 / dlng
+    alive = np.ones(k, dtype=np.bool_)
+    chi2 = np.zeros(k)
+    info = np.zeros((k, npar, npar))
+    mom = np.empty(7)
+    cross = np.empty(4)
+    bt = np.empty(4)
+    A = np.empty((npar, npar))
+    b = np.empty(npar)
+    dp = np.zeros((k, npar))
+    ok = True
+    # the cubic's power-basis coefficients of every interval an order can reach (as coadd.value_tables),
+    # formed once for all iterations, in loops over the intervals that run on vectors
+    first = np.empty(k, dtype=np.intp)
+    for j in range(k):
+        first[j] = int(lo[j])
+        f = first[j]
+        nint = int(hi[j]) - f + 1
+        cm, cz, cp, cq = coef[f - 1:f - 1 + nint], coef[f:f + nint], coef[f + 1:f + 1 + nint], coef[f + 2:f + 2 + nint]
+        r0, r1, r2, r3 = tables[j, 0], tables[j, 1], tables[j, 2], tables[j, 3]
+        for t in range(nint):
+            c0, c1, c2, c3 = cm[t], cz[t], cp[t], cq[t]
+            r0[t] = (c0 + 4.0 * c1 + c2) / 6.0
+            r1[t] = (c2 - c0) / 2.0
+            r2[t] = (c0 - 2.0 * c1 + c2) / 2.0
+            r3[t] = (3.0 * (c1 - c2) + c3 - c0) / 6.0
+    for _ in range(iterations):
+        for j in range(k):
+            c = np.zeros(4)
+            for m in range(deg + 1):
+                c[m] = p[j, m + 1]
+            a0, a1, a2, a3 = c[0], c[1], c[2], c[3]
+            m0 = m1 = m2 = m3 = m4 = m5 = m6 = 0.0
+            x0 = x1 = x2 = x3 = 0.0
+            y0 = y1 = y2 = y3 = 0.0
+            sgg = sbg = curv = chi = 0.0
+            used = 0
+            lo_j, hi_j, f = lo[j], hi[j], first[j]
+            r0, r1, r2, r3 = tables[j, 0], tables[j, 1], tables[j, 2], tables[j, 3]
+            shift = p[j, 0] / dlng
+            for i in range(n):
+                xi = xi0[j, i] - shift
+                inside = xi > lo_j and xi < hi_j
+                if xi < lo_j:                 # np.clip: the lower bound, then the upper
+                    xi = lo_j
+                if xi > hi_j:
+                    xi = hi_j
+                i0 = int(xi)                  # xi >= 2: truncation is the floor
+                fr = xi - i0
+                t = i0 - f
+                q0, q1, q2, q3 = r0[t], r1[t], r2[t], r3[t]
+                T = q0 + fr * (q1 + fr * (q2 + fr * q3))
+                dT = q1 + fr * (2 * q2 + 3 * fr * q3)
+                e0, e1, e2, e3 = pw[i, 0], pw[i, 1], pw[i, 2], pw[i, 3]
+                poly = a0 * e0 + a1 * e1 + a2 * e2 + a3 * e3
+                g = poly * dT * ng
+                model[j, i] = poly * T
+                deriv[j, i] = g
+                if not (use[j, i] and inside and ok_t[i0] and ok_t[i0 + 1]):
+                    resid[j, i] = 0.0
+                    weight[j, i] = 0.0
+                    continue
+                d2T = 2 * q2 + 6 * fr * q3
+                w = 1.0 / (var[j, i] + poly * poly * (var_t[i0] + fr * (var_t[i0 + 1] - var_t[i0])))
+                r = flux[j, i] - poly * T
+                resid[j, i] = r
+                weight[j, i] = w
+                used += 1
+                wT = w * T
+                wr = w * r
+                wTT = wT * T
+                wTg = wT * g
+                wrT = wr * T
+                m0 += wTT * e0
+                m1 += wTT * e1
+                m2 += wTT * e2
+                m3 += wTT * e3
+                m4 += wTT * pw[i, 4]
+                m5 += wTT * pw[i, 5]
+                m6 += wTT * pw[i, 6]
+                x0 += wTg * e0
+                x1 += wTg * e1
+                x2 += wTg * e2
+                x3 += wTg * e3
+                y0 += wrT * e0
+                y1 += wrT * e1
+                y2 += wrT * e2
+                y3 += wrT * e3
+                sgg += w * g * g
+                sbg += wr * g
+                curv += wr * poly * d2T
+                chi += wr * r
+            mom[0], mom[1], mom[2], mom[3], mom[4], mom[5], mom[6] = m0, m1, m2, m3, m4, m5, m6
+            cross[0], cross[1], cross[2], cross[3] = x0, x1, x2, x3
+            bt[0], bt[1], bt[2], bt[3] = y0, y1, y2, y3
+            for a in range(deg + 1):
+                for cc in range(deg + 1):
+                    A[a + 1, cc + 1] = mom[a + cc]
+                A[0, a + 1] = cross[a]
+                A[a + 1, 0] = cross[a]
+                b[a + 1] = bt[a]
+            A[0, 0] = sgg
+            b[0] = sbg
+            for a in range(npar):
+                for cc in range(npar):
+                    info[j, a, cc] = A[a, cc]
+            # Newton in delta: the residual x curvature term Gauss-Newton leaves out
+            a00 = A[0, 0] - curv / dlng2
+            A[0, 0] = a00 if a00 > 0.1 * info[j, 0, 0] else info[j, 0, 0]
+            alive[j] = alive[j] and used >= 20
+            if not alive[j]:
+                for a in range(npar):
+                    for cc in range(npar):
+                        A[a, cc] = 1.0 if a == cc else 0.0
+                    b[a] = 0.0
+            ok = _solve(A, b, npar) and ok
+            for a in range(npar):
+                dp[j, a] = b[a]
+                p[j, a] += b[a]
+            chi2[j] = chi / max(used - npar, 1)
+        done = True
+        for j in range(k):
+            if not abs(dp[j, 0]) < 1e-9:
+                done = False
+        if done:
+            break
+    cov00 = np.empty(k)
+    e = np.empty(npar)
+    for j in range(k):
+        for a in range(npar):
+            for cc in range(npar):
+                A[a, cc] = info[j, a, cc] if alive[j] else (1.0 if a == cc else 0.0)
+            e[a] = 1.0 if a == 0 else 0.0
+        ok = _solve(A, e, npar) and ok
+        cov00[j] = e[0]
+    return ok, alive, chi2, cov00, resid, model, weight, deriv
+
+
+def _monotone_median(a):   # pragma: no cover (compiled)
+    n = a.size
+    if n == 0:
+        return np.nan
+    up = True
+    down = True
+    for i in range(n - 1):
+        if not a[i + 1] >= a[i]:
+            up = False
+        if not a[i + 1] <= a[i]:
+            down = False
+    if not (up or down):
+        return np.nan
+    if n % 2:
+        return a[n // 2]
+    lo, hi = (a[n // 2 - 1], a[n // 2]) if up else (a[n // 2], a[n // 2 - 1])
+    return (lo + hi) / 2.0
+
+
+def _load() -> SimpleNamespace | None:
+    """The compiled kernels (compiled or loaded from numba's cache on first use), None without numba."""
+    global _COMPILED
+    if _COMPILED is None:
+        _COMPILED = False
+        try:
+            import numba
+        except ImportError:
+            pass
+        else:
+            # NumPy's floating-point rules (x / 0 is inf or NaN, as in the plain forms) rather than
+            # Python's (ZeroDivisionError), which also lets the loops run on vectors
+            jit = numba.njit(cache=True, nogil=True, error_model="numpy")
+            global _correlate, _causal_start, _prefilter, _solve   # called from kernels: compiled too
+            _correlate, _causal_start, _solve = jit(_correlate), jit(_causal_start), jit(_solve)
+            _prefilter = jit(_prefilter)
+            _COMPILED = SimpleNamespace(template_segment=jit(_template_segment), fit_orders=jit(_fit_orders),
+                                        prefilter_segments=jit(_prefilter_segments),
+                                        monotone_median=jit(_monotone_median), correlate=_correlate,
+                                        prefilter=_prefilter)
+    return _COMPILED or None
+
+
+def compiled() -> SimpleNamespace | None:
+    """The compiled kernels if the callers should use them now (:func:`.kernels.compiled` decides:
+    ``LINESHIFT_JIT`` and the warm-up), else None."""
+    if kernels.compiled() is None:
+        return None
+    return _load()
+
+
+def compiled_always() -> SimpleNamespace:
+    """The compiled kernels whatever the warm-up (for a caller told to use them); needs numba."""
+    k = _load()
+    if k is None:
+        raise RuntimeError("the compiled kernels need numba (pip install numba)")
+    return k
+
+
+def template_segment(sw, swf, sw2v, flagged, own, floor: float, smooth: tuple | None, flux, var_out, ok_out):
+    """One segment of :meth:`.template_engine.TemplateState.fit_arrays` into ``flux`` (not yet
+    prefiltered: :func:`prefilter_segments`), ``var_out``, ``ok_out`` (views of the segment in the
+    whole arrays).  ``own``: None or (destination slice in the segment, source slice in the arrays,
+    weight, weight x flux, weight^2 x variance) of the spectrum's contribution to take off; ``smooth``:
+    None or (flux weights, variance weights, divisor of the variance sum, correlation factor) as
+    ``fit_arrays`` forms them."""
+    k = compiled_always()
+    if own is None:
+        empty = np.zeros(0)
+        ow = owf = ow2v = empty
+        d0 = s0 = m = 0
+    else:
+        dst, src, ow, owf, ow2v = own
+        d0, s0, m = dst.start, src.start, dst.stop - dst.start
+    if smooth is None:
+        gw = vw = np.ones(1)
+        vden = corr = 1.0
+    else:
+        gw, vw, vden, corr = smooth
+    k.template_segment(sw, swf, sw2v, flagged, ow, owf, ow2v, int(d0), int(s0), int(m), float(floor), gw, vw,
+                       float(vden), float(corr), smooth is not None, flux, var_out, ok_out)
+
+
+def prefilter_segments(c, segments) -> None:
+    """Cubic B-spline coefficients of each segment of ``c`` in place (``segments``: rows of
+    :attr:`.template_engine.TemplateState.segments`), as ``scipy.ndimage.spline_filter1d(order=3,
+    mode="mirror")`` of each."""
+    compiled_always().prefilter_segments(c, np.ascontiguousarray(segments[:, 2]),
+                                         np.ascontiguousarray(segments[:, 3]), POLE)
+
+
+def fit_orders(coef, var_t, ok_t, xi0, lo, hi, flux, var, use, pw, p, dlng: float, iterations: int):
+    """Gauss-Newton for a block of orders (:func:`.template_engine._fit_block`, the same steps and
+    stopping rule); ``p`` (orders, 2 + degree, degree up to 3) the start, updated in place; ``pw``
+    the powers x^0..x^6 of the pixel positions (n, 7).  Returns (no pivot was zero, alive, reduced
+    chi-square, the velocity's variance in delta^2, and per pixel of the last step residual, model,
+    weight, model's derivative with respect to delta: :func:`scratch` arrays, overwritten by the
+    next call in this thread)."""
+    k, n = flux.shape
+    size = int(np.max(np.floor(hi) - np.floor(lo))) + 1
+    tables = scratch("fit_tables", (k, 4, size))
+    out = [scratch(name, (k, n)) for name in ("fit_resid", "fit_model", "fit_weight", "fit_deriv")]
+    return compiled_always().fit_orders(coef, var_t, ok_t, xi0, lo, hi, flux, var, use, pw, p, float(dlng),
+                                        float(dlng) ** 2, int(iterations), tables, *out)
+
+
+def scratch(name: str, shape: tuple, dtype=float) -> np.ndarray:
+    """A work array of this thread, the same one at every call with the same name and shape (its
+    contents are whatever the last user left).  Arrays of a few hundred KB and more are mapped from
+    the system afresh at each allocation, and the page faults of filling them (~1.4 us per 4 KB page
+    here) cost more than the arithmetic: 5 MB of template arrays take 1.8 ms to allocate and fill,
+    75 us to fill again."""
+    arrays = _SCRATCH.__dict__.setdefault("arrays", {})
+    a = arrays.get(name)
+    if a is None or a.shape != tuple(shape) or a.dtype != np.dtype(dtype):
+        a = arrays[name] = np.empty(shape, dtype=dtype)
+    return a
+
+
+def monotone_median(a) -> float:
+    """``np.median(a)`` for a monotone array (NaN when ``a`` is not monotone or holds NaN)."""
+    return float(compiled_always().monotone_median(np.ascontiguousarray(a)))
+
+
+def prefilter(values) -> np.ndarray:
+    """Cubic B-spline coefficients of ``values`` (mirror extension): the compiled recursion alone."""
+    c = np.array(values, dtype=float)
+    compiled_always().prefilter(c, POLE)
+    return c
+
+
+def smooth_constant(values, sigma: float) -> np.ndarray:
+    """``values`` correlated with :func:`gaussian_weights` (zeros beyond the ends): the compiled loop alone."""
+    x = np.ascontiguousarray(values, dtype=float)
+    out = np.empty_like(x)
+    compiled_always().correlate(x, gaussian_weights(sigma), out)
+    return out
