@@ -121,15 +121,17 @@ def test_template_arrays_compiled_equal_the_numpy_form(smooth, per_order):
         assert ok.sum() > 4000          # most of what the orders cover is usable
 
 
-@pytest.mark.parametrize("degree", [3, 2, 4])
+@pytest.mark.parametrize(("degree", "block_pixels"), [(3, 16384), (3, 8192), (2, 16384), (4, 16384)])
 @pytest.mark.parametrize("smooth", [0.0, 300.0])
-def test_template_fit_compiled_equals_the_numpy_forms(monkeypatch, smooth, degree):
-    # the compiled Gauss-Newton (moment sums in one loop, sequential; 5 x 5 systems by elimination)
-    # against the NumPy form (BLAS products, LAPACK) and the Jacobian form: the same least-squares
-    # problem with the sums in another order, so the velocities agree to ~1e-12 of their errors
-    # (measured today: 0 to 2e-12 m/s on errors of 5 m/s); degree 4 takes the NumPy form
+def test_template_fit_compiled_equals_the_numpy_forms(monkeypatch, smooth, degree, block_pixels):
+    # the compiled Gauss-Newton (sequential moment sums; 5 x 5 systems by elimination) against the
+    # NumPy form (BLAS products, LAPACK) and the Jacobian form: the same least-squares problem with
+    # the sums in another order, so the velocities agree to ~1e-12 of their errors (measured today:
+    # 0 to 2e-12 m/s on errors of 5 m/s); 6 orders in one block, or in blocks of 4 and 2 (the
+    # iterations stop per block); degree 4 takes the NumPy form
     from lineshift.measure import template_engine as te
 
+    monkeypatch.setattr(te, "BLOCK_PIXELS", block_pixels)
     ins, prepared, factors, acc = _setup()
     state = te.TemplateState.from_accumulator(acc, smooth)
     state.pixel_step = ins.pixel_velocity
@@ -186,4 +188,4 @@ def test_template_fit_compiled_singular_system_fails_as_the_numpy_form():
     with pytest.raises(np.linalg.LinAlgError):
         te._fit_block(block, coef, var_t, ok_t, state, settings, -np.log(factors[0]))
     with pytest.raises(np.linalg.LinAlgError):
-        te._fit_block_compiled(block, coef, var_t, ok_t, state, settings, -np.log(factors[0]))
+        list(te._fit_compiled(block, coef, var_t, ok_t, state, settings, -np.log(factors[0])))

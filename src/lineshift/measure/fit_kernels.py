@@ -242,9 +242,11 @@ def _solve(M, x, k):   # pragma: no cover (compiled)
 
 
 def _fit_orders(coef, var_t, ok_t, xi0, lo, hi, flux, var, use, pw, p, dlng, dlng2, iterations, tables, resid,
-                model, weight, deriv):   # pragma: no cover (compiled)
+                model, weight, deriv, S, width, bnum, bden, bcross, binfo):   # pragma: no cover (compiled)
     # polynomial degree up to 3 (``pw`` holds x^0..x^6): the sums in scalars, which the compiler keeps
-    # in registers (accumulators in an array are stored and loaded again at every pixel)
+    # in registers (accumulators in an array are stored and loaded again at every pixel); the moments
+    # with the powers of x in a second loop over the pixels (``S``: what it sums), which is quicker
+    # than one loop that holds everything at once
     k, n = flux.shape
     npar = p.shape[1]
     deg = npar - 2
@@ -288,6 +290,7 @@ def _fit_orders(coef, var_t, ok_t, xi0, lo, hi, flux, var, use, pw, p, dlng, dln
             lo_j, hi_j, f = lo[j], hi[j], first[j]
             r0, r1, r2, r3 = tables[j, 0], tables[j, 1], tables[j, 2], tables[j, 3]
             shift = p[j, 0] / dlng
+            sa, sb, sc = S[0], S[1], S[2]
             for i in range(n):
                 xi = xi0[j, i] - shift
                 inside = xi > lo_j and xi < hi_j
@@ -309,6 +312,9 @@ def _fit_orders(coef, var_t, ok_t, xi0, lo, hi, flux, var, use, pw, p, dlng, dln
                 if not (use[j, i] and inside and ok_t[i0] and ok_t[i0 + 1]):
                     resid[j, i] = 0.0
                     weight[j, i] = 0.0
+                    sa[i] = 0.0
+                    sb[i] = 0.0
+                    sc[i] = 0.0
                     continue
                 d2T = 2 * q2 + 6 * fr * q3
                 w = 1.0 / (var[j, i] + poly * poly * (var_t[i0] + fr * (var_t[i0 + 1] - var_t[i0])))
@@ -321,6 +327,16 @@ def _fit_orders(coef, var_t, ok_t, xi0, lo, hi, flux, var, use, pw, p, dlng, dln
                 wTT = wT * T
                 wTg = wT * g
                 wrT = wr * T
+                sa[i] = wTT
+                sb[i] = wTg
+                sc[i] = wrT
+                sgg += w * g * g
+                sbg += wr * g
+                curv += wr * poly * d2T
+                chi += wr * r
+            for i in range(n):
+                wTT, wTg, wrT = sa[i], sb[i], sc[i]
+                e0, e1, e2, e3 = pw[i, 0], pw[i, 1], pw[i, 2], pw[i, 3]
                 m0 += wTT * e0
                 m1 += wTT * e1
                 m2 += wTT * e2
@@ -336,10 +352,6 @@ def _fit_orders(coef, var_t, ok_t, xi0, lo, hi, flux, var, use, pw, p, dlng, dln
                 y1 += wrT * e1
                 y2 += wrT * e2
                 y3 += wrT * e3
-                sgg += w * g * g
-                sbg += wr * g
-                curv += wr * poly * d2T
-                chi += wr * r
             mom[0], mom[1], mom[2], mom[3], mom[4], mom[5], mom[6] = m0, m1, m2, m3, m4, m5, m6
             cross[0], cross[1], cross[2], cross[3] = x0, x1, x2, x3
             bt[0], bt[1], bt[2], bt[3] = y0, y1, y2, y3
@@ -383,6 +395,23 @@ def _fit_orders(coef, var_t, ok_t, xi0, lo, hi, flux, var, use, pw, p, dlng, dln
             e[a] = 1.0 if a == 0 else 0.0
         ok = _solve(A, e, npar) and ok
         cov00[j] = e[0]
+    # the binned sums of the last step's residuals (as response.bin_residuals: bins of ``width`` pixels)
+    nb = bnum.shape[1]
+    for j in range(k):
+        wr, mr, rr, gr = weight[j], model[j], resid[j], deriv[j]
+        total = 0.0
+        for bb in range(nb):
+            num = den = crs = 0.0
+            for i in range(bb * width, min((bb + 1) * width, n)):
+                wm = wr[i] * mr[i]
+                num += wm * rr[i]
+                den += wm * mr[i]
+                crs += wm * gr[i]
+                total += wr[i] * gr[i] * gr[i]
+            bnum[j, bb] = num
+            bden[j, bb] = den
+            bcross[j, bb] = crs
+        binfo[j] = total
     return ok, alive, chi2, cov00, resid, model, weight, deriv
 
 
@@ -476,19 +505,26 @@ def prefilter_segments(c, segments) -> None:
                                          np.ascontiguousarray(segments[:, 3]), POLE)
 
 
-def fit_orders(coef, var_t, ok_t, xi0, lo, hi, flux, var, use, pw, p, dlng: float, iterations: int):
+def fit_orders(coef, var_t, ok_t, xi0, lo, hi, flux, var, use, pw, p, dlng: float, iterations: int,
+               width: int = 16):
     """Gauss-Newton for a block of orders (:func:`.template_engine._fit_block`, the same steps and
     stopping rule); ``p`` (orders, 2 + degree, degree up to 3) the start, updated in place; ``pw``
     the powers x^0..x^6 of the pixel positions (n, 7).  Returns (no pivot was zero, alive, reduced
-    chi-square, the velocity's variance in delta^2, and per pixel of the last step residual, model,
-    weight, model's derivative with respect to delta: :func:`scratch` arrays, overwritten by the
-    next call in this thread)."""
+    chi-square, the velocity's variance in delta^2, per pixel of the last step residual, model,
+    weight, model's derivative with respect to delta, and per bin of ``width`` pixels the sums of
+    :func:`.response.bin_residuals` (weight x model x residual, x model, x derivative; per order
+    weight x derivative^2): :func:`scratch` arrays, overwritten by the next call in this thread)."""
     k, n = flux.shape
     size = int(np.max(np.floor(hi) - np.floor(lo))) + 1
     tables = scratch("fit_tables", (k, 4, size))
     out = [scratch(name, (k, n)) for name in ("fit_resid", "fit_model", "fit_weight", "fit_deriv")]
-    return compiled_always().fit_orders(coef, var_t, ok_t, xi0, lo, hi, flux, var, use, pw, p, float(dlng),
-                                        float(dlng) ** 2, int(iterations), tables, *out)
+    nb = -(-n // width)
+    bins = [scratch(name, (k, nb)) for name in ("bin_num", "bin_den", "bin_cross")]
+    binfo = scratch("bin_info", (k,))
+    fast = compiled_always()
+    res = fast.fit_orders(coef, var_t, ok_t, xi0, lo, hi, flux, var, use, pw, p, float(dlng), float(dlng) ** 2,
+                          int(iterations), tables, *out, scratch("fit_sums", (3, n)), int(width), *bins, binfo)
+    return (*res, *bins, binfo)
 
 
 def scratch(name: str, shape: tuple, dtype=float) -> np.ndarray:
@@ -498,9 +534,12 @@ def scratch(name: str, shape: tuple, dtype=float) -> np.ndarray:
     here) cost more than the arithmetic: 5 MB of template arrays take 1.8 ms to allocate and fill,
     75 us to fill again."""
     arrays = _SCRATCH.__dict__.setdefault("arrays", {})
-    a = arrays.get(name)
-    if a is None or a.shape != tuple(shape) or a.dtype != np.dtype(dtype):
-        a = arrays[name] = np.empty(shape, dtype=dtype)
+    key = (name, tuple(shape), np.dtype(dtype).str)
+    a = arrays.get(key)
+    if a is None:
+        if len(arrays) >= 64:   # a long-lived thread that met many sizes: start again
+            arrays.clear()
+        a = arrays[key] = np.empty(shape, dtype=dtype)
     return a
 
 

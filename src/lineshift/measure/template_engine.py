@@ -446,11 +446,13 @@ def measure_template(orders: list[PreparedOrder], state: TemplateState, settings
         by_len.setdefault(o.flux.size, []).append(o)
     residuals = {}
     if fast is not None:
-        fit, pair = _fit_block_compiled, None
+        blocks = (fb for group in by_len.values()
+                  for fb in _fit_compiled(group, coef, var_t, ok_t, state, settings, delta0))
     else:
-        fit, pair = _fit_block, (ok_t[:-1] & ok_t[1:], np.diff(var_t))
-    for block in _chunks(by_len.values()):
-        fits, bins = fit(block, coef, var_t, ok_t, state, settings, delta0, pair)
+        pair = (ok_t[:-1] & ok_t[1:], np.diff(var_t))
+        blocks = ((block, *_fit_block(block, coef, var_t, ok_t, state, settings, delta0, pair))
+                  for block in _chunks(by_len.values()))
+    for block, fits, bins in blocks:
         for o, (v, e, chi2), b in zip(block, fits, bins, strict=True):
             if np.isfinite(v):
                 residuals[int(o.index)] = b
@@ -505,17 +507,25 @@ def _powers(n: int, deg: int) -> np.ndarray:
     return out
 
 
-def _block_arrays(block: list[PreparedOrder], state: TemplateState, settings: TemplateSettings):
+def _block_arrays(block: list[PreparedOrder], state: TemplateState, settings: TemplateSettings,
+                  scratch: bool = False):
     """A block of orders stacked for a fit: grid-index offset into the segment arrays and the usable
     template index range per order, wavelengths, fluxes, variances, and the usable pixels (order
-    ends of ``settings.edge_pixels`` left out)."""
+    ends of ``settings.edge_pixels`` left out); ``scratch``: the stacked arrays in this thread's work
+    arrays (:func:`.fit_kernels.scratch`), overwritten by the next call."""
     seg = np.array([state.segment(o.index) for o in block], dtype=float)   # (k, 3): start, offset, length
     base = (seg[:, 1] - seg[:, 0])[:, None]          # grid index -> index in the segment arrays
     lo_i, hi_i = seg[:, 1:2] + 2, seg[:, 1:2] + seg[:, 2:3] - 3
-    wave = np.vstack([o.wave for o in block])
-    flux = np.vstack([o.flux for o in block])
-    var = np.vstack([o.var for o in block])
-    use = np.vstack([o.good for o in block])
+    if scratch:
+        shape = (len(block), block[0].flux.size)
+        wave, flux, var = (np.stack([getattr(o, name) for o in block], out=fit_kernels.scratch("block_" + name, shape))
+                           for name in ("wave", "flux", "var"))
+        use = np.stack([o.good for o in block], out=fit_kernels.scratch("block_good", shape, bool))
+    else:
+        wave = np.vstack([o.wave for o in block])
+        flux = np.vstack([o.flux for o in block])
+        var = np.vstack([o.var for o in block])
+        use = np.vstack([o.good for o in block])
     n = flux.shape[1]
     use[:, : settings.edge_pixels] = False
     use[:, n - settings.edge_pixels:] = False
@@ -605,30 +615,67 @@ def _fit_block(block: list[PreparedOrder], coef, var_t, ok_t, state: TemplateSta
     return [(np.nan, np.nan, np.nan) if bad[j] else (v[j], e[j], chi2[j]) for j in range(k)], bins
 
 
-def _fit_block_compiled(block: list[PreparedOrder], coef, var_t, ok_t, state: TemplateState,
-                        settings: TemplateSettings, delta0: float, pair=None):
-    """:func:`_fit_block` by the compiled loop of :func:`.fit_kernels.fit_orders` (``pair`` is not
-    needed: it reads the template's usable points and variance steps where it uses them); the NumPy
-    form where an elimination met an exactly zero pivot, so a singular system fails as it does there."""
+def _fit_compiled(group: list[PreparedOrder], coef, var_t, ok_t, state: TemplateState, settings: TemplateSettings,
+                  delta0: float):
+    """:func:`_fit_block` of each block of :func:`_chunks` of ``group`` (orders of one length) by the
+    compiled loop of :func:`.fit_kernels.fit_orders`, yielding (block, fits, bins): the whole group
+    stacked once in work arrays, each block fitted on its rows (so the iterations stop per block,
+    as there).  The template's usable points and variance steps are read where they are used (no
+    ``pair``).  The NumPy form for a degree above 3, and for a block whose elimination met an exactly
+    zero pivot, so a singular system fails as it does there."""
     deg = settings.poly_degree
     if deg > 3:   # the compiled loop keeps its sums in scalars for degrees up to 3
-        return _fit_block(block, coef, var_t, ok_t, state, settings, delta0, pair)
-    base, lo_i, hi_i, wave, flux, var, use = _block_arrays(block, state, settings)
+        for block in _chunks([group]):
+            yield block, *_fit_block(block, coef, var_t, ok_t, state, settings, delta0)
+        return
+    base, lo_i, hi_i, wave, flux, var, use = _block_arrays(group, state, settings, scratch=True)
     k, n = flux.shape
-    p = np.zeros((k, deg + 2))
-    p[:, 0] = delta0
-    p[:, 1] = 1.0
-    xi0 = (np.log(wave) - state.lng0) / state.dlng + base   # template index at delta = 0
-    ok, alive, chi2, cov00, r, model, w, g = fit_kernels.fit_orders(
-        coef, var_t, ok_t, xi0, lo_i[:, 0], hi_i[:, 0], flux, var, use, _powers(n, 6), p, state.dlng,
-        settings.iterations)
-    if not ok:
-        return _fit_block(block, coef, var_t, ok_t, state, settings, delta0, pair)
-    v = C_MS * np.expm1(p[:, 0])
-    e = C_MS * np.exp(p[:, 0]) * np.sqrt(np.abs(cov00))
-    bad = ~alive | ~np.isfinite(p).all(axis=1)
-    bins = bin_residuals(wave, r, model, w, g)
-    return [(np.nan, np.nan, np.nan) if bad[j] else (v[j], e[j], chi2[j]) for j in range(k)], bins
+    lnw = np.log(wave, out=fit_kernels.scratch("block_lnw", (k, n)))
+    xi0 = np.subtract(lnw, state.lng0, out=fit_kernels.scratch("block_xi0", (k, n)))
+    xi0 /= state.dlng                        # (ln lambda - lng0) / dlng + base: template index at delta = 0
+    xi0 += base
+    width = 16                               # response.bin_residuals' bins (tests/test_fit_kernels.py)
+    bx, cnt = _bin_centres(n, width)
+    u = _binned(lnw, width) / np.maximum(cnt, 1)
+    pw = _powers(n, 6)
+    rows = max(BLOCK_PIXELS // n, 1)         # as _chunks
+    for r0 in range(0, k, rows):
+        sl = slice(r0, min(r0 + rows, k))
+        block = group[sl]
+        p = np.zeros((len(block), deg + 2))
+        p[:, 0] = delta0
+        p[:, 1] = 1.0
+        ok, alive, chi2, cov00, _, _, _, _, num, den, cross, info = fit_kernels.fit_orders(
+            coef, var_t, ok_t, xi0[sl], lo_i[sl, 0], hi_i[sl, 0], flux[sl], var[sl], use[sl], pw, p, state.dlng,
+            settings.iterations, width)
+        if not ok:
+            yield block, *_fit_block(block, coef, var_t, ok_t, state, settings, delta0)
+            continue
+        v = C_MS * np.expm1(p[:, 0])
+        e = C_MS * np.exp(p[:, 0]) * np.sqrt(np.abs(cov00))
+        bad = ~alive | ~np.isfinite(p).all(axis=1)
+        # as response.bin_residuals(wave, resid, model, weight, deriv), from the kernel's sums
+        rho = np.where(den > 0, num / np.where(den > 0, den, 1.0), 0.0)
+        bins = [(bx, u[r0 + j], rho[j], den[j].copy(), cross[j].copy(), float(info[j])) for j in range(len(block))]
+        yield block, [(np.nan, np.nan, np.nan) if bad[j] else (v[j], e[j], chi2[j]) for j in range(len(block))], bins
+
+
+def _binned(a: np.ndarray, width: int) -> np.ndarray:
+    """Sums of ``a`` (rows) in bins of ``width`` columns, the last one short (as response.bin_residuals)."""
+    n = a.shape[1]
+    nb = -(-n // width)
+    pad = nb * width - n
+    return (np.pad(a, ((0, 0), (0, pad))) if pad else a).reshape(a.shape[0], nb, width).sum(axis=2)
+
+
+@lru_cache(maxsize=16)
+def _bin_centres(n: int, width: int) -> tuple[np.ndarray, np.ndarray]:
+    """(mean pixel index, pixel count) of each bin of ``width`` of n pixels (read-only)."""
+    cnt = _binned(np.ones((1, n)), width)
+    x = _binned(np.arange(n, dtype=float)[None, :], width)[0] / cnt[0]
+    x.flags.writeable = False
+    cnt.flags.writeable = False
+    return x, cnt
 
 
 def _median_wavelength(o: PreparedOrder, fast) -> float:
