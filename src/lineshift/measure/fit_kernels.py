@@ -17,6 +17,8 @@ with its plain NumPy form kept in the caller and tested against it (tests/test_f
   the 5 x 5 systems solved by Gaussian elimination with partial pivoting (as LAPACK's getrf/getrs).
   The sums run sequentially over the pixels where the NumPy form's matrix products let BLAS block
   (and fuse) them, so the velocities differ in the last bits: ~1e-12 of their errors.
+* :func:`median_snr`: the spectrum's median S/N, its values gathered in one loop per order (the
+  same numbers as the NumPy form beside its caller).
 * :func:`monotone_median`: the median of an order's wavelengths, the middle of the array when it is
   monotone (the same number as ``np.median``), NaN otherwise (the caller then takes ``np.median``).
 
@@ -57,13 +59,22 @@ def gaussian_weights(sigma: float) -> np.ndarray:
 def _correlate(x, wts, out):   # pragma: no cover (compiled)
     """``out = sum_j wts[j] x[i + j - r]`` with zeros beyond the ends, for symmetric ``wts`` of length
     2r + 1: for every point the centre term first, then the pairs from the outermost in (scipy's
-    symmetric loop); the loops over the points innermost, so they run on vectors (views indexed by
-    the loop counter alone: no index can be negative)."""
+    symmetric loop)."""
     n = x.size
     r = (wts.size - 1) // 2
     xp = np.zeros(n + 2 * r)
     xp[r:r + n] = x
+    _correlate_padded(xp, wts, out)
+
+
+def _correlate_padded(xp, wts, out):   # pragma: no cover (compiled)
+    """:func:`_correlate` of ``xp[r:r + n]``, its r zeros on either side already in ``xp``; the loops
+    over the points innermost, so they run on vectors (views indexed by the loop counter alone: no
+    index can be negative)."""
+    n = out.size
+    r = (wts.size - 1) // 2
     wc = wts[r]
+    x = xp[r:r + n]
     for i in range(n):
         out[i] = x[i] * wc
     for j in range(r, 0, -1):
@@ -159,45 +170,66 @@ def _prefilter_segments(c, offsets, lengths, z):   # pragma: no cover (compiled)
             s += 1
 
 
+def _flux_and_variance(sw, swf, sw2v, flagged, floor, flux, var, ok):   # pragma: no cover (compiled)
+    """Template flux and variance of points with the sums ``sw``, ``swf``, ``sw2v`` (as :meth:`.template_engine.
+    TemplateState.without`), and which are usable (above ``floor`` and not ``flagged``)."""
+    for i in range(sw.size):
+        s = sw[i]
+        good = s > floor
+        sd = s if good else 1.0
+        f = swf[i] / sd
+        v = sw2v[i] / (sd * sd)
+        v = v if good else np.inf
+        flux[i] = f if good else 1.0
+        var[i] = 0.0 if v < 0.0 else v   # np.maximum(v, 0): NaN stays
+        ok[i] = good & ~flagged[i]
+
+
+def _flux_and_variance_less(sw, swf, sw2v, ow, owf, ow2v, flagged, floor, flux, var,
+                            ok):   # pragma: no cover (compiled)
+    """:func:`_flux_and_variance` of the sums less a spectrum's contribution ``ow``, ``owf``, ``ow2v``."""
+    for i in range(sw.size):
+        s = sw[i] - ow[i]
+        good = s > floor
+        sd = s if good else 1.0
+        f = (swf[i] - owf[i]) / sd
+        v = (sw2v[i] - ow2v[i]) / (sd * sd)
+        v = v if good else np.inf
+        flux[i] = f if good else 1.0
+        var[i] = 0.0 if v < 0.0 else v
+        ok[i] = good & ~flagged[i]
+
+
 def _template_segment(sw, swf, sw2v, flagged, ow, owf, ow2v, d0, s0, m, floor, gw, vw, vden, corr, smooth,
                       flux, var_out, ok_out):   # pragma: no cover (compiled)
     """Flux (into ``flux``: the prefilter follows, :func:`_prefilter_segments`), variance and usable
     points of one segment; every loop free of branches, so they run on vectors."""
     n = sw.size
-    s = sw.copy()
-    sf = swf.copy()
-    s2 = sw2v.copy()
-    ds, dsf, ds2 = s[d0:d0 + m], sf[d0:d0 + m], s2[d0:d0 + m]
-    rw, rwf, rw2v = ow[s0:s0 + m], owf[s0:s0 + m], ow2v[s0:s0 + m]
-    for i in range(m):                   # this spectrum's own contribution taken off
-        ds[i] -= rw[i]
-        dsf[i] -= rwf[i]
-        ds2[i] -= rw2v[i]
     var = np.empty(n)
     ok = np.empty(n, dtype=np.bool_)
-    for i in range(n):
-        good = s[i] > floor
-        sd = s[i] if good else 1.0
-        f = sf[i] / sd
-        v = s2[i] / (sd * sd)
-        v = v if good else np.inf
-        flux[i] = f if good else 1.0
-        var[i] = 0.0 if v < 0.0 else v   # np.maximum(v, 0): NaN stays
-        ok[i] = good & ~flagged[i]
+    e = d0 + m
+    # before, on and after this spectrum's own contribution (taken off where it is)
+    _flux_and_variance(sw[:d0], swf[:d0], sw2v[:d0], flagged[:d0], floor, flux[:d0], var[:d0], ok[:d0])
+    _flux_and_variance_less(sw[d0:e], swf[d0:e], sw2v[d0:e], ow[s0:s0 + m], owf[s0:s0 + m], ow2v[s0:s0 + m],
+                            flagged[d0:e], floor, flux[d0:e], var[d0:e], ok[d0:e])
+    _flux_and_variance(sw[e:], swf[e:], sw2v[e:], flagged[e:], floor, flux[e:], var[e:], ok[e:])
     if smooth:
-        okf = np.empty(n)
-        fz = np.empty(n)
-        vz = np.empty(n)
+        rg = (gw.size - 1) // 2
+        rv = (vw.size - 1) // 2
+        okp = np.zeros(n + 2 * rg)      # the three inputs of the convolutions, zero-padded
+        fzp = np.zeros(n + 2 * rg)
+        vzp = np.zeros(n + 2 * rv)
+        okc, fzc, vzc = okp[rg:rg + n], fzp[rg:rg + n], vzp[rv:rv + n]
         for i in range(n):
-            okf[i] = 1.0 if ok[i] else 0.0
-            fz[i] = flux[i] if ok[i] else 0.0
-            vz[i] = var[i] if ok[i] else 0.0
+            okc[i] = 1.0 if ok[i] else 0.0
+            fzc[i] = flux[i] if ok[i] else 0.0
+            vzc[i] = var[i] if ok[i] else 0.0
         den = np.empty(n)
         num = np.empty(n)
         v2 = np.empty(n)
-        _correlate(okf, gw, den)
-        _correlate(fz, gw, num)
-        _correlate(vz, vw, v2)
+        _correlate_padded(okp, gw, den)
+        _correlate_padded(fzp, gw, num)
+        _correlate_padded(vzp, vw, v2)
         for i in range(n):
             good = ok[i] & (den[i] > 0.95)
             safe = den[i] if good else 1.0
@@ -212,6 +244,19 @@ def _template_segment(sw, swf, sw2v, flagged, ow, owf, ow2v, d0, s0, m, floor, g
         g = ok[i] & np.isfinite(var[i])
         ok_out[i] = g
         var_out[i] = var[i] if g else 0.0
+
+
+def _strided_snr(flux, var, good, out, start):   # pragma: no cover (compiled)
+    """``flux[good][::4] / sqrt(var[good][::4])`` into ``out`` from ``start``; returns where it ended."""
+    c = 0
+    k = start
+    for i in range(flux.size):
+        if good[i]:
+            if c % 4 == 0:
+                out[k] = flux[i] / np.sqrt(var[i])
+                k += 1
+            c += 1
+    return k
 
 
 def _solve(M, x, k):   # pragma: no cover (compiled)
@@ -447,11 +492,13 @@ def _load() -> SimpleNamespace | None:
             # NumPy's floating-point rules (x / 0 is inf or NaN, as in the plain forms) rather than
             # Python's (ZeroDivisionError), which also lets the loops run on vectors
             jit = numba.njit(cache=True, nogil=True, error_model="numpy")
-            global _correlate, _causal_start, _prefilter, _solve   # called from kernels: compiled too
-            _correlate, _causal_start, _solve = jit(_correlate), jit(_causal_start), jit(_solve)
-            _prefilter = jit(_prefilter)
+            global _correlate, _correlate_padded, _causal_start, _prefilter, _solve   # called from kernels
+            global _flux_and_variance, _flux_and_variance_less
+            _correlate_padded, _causal_start, _solve = jit(_correlate_padded), jit(_causal_start), jit(_solve)
+            _correlate, _prefilter = jit(_correlate), jit(_prefilter)
+            _flux_and_variance, _flux_and_variance_less = jit(_flux_and_variance), jit(_flux_and_variance_less)
             _COMPILED = SimpleNamespace(template_segment=jit(_template_segment), fit_orders=jit(_fit_orders),
-                                        prefilter_segments=jit(_prefilter_segments),
+                                        prefilter_segments=jit(_prefilter_segments), strided_snr=jit(_strided_snr),
                                         monotone_median=jit(_monotone_median), correlate=_correlate,
                                         prefilter=_prefilter)
     return _COMPILED or None
@@ -541,6 +588,17 @@ def scratch(name: str, shape: tuple, dtype=float) -> np.ndarray:
             arrays.clear()
         a = arrays[key] = np.empty(shape, dtype=dtype)
     return a
+
+
+def median_snr(orders) -> float:
+    """``np.median`` of every fourth usable pixel's flux / sqrt(variance) over ``orders`` (the S/N
+    :func:`.template_engine.measure_template` reports): the same values, gathered by a compiled loop."""
+    fast = compiled_always()
+    out = scratch("snr", (sum(o.flux.size // 4 + 1 for o in orders),))
+    k = 0
+    for o in orders:
+        k = fast.strided_snr(o.flux, o.var, o.good, out, k)
+    return float(np.median(out[:k]))
 
 
 def monotone_median(a) -> float:

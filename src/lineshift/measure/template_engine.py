@@ -478,7 +478,10 @@ def measure_template(orders: list[PreparedOrder], state: TemplateState, settings
     w = 1 / err[keep] ** 2
     rv = float(np.sum(w * vel[keep]) / np.sum(w))
     chi2_orders = float(np.sum(w * (vel[keep] - rv) ** 2) / max(keep.sum() - 1, 1))
-    snr = float(np.median(np.concatenate([o.flux[o.good][::4] / np.sqrt(o.var[o.good][::4]) for o in orders])))
+    if fast is not None:
+        snr = fit_kernels.median_snr(orders)
+    else:
+        snr = float(np.median(np.concatenate([o.flux[o.good][::4] / np.sqrt(o.var[o.good][::4]) for o in orders])))
     return TemplateResult(rv, float(1 / np.sqrt(np.sum(w))), snr, int(keep.sum()), tuple(rows), chi2_orders,
                           residuals)
 
