@@ -286,8 +286,9 @@ def _solve(M, x, k):   # pragma: no cover (compiled)
     return True
 
 
-def _fit_orders(coef, var_t, ok_t, xi0, lo, hi, flux, var, use, pw, p, dlng, dlng2, iterations, tables, resid,
-                model, weight, deriv, S, width, bnum, bden, bcross, binfo):   # pragma: no cover (compiled)
+def _fit_orders(coef, var_t, ok_t, lnw, lng0, base, lo, hi, flux, var, use, pw, p, dlng, dlng2, iterations, xi0,
+                tables, resid, model, weight, deriv, S, width, bnum, bden, bcross,
+                binfo):   # pragma: no cover (compiled)
     # polynomial degree up to 3 (``pw`` holds x^0..x^6): the sums in scalars, which the compiler keeps
     # in registers (accumulators in an array are stored and loaded again at every pixel); the moments
     # with the powers of x in a second loop over the pixels (``S``: what it sums), which is quicker
@@ -306,6 +307,10 @@ def _fit_orders(coef, var_t, ok_t, xi0, lo, hi, flux, var, use, pw, p, dlng, dln
     b = np.empty(npar)
     dp = np.zeros((k, npar))
     ok = True
+    for j in range(k):                # the template index of each pixel at delta = 0
+        xr, lr, bj = xi0[j], lnw[j], base[j]
+        for i in range(n):
+            xr[i] = (lr[i] - lng0) / dlng + bj
     # the cubic's power-basis coefficients of every interval an order can reach (as coadd.value_tables),
     # formed once for all iterations, in loops over the intervals that run on vectors
     first = np.empty(k, dtype=np.intp)
@@ -552,15 +557,17 @@ def prefilter_segments(c, segments) -> None:
                                          np.ascontiguousarray(segments[:, 3]), POLE)
 
 
-def fit_orders(coef, var_t, ok_t, xi0, lo, hi, flux, var, use, pw, p, dlng: float, iterations: int,
-               width: int = 16):
+def fit_orders(coef, var_t, ok_t, lnw, lng0: float, base, lo, hi, flux, var, use, pw, p, dlng: float,
+               iterations: int, width: int = 16):
     """Gauss-Newton for a block of orders (:func:`.template_engine._fit_block`, the same steps and
-    stopping rule); ``p`` (orders, 2 + degree, degree up to 3) the start, updated in place; ``pw``
-    the powers x^0..x^6 of the pixel positions (n, 7).  Returns (no pivot was zero, alive, reduced
-    chi-square, the velocity's variance in delta^2, per pixel of the last step residual, model,
-    weight, model's derivative with respect to delta, and per bin of ``width`` pixels the sums of
-    :func:`.response.bin_residuals` (weight x model x residual, x model, x derivative; per order
-    weight x derivative^2): :func:`scratch` arrays, overwritten by the next call in this thread)."""
+    stopping rule); ``lnw`` ln(wavelength) of the pixels, ``base`` per order the offset of its
+    segment in the template arrays less its first grid index; ``p`` (orders, 2 + degree, degree up
+    to 3) the start, updated in place; ``pw`` the powers x^0..x^6 of the pixel positions (n, 7).
+    Returns (no pivot was zero, alive, reduced chi-square, the velocity's variance in delta^2, per
+    pixel of the last step residual, model, weight, model's derivative with respect to delta, and
+    per bin of ``width`` pixels the sums of :func:`.response.bin_residuals` (weight x model x
+    residual, x model, x derivative; per order weight x derivative^2): :func:`scratch` arrays,
+    overwritten by the next call in this thread)."""
     k, n = flux.shape
     size = int(np.max(np.floor(hi) - np.floor(lo))) + 1
     tables = scratch("fit_tables", (k, 4, size))
@@ -569,8 +576,9 @@ def fit_orders(coef, var_t, ok_t, xi0, lo, hi, flux, var, use, pw, p, dlng: floa
     bins = [scratch(name, (k, nb)) for name in ("bin_num", "bin_den", "bin_cross")]
     binfo = scratch("bin_info", (k,))
     fast = compiled_always()
-    res = fast.fit_orders(coef, var_t, ok_t, xi0, lo, hi, flux, var, use, pw, p, float(dlng), float(dlng) ** 2,
-                          int(iterations), tables, *out, scratch("fit_sums", (3, n)), int(width), *bins, binfo)
+    res = fast.fit_orders(coef, var_t, ok_t, lnw, float(lng0), base, lo, hi, flux, var, use, pw, p, float(dlng),
+                          float(dlng) ** 2, int(iterations), scratch("fit_xi0", (k, n)), tables, *out,
+                          scratch("fit_sums", (3, n)), int(width), *bins, binfo)
     return (*res, *bins, binfo)
 
 

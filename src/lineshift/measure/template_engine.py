@@ -634,9 +634,6 @@ def _fit_compiled(group: list[PreparedOrder], coef, var_t, ok_t, state: Template
     base, lo_i, hi_i, wave, flux, var, use = _block_arrays(group, state, settings, scratch=True)
     k, n = flux.shape
     lnw = np.log(wave, out=fit_kernels.scratch("block_lnw", (k, n)))
-    xi0 = np.subtract(lnw, state.lng0, out=fit_kernels.scratch("block_xi0", (k, n)))
-    xi0 /= state.dlng                        # (ln lambda - lng0) / dlng + base: template index at delta = 0
-    xi0 += base
     width = 16                               # response.bin_residuals' bins (tests/test_fit_kernels.py)
     bx, cnt = _bin_centres(n, width)
     u = _binned(lnw, width) / np.maximum(cnt, 1)
@@ -649,8 +646,8 @@ def _fit_compiled(group: list[PreparedOrder], coef, var_t, ok_t, state: Template
         p[:, 0] = delta0
         p[:, 1] = 1.0
         ok, alive, chi2, cov00, _, _, _, _, num, den, cross, info = fit_kernels.fit_orders(
-            coef, var_t, ok_t, xi0[sl], lo_i[sl, 0], hi_i[sl, 0], flux[sl], var[sl], use[sl], pw, p, state.dlng,
-            settings.iterations, width)
+            coef, var_t, ok_t, lnw[sl], state.lng0, base[sl, 0], lo_i[sl, 0], hi_i[sl, 0], flux[sl], var[sl], use[sl],
+            pw, p, state.dlng, settings.iterations, width)
         if not ok:
             yield block, *_fit_block(block, coef, var_t, ok_t, state, settings, delta0)
             continue
