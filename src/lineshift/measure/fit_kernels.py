@@ -287,8 +287,7 @@ def _solve(M, x, k):   # pragma: no cover (compiled)
 
 
 def _fit_orders(coef, var_t, ok_t, lnw, lng0, base, lo, hi, flux, var, use, pw, p, dlng, dlng2, iterations, xi0,
-                tables, resid, model, weight, deriv, S, width, bnum, bden, bcross,
-                binfo):   # pragma: no cover (compiled)
+                tables, S, width, bnum, bden, bcross, binfo):   # pragma: no cover (compiled)
     # polynomial degree up to 3 (``pw`` holds x^0..x^6): the sums in scalars, which the compiler keeps
     # in registers (accumulators in an array are stored and loaded again at every pixel); the moments
     # with the powers of x in a second loop over the pixels (``S``: what it sums), which is quicker
@@ -341,49 +340,52 @@ def _fit_orders(coef, var_t, ok_t, lnw, lng0, base, lo, hi, flux, var, use, pw, 
             r0, r1, r2, r3 = tables[j, 0], tables[j, 1], tables[j, 2], tables[j, 3]
             shift = p[j, 0] / dlng
             sa, sb, sc = S[0], S[1], S[2]
-            for i in range(n):
-                xi = xi0[j, i] - shift
-                inside = xi > lo_j and xi < hi_j
-                if xi < lo_j:                 # np.clip: the lower bound, then the upper
-                    xi = lo_j
-                if xi > hi_j:
-                    xi = hi_j
-                i0 = int(xi)                  # xi >= 2: truncation is the floor
-                fr = xi - i0
-                t = i0 - f
-                q0, q1, q2, q3 = r0[t], r1[t], r2[t], r3[t]
-                T = q0 + fr * (q1 + fr * (q2 + fr * q3))
-                dT = q1 + fr * (2 * q2 + 3 * fr * q3)
-                e0, e1, e2, e3 = pw[i, 0], pw[i, 1], pw[i, 2], pw[i, 3]
-                poly = a0 * e0 + a1 * e1 + a2 * e2 + a3 * e3
-                g = poly * dT * ng
-                model[j, i] = poly * T
-                deriv[j, i] = g
-                if not (use[j, i] and inside and ok_t[i0] and ok_t[i0 + 1]):
-                    resid[j, i] = 0.0
-                    weight[j, i] = 0.0
-                    sa[i] = 0.0
-                    sb[i] = 0.0
-                    sc[i] = 0.0
-                    continue
-                d2T = 2 * q2 + 6 * fr * q3
-                w = 1.0 / (var[j, i] + poly * poly * (var_t[i0] + fr * (var_t[i0 + 1] - var_t[i0])))
-                r = flux[j, i] - poly * T
-                resid[j, i] = r
-                weight[j, i] = w
-                used += 1
-                wT = w * T
-                wr = w * r
-                wTT = wT * T
-                wTg = wT * g
-                wrT = wr * T
-                sa[i] = wTT
-                sb[i] = wTg
-                sc[i] = wrT
-                sgg += w * g * g
-                sbg += wr * g
-                curv += wr * poly * d2T
-                chi += wr * r
+            bn, bd, bc = bnum[j], bden[j], bcross[j]
+            for bb in range(bn.size):        # the pixels in bins of ``width``: the residuals' sums per bin
+                bsn = bsd = bsc = 0.0
+                for i in range(bb * width, min((bb + 1) * width, n)):
+                    xi = xi0[j, i] - shift
+                    inside = xi > lo_j and xi < hi_j
+                    if xi < lo_j:             # np.clip: the lower bound, then the upper
+                        xi = lo_j
+                    if xi > hi_j:
+                        xi = hi_j
+                    i0 = int(xi)              # xi >= 2: truncation is the floor
+                    fr = xi - i0
+                    if not (use[j, i] and inside and ok_t[i0] and ok_t[i0 + 1]):
+                        sa[i] = 0.0
+                        sb[i] = 0.0
+                        sc[i] = 0.0
+                        continue
+                    t = i0 - f
+                    q0, q1, q2, q3 = r0[t], r1[t], r2[t], r3[t]
+                    T = q0 + fr * (q1 + fr * (q2 + fr * q3))
+                    dT = q1 + fr * (2 * q2 + 3 * fr * q3)
+                    d2T = 2 * q2 + 6 * fr * q3
+                    e0, e1, e2, e3 = pw[i, 0], pw[i, 1], pw[i, 2], pw[i, 3]
+                    poly = a0 * e0 + a1 * e1 + a2 * e2 + a3 * e3
+                    g = poly * dT * ng
+                    mo = poly * T
+                    w = 1.0 / (var[j, i] + poly * poly * (var_t[i0] + fr * (var_t[i0 + 1] - var_t[i0])))
+                    r = flux[j, i] - mo
+                    used += 1
+                    wT = w * T
+                    wr = w * r
+                    sa[i] = wT * T
+                    sb[i] = wT * g
+                    sc[i] = wr * T
+                    sgg += w * g * g
+                    sbg += wr * g
+                    curv += wr * poly * d2T
+                    chi += wr * r
+                    wm = w * mo
+                    bsn += wm * r
+                    bsd += wm * mo
+                    bsc += wm * g
+                bn[bb] = bsn
+                bd[bb] = bsd
+                bc[bb] = bsc
+            binfo[j] = sgg
             for i in range(n):
                 wTT, wTg, wrT = sa[i], sb[i], sc[i]
                 e0, e1, e2, e3 = pw[i, 0], pw[i, 1], pw[i, 2], pw[i, 3]
@@ -445,24 +447,7 @@ def _fit_orders(coef, var_t, ok_t, lnw, lng0, base, lo, hi, flux, var, use, pw, 
             e[a] = 1.0 if a == 0 else 0.0
         ok = _solve(A, e, npar) and ok
         cov00[j] = e[0]
-    # the binned sums of the last step's residuals (as response.bin_residuals: bins of ``width`` pixels)
-    nb = bnum.shape[1]
-    for j in range(k):
-        wr, mr, rr, gr = weight[j], model[j], resid[j], deriv[j]
-        total = 0.0
-        for bb in range(nb):
-            num = den = crs = 0.0
-            for i in range(bb * width, min((bb + 1) * width, n)):
-                wm = wr[i] * mr[i]
-                num += wm * rr[i]
-                den += wm * mr[i]
-                crs += wm * gr[i]
-                total += wr[i] * gr[i] * gr[i]
-            bnum[j, bb] = num
-            bden[j, bb] = den
-            bcross[j, bb] = crs
-        binfo[j] = total
-    return ok, alive, chi2, cov00, resid, model, weight, deriv
+    return ok, alive, chi2, cov00
 
 
 def _monotone_median(a):   # pragma: no cover (compiled)
@@ -563,21 +548,19 @@ def fit_orders(coef, var_t, ok_t, lnw, lng0: float, base, lo, hi, flux, var, use
     stopping rule); ``lnw`` ln(wavelength) of the pixels, ``base`` per order the offset of its
     segment in the template arrays less its first grid index; ``p`` (orders, 2 + degree, degree up
     to 3) the start, updated in place; ``pw`` the powers x^0..x^6 of the pixel positions (n, 7).
-    Returns (no pivot was zero, alive, reduced chi-square, the velocity's variance in delta^2, per
-    pixel of the last step residual, model, weight, model's derivative with respect to delta, and
-    per bin of ``width`` pixels the sums of :func:`.response.bin_residuals` (weight x model x
-    residual, x model, x derivative; per order weight x derivative^2): :func:`scratch` arrays,
-    overwritten by the next call in this thread)."""
+    Returns (no pivot was zero, alive, reduced chi-square, the velocity's variance in delta^2, and
+    of the last step per bin of ``width`` pixels the sums of :func:`.response.bin_residuals`
+    (weight x model x residual, x model, x derivative with respect to delta; per order weight x
+    derivative^2): :func:`scratch` arrays, overwritten by the next call in this thread)."""
     k, n = flux.shape
     size = int(np.max(np.floor(hi) - np.floor(lo))) + 1
     tables = scratch("fit_tables", (k, 4, size))
-    out = [scratch(name, (k, n)) for name in ("fit_resid", "fit_model", "fit_weight", "fit_deriv")]
     nb = -(-n // width)
     bins = [scratch(name, (k, nb)) for name in ("bin_num", "bin_den", "bin_cross")]
     binfo = scratch("bin_info", (k,))
     fast = compiled_always()
     res = fast.fit_orders(coef, var_t, ok_t, lnw, float(lng0), base, lo, hi, flux, var, use, pw, p, float(dlng),
-                          float(dlng) ** 2, int(iterations), scratch("fit_xi0", (k, n)), tables, *out,
+                          float(dlng) ** 2, int(iterations), scratch("fit_xi0", (k, n)), tables,
                           scratch("fit_sums", (3, n)), int(width), *bins, binfo)
     return (*res, *bins, binfo)
 

@@ -645,7 +645,7 @@ def _fit_compiled(group: list[PreparedOrder], coef, var_t, ok_t, state: Template
         p = np.zeros((len(block), deg + 2))
         p[:, 0] = delta0
         p[:, 1] = 1.0
-        ok, alive, chi2, cov00, _, _, _, _, num, den, cross, info = fit_kernels.fit_orders(
+        ok, alive, chi2, cov00, num, den, cross, info = fit_kernels.fit_orders(
             coef, var_t, ok_t, lnw[sl], state.lng0, base[sl, 0], lo_i[sl, 0], hi_i[sl, 0], flux[sl], var[sl], use[sl],
             pw, p, state.dlng, settings.iterations, width)
         if not ok:
