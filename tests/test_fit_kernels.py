@@ -119,6 +119,14 @@ def test_template_arrays_compiled_equal_the_numpy_form(smooth, per_order):
         np.testing.assert_allclose(coef, coef_p, rtol=1e-13, atol=1e-15)
         np.testing.assert_allclose(var, var_p, rtol=1e-13, atol=0)
         assert ok.sum() > 4000          # most of what the orders cover is usable
+        # the smoothing and the prefilter on their own (the lines engine's steps)
+        loo = state.without(prepared[0], factor)
+        fast, plain = state.smoothed(*loo, compiled=True), state.smoothed(*loo, compiled=False)
+        np.testing.assert_array_equal(fast[2], plain[2])
+        for a, b in zip(fast[:2], plain[:2], strict=True):
+            np.testing.assert_allclose(a, b, rtol=1e-13, atol=1e-15)
+        np.testing.assert_allclose(state.prefilter(plain[0], compiled=True), state.prefilter(plain[0], compiled=False),
+                                   rtol=1e-13, atol=1e-15)
 
 
 @pytest.mark.parametrize(("degree", "block_pixels"), [(3, 16384), (3, 8192), (2, 16384), (4, 16384)])

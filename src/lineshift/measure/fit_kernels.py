@@ -36,8 +36,8 @@ import numpy as np
 
 from lineshift.measure import kernels
 
-__all__ = ["compiled", "compiled_always", "fit_orders", "gaussian_weights", "monotone_median", "prefilter",
-           "prefilter_segments", "smooth_constant", "template_segment"]
+__all__ = ["compiled", "compiled_always", "fit_orders", "gaussian_weights", "median_snr", "monotone_median",
+           "prefilter", "prefilter_segments", "scratch", "smooth_constant", "smooth_segment", "template_segment"]
 
 _COMPILED: SimpleNamespace | bool | None = None
 _SCRATCH = threading.local()
@@ -214,36 +214,45 @@ def _template_segment(sw, swf, sw2v, flagged, ow, owf, ow2v, d0, s0, m, floor, g
                             flagged[d0:e], floor, flux[d0:e], var[d0:e], ok[d0:e])
     _flux_and_variance(sw[e:], swf[e:], sw2v[e:], flagged[e:], floor, flux[e:], var[e:], ok[e:])
     if smooth:
-        rg = (gw.size - 1) // 2
-        rv = (vw.size - 1) // 2
-        okp = np.zeros(n + 2 * rg)      # the three inputs of the convolutions, zero-padded
-        fzp = np.zeros(n + 2 * rg)
-        vzp = np.zeros(n + 2 * rv)
-        okc, fzc, vzc = okp[rg:rg + n], fzp[rg:rg + n], vzp[rv:rv + n]
-        for i in range(n):
-            okc[i] = 1.0 if ok[i] else 0.0
-            fzc[i] = flux[i] if ok[i] else 0.0
-            vzc[i] = var[i] if ok[i] else 0.0
-        den = np.empty(n)
-        num = np.empty(n)
-        v2 = np.empty(n)
-        _correlate_padded(okp, gw, den)
-        _correlate_padded(fzp, gw, num)
-        _correlate_padded(vzp, vw, v2)
-        for i in range(n):
-            good = ok[i] & (den[i] > 0.95)
-            safe = den[i] if good else 1.0
-            f = num[i] / safe
-            a = corr * (v2[i] / vden) / (safe * safe)
-            b = var[i]
-            lo = a if (a < b or a != a) else b     # np.minimum: NaN wins
-            flux[i] = f if good else flux[i]
-            var[i] = lo if good else b
-            ok[i] = good
+        _smooth(flux, var, ok, gw, vw, vden, corr)
     for i in range(n):
         g = ok[i] & np.isfinite(var[i])
         ok_out[i] = g
         var_out[i] = var[i] if g else 0.0
+
+
+def _smooth(flux, var, ok, gw, vw, vden, corr):   # pragma: no cover (compiled)
+    """The smoothing of :meth:`.template_engine.TemplateState.smoothed` on one segment, in place:
+    a normalised convolution with the weights ``gw`` over the usable points, the variance summed
+    with ``vw`` (the squared kernel) divided by ``vden`` and times ``corr``, never above the
+    unsmoothed variance; usable where the kernel's usable weight exceeds 0.95."""
+    n = flux.size
+    rg = (gw.size - 1) // 2
+    rv = (vw.size - 1) // 2
+    okp = np.zeros(n + 2 * rg)      # the three inputs of the convolutions, zero-padded
+    fzp = np.zeros(n + 2 * rg)
+    vzp = np.zeros(n + 2 * rv)
+    okc, fzc, vzc = okp[rg:rg + n], fzp[rg:rg + n], vzp[rv:rv + n]
+    for i in range(n):
+        okc[i] = 1.0 if ok[i] else 0.0
+        fzc[i] = flux[i] if ok[i] else 0.0
+        vzc[i] = var[i] if ok[i] else 0.0
+    den = np.empty(n)
+    num = np.empty(n)
+    v2 = np.empty(n)
+    _correlate_padded(okp, gw, den)
+    _correlate_padded(fzp, gw, num)
+    _correlate_padded(vzp, vw, v2)
+    for i in range(n):
+        good = ok[i] & (den[i] > 0.95)
+        safe = den[i] if good else 1.0
+        f = num[i] / safe
+        a = corr * (v2[i] / vden) / (safe * safe)
+        b = var[i]
+        lo = a if (a < b or a != a) else b     # np.minimum: NaN wins
+        flux[i] = f if good else flux[i]
+        var[i] = lo if good else b
+        ok[i] = good
 
 
 def _strided_snr(flux, var, good, out, start):   # pragma: no cover (compiled)
@@ -483,12 +492,14 @@ def _load() -> SimpleNamespace | None:
             # Python's (ZeroDivisionError), which also lets the loops run on vectors
             jit = numba.njit(cache=True, nogil=True, error_model="numpy")
             global _correlate, _correlate_padded, _causal_start, _prefilter, _solve   # called from kernels
-            global _flux_and_variance, _flux_and_variance_less
+            global _flux_and_variance, _flux_and_variance_less, _smooth
             _correlate_padded, _causal_start, _solve = jit(_correlate_padded), jit(_causal_start), jit(_solve)
             _correlate, _prefilter = jit(_correlate), jit(_prefilter)
             _flux_and_variance, _flux_and_variance_less = jit(_flux_and_variance), jit(_flux_and_variance_less)
+            _smooth = jit(_smooth)
             _COMPILED = SimpleNamespace(template_segment=jit(_template_segment), fit_orders=jit(_fit_orders),
                                         prefilter_segments=jit(_prefilter_segments), strided_snr=jit(_strided_snr),
+                                        smooth=_smooth,
                                         monotone_median=jit(_monotone_median), correlate=_correlate,
                                         prefilter=_prefilter)
     return _COMPILED or None
@@ -532,6 +543,13 @@ def template_segment(sw, swf, sw2v, flagged, own, floor: float, smooth: tuple | 
         gw, vw, vden, corr = smooth
     k.template_segment(sw, swf, sw2v, flagged, ow, owf, ow2v, int(d0), int(s0), int(m), float(floor), gw, vw,
                        float(vden), float(corr), smooth is not None, flux, var_out, ok_out)
+
+
+def smooth_segment(flux, var, ok, smooth: tuple) -> None:
+    """:meth:`.template_engine.TemplateState.smoothed` of one segment in place (views of the segment
+    in the whole arrays); ``smooth`` as :func:`template_segment` takes it."""
+    gw, vw, vden, corr = smooth
+    compiled_always().smooth(flux, var, ok, gw, vw, float(vden), float(corr))
 
 
 def prefilter_segments(c, segments) -> None:

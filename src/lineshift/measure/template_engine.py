@@ -259,17 +259,26 @@ class TemplateState:
         var = np.where(ok, sw2v / np.where(ok, sw, 1.0) ** 2, np.inf)
         return flux, np.maximum(var, 0.0), ok & ~self.flagged
 
-    def smoothed(self, flux: np.ndarray, var: np.ndarray, ok: np.ndarray):
+    def smoothed(self, flux: np.ndarray, var: np.ndarray, ok: np.ndarray, *, compiled: bool | None = None):
         """The template convolved with a Gaussian of sigma :attr:`smooth` (m/s), each segment on its
         own, as a normalised convolution over the usable points; its variance propagated through the
         kernel (node values a pixel apart are nearly independent: ``pixel_step / step`` of them per
-        pixel share its noise), never above the unsmoothed variance."""
+        pixel share its noise), never above the unsmoothed variance.  ``compiled`` as in
+        :meth:`fit_arrays` (each segment by :func:`.fit_kernels.smooth_segment`: the same numbers)."""
+        fast = fit_kernels.compiled() if compiled is None else (fit_kernels.compiled_always() if compiled else None)
         step = C_MS * np.expm1(self.dlng)
         sig = self.smooth / step
         if sig < 0.3:
             return flux, var, ok
         corr = max(self.pixel_step / step, 1.0) if self.pixel_step else 1.0
         flux, var, ok = flux.copy(), var.copy(), ok.copy()
+        if fast is not None:
+            smooth = (fit_kernels.gaussian_weights(sig), fit_kernels.gaussian_weights(sig / np.sqrt(2)),
+                      2 * np.sqrt(np.pi) * sig, corr)
+            for _, _, off, n in self.segments:
+                sl = slice(off, off + n)
+                fit_kernels.smooth_segment(flux[sl], var[sl], ok[sl], smooth)
+            return flux, var, ok
         for _, _, off, n in self.segments:
             sl = slice(off, off + n)
             w = ok[sl].astype(float)
@@ -367,8 +376,14 @@ class TemplateState:
             fit_kernels.prefilter_segments(coef, self.segments)
         return coef, var_out, ok_out
 
-    def prefilter(self, flux: np.ndarray) -> np.ndarray:
-        """Cubic B-spline coefficients of ``flux``, each segment on its own (mirror at its ends)."""
+    def prefilter(self, flux: np.ndarray, *, compiled: bool | None = None) -> np.ndarray:
+        """Cubic B-spline coefficients of ``flux``, each segment on its own (mirror at its ends);
+        ``compiled`` as in :meth:`fit_arrays` (:func:`.fit_kernels.prefilter_segments`: the same numbers)."""
+        fast = fit_kernels.compiled() if compiled is None else (fit_kernels.compiled_always() if compiled else None)
+        if fast is not None:
+            coef = np.array(flux, dtype=float)
+            fit_kernels.prefilter_segments(coef, self.segments)
+            return coef
         coef = np.empty_like(flux)
         for _, _, off, n in self.segments:
             coef[off:off + n] = spline_filter1d(flux[off:off + n], order=3, mode="mirror")
