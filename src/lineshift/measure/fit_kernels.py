@@ -1,30 +1,35 @@
 """Compiled forms (numba) of the template engine's per-spectrum work (:mod:`.template_engine`), each
 with its plain NumPy form kept in the caller and tested against it (tests/test_fit_kernels.py).
 
-* :func:`template_segment`: one segment of what a spectrum is fitted against
+* :func:`template_segment` and :func:`prefilter_segments`: what a spectrum is fitted against
   (:meth:`.template_engine.TemplateState.fit_arrays`; plain form: the array steps there, which are
   :meth:`~.template_engine.TemplateState.without`, :meth:`~.template_engine.TemplateState.smoothed` and
-  :meth:`~.template_engine.TemplateState.prefilter`): its own contribution taken off, flux and
-  variance, the Gaussian smoothing (a normalised convolution) and the cubic B-spline prefilter, in
-  two passes over the points instead of some thirty whole-array operations.  The Gaussian is the
-  kernel of ``scipy.ndimage.gaussian_filter1d`` (truncated at 4 sigma, normalised to a sum of 1,
-  zeros outside the segment) applied with the same additions in the same order, the prefilter the
-  recursive filter of Unser, Aldroubi & Eden (1991, IEEE PAMI 13, 277) with the mirror start of
-  ``scipy.ndimage.spline_filter1d``: the same numbers to the last bit (tested against scipy).
+  :meth:`~.template_engine.TemplateState.prefilter`): per segment its own contribution taken off,
+  flux and variance, the Gaussian smoothing (a normalised convolution), then the cubic B-spline
+  prefilter of every segment, instead of some thirty whole-array operations per segment.  The
+  Gaussian is the kernel of ``scipy.ndimage.gaussian_filter1d`` (truncated at 4 sigma, normalised
+  to a sum of 1, zeros outside the segment) applied with the same additions in the same order; the
+  prefilter the recursive filter of Unser, Aldroubi & Eden (1991, IEEE PAMI 13, 277) with the
+  mirror start of ``scipy.ndimage.spline_filter1d``, the recursions of four segments interleaved:
+  the same numbers to the last bit (tested against scipy and against the plain form).
 * :func:`fit_orders`: the Gauss-Newton iterations of a block of orders (:func:`.template_engine._fit_block`,
-  whose plain forms are ``_fit_block`` itself and ``_fit_block_reference``): the B-spline, the
-  weights and residuals, and the moment sums of the normal equations in one loop over the pixels,
-  the 5 x 5 systems solved by Gaussian elimination with partial pivoting (as LAPACK's getrf/getrs).
-  The sums run sequentially over the pixels where the NumPy form's matrix products let BLAS block
-  (and fuse) them, so the velocities differ in the last bits: ~1e-12 of their errors.
-* :func:`median_snr`: the spectrum's median S/N, its values gathered in one loop per order (the
-  same numbers as the NumPy form beside its caller).
-* :func:`monotone_median`: the median of an order's wavelengths, the middle of the array when it is
-  monotone (the same number as ``np.median``), NaN otherwise (the caller then takes ``np.median``).
+  whose plain forms are ``_fit_block`` itself and ``_fit_block_reference``): the B-spline (its
+  power-basis coefficients per interval formed once), weights, residuals and the sums of the
+  normal equations and of the residual bins (:func:`.response.bin_residuals`) in loops over the
+  pixels, the 5 x 5 systems solved by Gaussian elimination with partial pivoting (as LAPACK's
+  getrf/getrs).  The sums run sequentially over the pixels where the NumPy form's matrix products
+  let BLAS block them, so results differ in the last bits: velocities of one fit by ~1e-12 of
+  their errors, a whole template run (whose fits start from the mask pass and stop within 1e-9 of
+  delta) by ~1e-6, as much as the mask engine's kernels alone move it.
+* :func:`median_snr`: the spectrum's median S/N, its values gathered in one loop per order;
+  :func:`monotone_median`: the median of an order's wavelengths, the middle of the array when it
+  is monotone, NaN otherwise (the caller then takes ``np.median``): the same numbers as NumPy.
 
 The compiled forms are used when :func:`.kernels.compiled` says so (``LINESHIFT_JIT``: ``1`` always,
 ``0`` never, unset: from the :data:`.kernels.WARMUP_SPECTRA`-th spectrum a process prepares on), each
-compiled on first use and cached on disk by numba like those of :mod:`.kernels`.
+compiled on first use and cached on disk by numba like those of :mod:`.kernels`, with NumPy's
+floating-point rules (``error_model="numpy"``).  Their work arrays are this thread's
+(:func:`scratch`): allocating arrays of this size anew costs more in page faults than the arithmetic.
 """
 
 from __future__ import annotations
