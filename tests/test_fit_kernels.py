@@ -40,7 +40,7 @@ def test_prefilter_of_segments_interleaved_equals_each_alone():
                                    rtol=1e-13, atol=1e-15)
 
 
-@pytest.mark.parametrize("sigma", [0.3, 0.53, 0.75, 2.3, 10.0])
+@pytest.mark.parametrize("sigma", [0.3, 0.53, 0.75, 1.0, 2.3, 10.0])   # radii 1, 2, 3, 4, 9, 40
 @pytest.mark.parametrize("n", [5, 600])
 def test_gaussian_smoothing_equals_scipy(sigma, n):
     # outside reference: scipy.ndimage.gaussian_filter1d(mode="constant"), its kernel truncated at

@@ -80,6 +80,31 @@ def _correlate_padded(xp, wts, out):   # pragma: no cover (compiled)
     r = (wts.size - 1) // 2
     wc = wts[r]
     x = xp[r:r + n]
+    if 1 <= r <= 4:   # the common radii in one pass over the points (the same additions, in the same order)
+        w0 = wts[0]
+        w1 = wts[1] if r >= 2 else 0.0
+        w2 = wts[2] if r >= 3 else 0.0
+        w3 = wts[3] if r >= 4 else 0.0
+        a1, b1 = xp[r - 1:r - 1 + n], xp[r + 1:r + 1 + n]
+        if r == 1:
+            for i in range(n):
+                out[i] = x[i] * wc + (a1[i] + b1[i]) * w0
+            return
+        a2, b2 = xp[r - 2:r - 2 + n], xp[r + 2:r + 2 + n]
+        if r == 2:
+            for i in range(n):
+                out[i] = (x[i] * wc + (a2[i] + b2[i]) * w0) + (a1[i] + b1[i]) * w1
+            return
+        a3, b3 = xp[r - 3:r - 3 + n], xp[r + 3:r + 3 + n]
+        if r == 3:
+            for i in range(n):
+                out[i] = ((x[i] * wc + (a3[i] + b3[i]) * w0) + (a2[i] + b2[i]) * w1) + (a1[i] + b1[i]) * w2
+            return
+        a4, b4 = xp[0:n], xp[8:8 + n]
+        for i in range(n):
+            out[i] = (((x[i] * wc + (a4[i] + b4[i]) * w0) + (a3[i] + b3[i]) * w1) + (a2[i] + b2[i]) * w2) + (
+                a1[i] + b1[i]) * w3
+        return
     for i in range(n):
         out[i] = x[i] * wc
     for j in range(r, 0, -1):
