@@ -614,19 +614,17 @@ def fit_orders(coef, var_t, ok_t, lnw, lng0: float, base, lo, hi, flux, var, use
 
 
 def scratch(name: str, shape: tuple, dtype=float) -> np.ndarray:
-    """A work array of this thread, the same one at every call with the same name and shape (its
-    contents are whatever the last user left).  Arrays of a few hundred KB and more are mapped from
-    the system afresh at each allocation, and the page faults of filling them (~1.4 us per 4 KB page
-    here) cost more than the arithmetic: 5 MB of template arrays take 1.8 ms to allocate and fill,
-    75 us to fill again."""
-    arrays = _SCRATCH.__dict__.setdefault("arrays", {})
-    key = (name, tuple(shape), np.dtype(dtype).str)
-    a = arrays.get(key)
-    if a is None:
-        if len(arrays) >= 64:   # a long-lived thread that met many sizes: start again
-            arrays.clear()
-        a = arrays[key] = np.empty(shape, dtype=dtype)
-    return a
+    """A work array of this thread: a view of the one buffer this thread keeps under ``name`` (grown
+    to the largest size asked for), so its contents are whatever the last user left.  Arrays of a
+    few hundred KB and more are mapped from the system afresh at each allocation, and the page
+    faults of filling them (~1.4 us per 4 KB page here) cost more than the arithmetic: 5 MB of
+    template arrays take 1.8 ms to allocate and fill, 75 us to fill again."""
+    buffers = _SCRATCH.__dict__.setdefault("buffers", {})
+    need = int(np.prod(shape))
+    buf = buffers.get(name)
+    if buf is None or buf.size < need or buf.dtype != np.dtype(dtype):   # one buffer per name, the largest size
+        buf = buffers[name] = np.empty(need, dtype=dtype)
+    return buf[:need].reshape(shape)
 
 
 def median_snr(orders) -> float:
