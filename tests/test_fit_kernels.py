@@ -227,3 +227,21 @@ def test_template_batch_compiled_equals_the_numpy_forms(sample_set, monkeypatch)
             assert x["flag"] == y["flag"]
             if np.isfinite(y["rv"]):
                 assert abs(x["rv"] - y["rv"]) < 1e-3 * y["rv_err"]
+
+
+def test_work_arrays_are_per_thread_and_bounded():
+    # one buffer per name in each thread, grown to the largest shape asked for: another shape is a
+    # view of it (C-contiguous), another thread has its own
+    import threading
+
+    a = fk.scratch("test_buffer", (4, 100))
+    b = fk.scratch("test_buffer", (3, 50))
+    assert b.flags.c_contiguous and b.shape == (3, 50) and np.shares_memory(a, b)
+    c = fk.scratch("test_buffer", (5, 100))
+    assert c.shape == (5, 100) and not np.shares_memory(a, c)
+    other = []
+    t = threading.Thread(target=lambda: other.append(fk.scratch("test_buffer", (5, 100))))
+    t.start()
+    t.join()
+    assert not np.shares_memory(other[0], c)
+    assert fk.scratch("test_mask", (10,), bool).dtype == bool
