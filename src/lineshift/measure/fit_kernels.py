@@ -619,12 +619,25 @@ def scratch(name: str, shape: tuple, dtype=float) -> np.ndarray:
     few hundred KB and more are mapped from the system afresh at each allocation, and the page
     faults of filling them (~1.4 us per 4 KB page here) cost more than the arithmetic: 5 MB of
     template arrays take 1.8 ms to allocate and fill, 75 us to fill again."""
+    views = _SCRATCH.__dict__.setdefault("views", {})
+    shape = tuple(shape)
+    key = (name, shape, dtype)
+    view = views.get(key)
+    if view is not None:
+        return view
     buffers = _SCRATCH.__dict__.setdefault("buffers", {})
-    need = int(np.prod(shape))
+    need = 1
+    for d in shape:
+        need *= int(d)
     buf = buffers.get(name)
     if buf is None or buf.size < need or buf.dtype != np.dtype(dtype):   # one buffer per name, the largest size
         buf = buffers[name] = np.empty(need, dtype=dtype)
-    return buf[:need].reshape(shape)
+        for k in [k for k in views if k[0] == name]:
+            del views[k]
+    if len(views) > 256:
+        views.clear()
+    view = views[key] = buf[:need].reshape(shape)
+    return view
 
 
 def median_snr(orders) -> float:
