@@ -245,3 +245,33 @@ def test_work_arrays_are_per_thread_and_bounded():
     t.join()
     assert not np.shares_memory(other[0], c)
     assert fk.scratch("test_mask", (10,), bool).dtype == bool
+
+
+def test_template_fit_compiled_orders_of_two_lengths():
+    # orders of different lengths are fitted in groups of one length; a length that is not a
+    # multiple of the residual bins' width has a short last bin (response.bin_residuals pads it)
+    from dataclasses import replace
+
+    from lineshift.measure import template_engine as te
+
+    ins, prepared, factors, acc = _setup()
+    state = te.TemplateState.from_accumulator(acc, 300.0)
+    state.pixel_step = ins.pixel_velocity
+    orders = list(prepared[0])
+    for k in (1, 4):   # 1500 pixels of the middle of the order (1500 = 93 x 16 + 12)
+        o = orders[k]
+        orders[k] = replace(o, wave=o.wave[300:1800], edges=o.edges[300:1801], flux=o.flux[300:1800],
+                            var=o.var[300:1800], weight=o.weight[300:1800], good=o.good[300:1800],
+                            continuum=None if o.continuum is None else o.continuum[300:1800])
+    settings = te.TemplateSettings()
+    start = -np.log(factors[0]) + 2e-8
+    fast = te.measure_template(orders, state, settings, delta0=start, factor=None, compiled=True)
+    plain = te.measure_template(orders, state, settings, delta0=start, factor=None, compiled=False)
+    assert abs(fast.rv - plain.rv) < 1e-9 * plain.rv_err
+    for a, b in zip(fast.orders, plain.orders, strict=True):
+        assert a["flag"] == b["flag"] and a["wavelength"] == b["wavelength"]
+        assert abs(a["rv"] - b["rv"]) < 1e-9 * b["rv_err"]
+    assert fast.residuals[int(orders[1].index)][0].size == 94
+    for k, bins in plain.residuals.items():
+        for x, y in zip(fast.residuals[k], bins, strict=True):
+            np.testing.assert_allclose(x, y, rtol=1e-6, atol=1e-12 * np.max(np.abs(y)))
