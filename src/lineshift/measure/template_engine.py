@@ -41,6 +41,7 @@ import numpy as np
 from scipy.ndimage import gaussian_filter1d, spline_filter1d
 
 from lineshift.errors import MeasurementError
+from lineshift.measure import fit_kernels
 from lineshift.measure.coadd import (
     TemplateAccumulator,
     bspline,
@@ -258,17 +259,26 @@ class TemplateState:
         var = np.where(ok, sw2v / np.where(ok, sw, 1.0) ** 2, np.inf)
         return flux, np.maximum(var, 0.0), ok & ~self.flagged
 
-    def smoothed(self, flux: np.ndarray, var: np.ndarray, ok: np.ndarray):
+    def smoothed(self, flux: np.ndarray, var: np.ndarray, ok: np.ndarray, *, compiled: bool | None = None):
         """The template convolved with a Gaussian of sigma :attr:`smooth` (m/s), each segment on its
         own, as a normalised convolution over the usable points; its variance propagated through the
         kernel (node values a pixel apart are nearly independent: ``pixel_step / step`` of them per
-        pixel share its noise), never above the unsmoothed variance."""
+        pixel share its noise), never above the unsmoothed variance.  ``compiled`` as in
+        :meth:`fit_arrays` (each segment by :func:`.fit_kernels.smooth_segment`: the same numbers)."""
+        fast = fit_kernels.compiled() if compiled is None else (fit_kernels.compiled_always() if compiled else None)
         step = C_MS * np.expm1(self.dlng)
         sig = self.smooth / step
         if sig < 0.3:
             return flux, var, ok
         corr = max(self.pixel_step / step, 1.0) if self.pixel_step else 1.0
         flux, var, ok = flux.copy(), var.copy(), ok.copy()
+        if fast is not None:
+            smooth = (fit_kernels.gaussian_weights(sig), fit_kernels.gaussian_weights(sig / np.sqrt(2)),
+                      2 * np.sqrt(np.pi) * sig, corr)
+            for _, _, off, n in self.segments:
+                sl = slice(off, off + n)
+                fit_kernels.smooth_segment(flux[sl], var[sl], ok[sl], smooth)
+            return flux, var, ok
         for _, _, off, n in self.segments:
             sl = slice(off, off + n)
             w = ok[sl].astype(float)
@@ -285,11 +295,17 @@ class TemplateState:
         return flux, var, ok
 
     def fit_arrays(self, orders: list[PreparedOrder], factor: float | None, band_factor: float = 1.0,
-                   contributions: list | None = None):
+                   contributions: list | None = None, *, compiled: bool | None = None, out: tuple | None = None):
         """What :func:`measure_template` fits against: (B-spline coefficients, variance, usable) of the
         template without this spectrum (:meth:`without`), smoothed (:meth:`smoothed`), prefiltered
         (:meth:`prefilter`), with the variance 0 where it is not usable.  The same numbers as those
-        three in turn, computed one segment at a time (no temporaries of the whole template)."""
+        three in turn, computed one segment at a time (no temporaries of the whole template).
+
+        ``compiled``: each segment by :func:`.fit_kernels.template_segment` (True), by the array steps
+        below, its plain form (False), or as :func:`.fit_kernels.compiled` says (None): the same
+        numbers to the last bit (tests/test_fit_kernels.py).  ``out``: three arrays of the template's
+        size (float, float, bool) to fill and return instead of new ones."""
+        fast = fit_kernels.compiled() if compiled is None else (fit_kernels.compiled_always() if compiled else None)
         own: dict[int, list] = {}     # segment offset -> this spectrum's contributions to it
         if factor is not None:
             if contributions is None:
@@ -308,9 +324,29 @@ class TemplateState:
             floor = self.__dict__["_sw_floor"] = 1e-12 * np.max(self.sw)
         sig = self.smooth / (C_MS * np.expm1(self.dlng))
         corr = max(self.pixel_step / (C_MS * np.expm1(self.dlng)), 1.0) if self.pixel_step else 1.0
-        coef, var_out, ok_out = np.empty(self.sw.size), np.empty(self.sw.size), np.empty(self.sw.size, dtype=bool)
+        if out is None:
+            out = np.empty(self.sw.size), np.empty(self.sw.size), np.empty(self.sw.size, dtype=bool)
+        coef, var_out, ok_out = out
+        smooth = None
+        if fast is not None and sig >= 0.3:
+            smooth = (fit_kernels.gaussian_weights(sig), fit_kernels.gaussian_weights(sig / np.sqrt(2)),
+                      2 * np.sqrt(np.pi) * sig, corr)
         for _, _, off, n in self.segments:
             sl = slice(off, off + n)
+            if fast is not None:
+                pieces = own.get(off)
+                sw, swf, sw2v, piece = self.sw[sl], self.swf[sl], self.sw2v[sl], None
+                if pieces is not None and len(pieces) == 1:
+                    piece = pieces[0]
+                elif pieces is not None:          # several contributions to one segment: taken off here
+                    sw, swf, sw2v = sw.copy(), swf.copy(), sw2v.copy()
+                    for dst, src, w, wf, w2v in pieces:
+                        sw[dst] -= w[src]
+                        swf[dst] -= wf[src]
+                        sw2v[dst] -= w2v[src]
+                fit_kernels.template_segment(sw, swf, sw2v, self.flagged[sl], piece, floor, smooth, coef[sl],
+                                             var_out[sl], ok_out[sl])
+                continue
             sw, swf, sw2v = self.sw[sl], self.swf[sl], self.sw2v[sl]
             if off in own:
                 sw, swf, sw2v = sw.copy(), swf.copy(), sw2v.copy()
@@ -336,10 +372,18 @@ class TemplateState:
             ok &= np.isfinite(var)
             var_out[sl] = np.where(ok, var, 0.0)
             ok_out[sl] = ok
+        if fast is not None:   # the flux of every segment is in place: its B-spline coefficients
+            fit_kernels.prefilter_segments(coef, self.segments)
         return coef, var_out, ok_out
 
-    def prefilter(self, flux: np.ndarray) -> np.ndarray:
-        """Cubic B-spline coefficients of ``flux``, each segment on its own (mirror at its ends)."""
+    def prefilter(self, flux: np.ndarray, *, compiled: bool | None = None) -> np.ndarray:
+        """Cubic B-spline coefficients of ``flux``, each segment on its own (mirror at its ends);
+        ``compiled`` as in :meth:`fit_arrays` (:func:`.fit_kernels.prefilter_segments`: the same numbers)."""
+        fast = fit_kernels.compiled() if compiled is None else (fit_kernels.compiled_always() if compiled else None)
+        if fast is not None:
+            coef = np.array(flux, dtype=float)
+            fit_kernels.prefilter_segments(coef, self.segments)
+            return coef
         coef = np.empty_like(flux)
         for _, _, off, n in self.segments:
             coef[off:off + n] = spline_filter1d(flux[off:off + n], order=3, mode="mirror")
@@ -378,15 +422,18 @@ class TemplateResult:
 
 def measure_template(orders: list[PreparedOrder], state: TemplateState, settings: TemplateSettings, *,
                      delta0: float, factor: float | None, berv: float = 0.0, path: str | None = None,
-                     band_factor: float = 1.0, key=None) -> TemplateResult:
+                     band_factor: float = 1.0, key=None, compiled: bool | None = None) -> TemplateResult:
     """Topocentric velocity (relative to the template's frame) of one prepared spectrum.
 
     ``delta0`` is the starting ln(1 + rv_topo/c); ``factor`` the co-adding factor this spectrum
     entered the template with (None when it is not part of it: nothing is subtracted);
     ``band_factor`` file-frame / observatory-frame wavelength, placing the telluric bands (1 unless
     the file is barycentric); ``key`` the name the co-add kept this spectrum's screening and
-    contribution under (:meth:`TemplateState.keep`), if any.
+    contribution under (:meth:`TemplateState.keep`), if any; ``compiled``: the template arrays and the
+    fits by the compiled kernels of :mod:`.fit_kernels` (True), by their NumPy forms (False), or as
+    :func:`.fit_kernels.compiled` says (None).
     """
+    fast = fit_kernels.compiled() if compiled is None else (fit_kernels.compiled_always() if compiled else None)
     if not orders:
         raise MeasurementError("no usable order (too few valid pixels)", path=path, status="no valid pixels")
     kept = state.kept(key, factor, band_factor)
@@ -397,7 +444,11 @@ def measure_template(orders: list[PreparedOrder], state: TemplateState, settings
     else:   # as the co-add screened and added it
         goods, own = kept
         orders = [o if g is None else replace(o, good=g) for o, g in zip(orders, goods, strict=True)]
-    coef, var_t, ok_t = state.fit_arrays(orders, factor, band_factor, own)
+    # with the compiled kernels in work arrays of this thread (allocating them anew costs more than filling)
+    out = None if fast is None else (fit_kernels.scratch("template_coef", state.sw.shape),
+                                     fit_kernels.scratch("template_var", state.sw.shape),
+                                     fit_kernels.scratch("template_ok", state.sw.shape, bool))
+    coef, var_t, ok_t = state.fit_arrays(orders, factor, band_factor, own, compiled=fast is not None, out=out)
     # this spectrum's telluric pixels (listed bands and lines found in the batch), in its own frame
     orders = [drop_bands(o, state.bands * band_factor) for o in orders]
     rows = []
@@ -409,17 +460,22 @@ def measure_template(orders: list[PreparedOrder], state: TemplateState, settings
             continue
         by_len.setdefault(o.flux.size, []).append(o)
     residuals = {}
-    pair = (ok_t[:-1] & ok_t[1:], np.diff(var_t))
-    for block in _chunks(by_len.values()):
-        fits, bins = _fit_block(block, coef, var_t, ok_t, state, settings, delta0, pair)
+    if fast is not None:
+        blocks = (fb for group in by_len.values()
+                  for fb in _fit_compiled(group, coef, var_t, ok_t, state, settings, delta0))
+    else:
+        pair = (ok_t[:-1] & ok_t[1:], np.diff(var_t))
+        blocks = ((block, *_fit_block(block, coef, var_t, ok_t, state, settings, delta0, pair))
+                  for block in _chunks(by_len.values()))
+    for block, fits, bins in blocks:
         for o, (v, e, chi2), b in zip(block, fits, bins, strict=True):
             if np.isfinite(v):
                 residuals[int(o.index)] = b
             if not np.isfinite(v):
-                rows.append({"order": int(o.index), "wavelength": float(np.median(o.wave)), "rv": np.nan,
+                rows.append({"order": int(o.index), "wavelength": _median_wavelength(o, fast), "rv": np.nan,
                              "rv_err": np.nan, "chi2_red": np.nan, "flag": "no fit"})
                 continue
-            rows.append({"order": int(o.index), "wavelength": float(np.median(o.wave)), "rv": float(v),
+            rows.append({"order": int(o.index), "wavelength": _median_wavelength(o, fast), "rv": float(v),
                          "rv_err": float(e), "chi2_red": float(chi2),
                          "flag": "poor fit" if chi2 > settings.poor_chi2 else ""})
     rows.sort(key=lambda r: r["order"])
@@ -437,7 +493,10 @@ def measure_template(orders: list[PreparedOrder], state: TemplateState, settings
     w = 1 / err[keep] ** 2
     rv = float(np.sum(w * vel[keep]) / np.sum(w))
     chi2_orders = float(np.sum(w * (vel[keep] - rv) ** 2) / max(keep.sum() - 1, 1))
-    snr = float(np.median(np.concatenate([o.flux[o.good][::4] / np.sqrt(o.var[o.good][::4]) for o in orders])))
+    if fast is not None:
+        snr = fit_kernels.median_snr(orders)
+    else:
+        snr = float(np.median(np.concatenate([o.flux[o.good][::4] / np.sqrt(o.var[o.good][::4]) for o in orders])))
     return TemplateResult(rv, float(1 / np.sqrt(np.sum(w))), snr, int(keep.sum()), tuple(rows), chi2_orders,
                           residuals)
 
@@ -466,17 +525,25 @@ def _powers(n: int, deg: int) -> np.ndarray:
     return out
 
 
-def _block_arrays(block: list[PreparedOrder], state: TemplateState, settings: TemplateSettings):
+def _block_arrays(block: list[PreparedOrder], state: TemplateState, settings: TemplateSettings,
+                  scratch: bool = False):
     """A block of orders stacked for a fit: grid-index offset into the segment arrays and the usable
     template index range per order, wavelengths, fluxes, variances, and the usable pixels (order
-    ends of ``settings.edge_pixels`` left out)."""
+    ends of ``settings.edge_pixels`` left out); ``scratch``: the stacked arrays in this thread's work
+    arrays (:func:`.fit_kernels.scratch`), overwritten by the next call."""
     seg = np.array([state.segment(o.index) for o in block], dtype=float)   # (k, 3): start, offset, length
     base = (seg[:, 1] - seg[:, 0])[:, None]          # grid index -> index in the segment arrays
     lo_i, hi_i = seg[:, 1:2] + 2, seg[:, 1:2] + seg[:, 2:3] - 3
-    wave = np.vstack([o.wave for o in block])
-    flux = np.vstack([o.flux for o in block])
-    var = np.vstack([o.var for o in block])
-    use = np.vstack([o.good for o in block])
+    if scratch:
+        shape = (len(block), block[0].flux.size)
+        wave, flux, var = (np.stack([getattr(o, name) for o in block], out=fit_kernels.scratch("block_" + name, shape))
+                           for name in ("wave", "flux", "var"))
+        use = np.stack([o.good for o in block], out=fit_kernels.scratch("block_good", shape, bool))
+    else:
+        wave = np.vstack([o.wave for o in block])
+        flux = np.vstack([o.flux for o in block])
+        var = np.vstack([o.var for o in block])
+        use = np.vstack([o.good for o in block])
     n = flux.shape[1]
     use[:, : settings.edge_pixels] = False
     use[:, n - settings.edge_pixels:] = False
@@ -564,6 +631,75 @@ def _fit_block(block: list[PreparedOrder], coef, var_t, ok_t, state: TemplateSta
     bad = ~alive | ~np.isfinite(p).all(axis=1)
     bins = bin_residuals(wave, r, poly * T, w, g)
     return [(np.nan, np.nan, np.nan) if bad[j] else (v[j], e[j], chi2[j]) for j in range(k)], bins
+
+
+def _fit_compiled(group: list[PreparedOrder], coef, var_t, ok_t, state: TemplateState, settings: TemplateSettings,
+                  delta0: float):
+    """:func:`_fit_block` of each block of :func:`_chunks` of ``group`` (orders of one length) by the
+    compiled loop of :func:`.fit_kernels.fit_orders`, yielding (block, fits, bins): the whole group
+    stacked once in work arrays, each block fitted on its rows (so the iterations stop per block,
+    as there).  The template's usable points and variance steps are read where they are used (no
+    ``pair``).  The NumPy form for a degree above 3, and for a block whose elimination met an exactly
+    zero pivot, so a singular system fails as it does there."""
+    deg = settings.poly_degree
+    if deg > 3:   # the compiled loop keeps its sums in scalars for degrees up to 3
+        for block in _chunks([group]):
+            yield block, *_fit_block(block, coef, var_t, ok_t, state, settings, delta0)
+        return
+    base, lo_i, hi_i, wave, flux, var, use = _block_arrays(group, state, settings, scratch=True)
+    k, n = flux.shape
+    lnw = np.log(wave, out=fit_kernels.scratch("block_lnw", (k, n)))
+    width = 16                               # response.bin_residuals' bins (tests/test_fit_kernels.py)
+    bx, cnt = _bin_centres(n, width)
+    u = _binned(lnw, width) / np.maximum(cnt, 1)
+    pw = _powers(n, 6)
+    rows = max(BLOCK_PIXELS // n, 1)         # as _chunks
+    for r0 in range(0, k, rows):
+        sl = slice(r0, min(r0 + rows, k))
+        block = group[sl]
+        p = np.zeros((len(block), deg + 2))
+        p[:, 0] = delta0
+        p[:, 1] = 1.0
+        ok, alive, chi2, cov00, num, den, cross, info = fit_kernels.fit_orders(
+            coef, var_t, ok_t, lnw[sl], state.lng0, base[sl, 0], lo_i[sl, 0], hi_i[sl, 0], flux[sl], var[sl], use[sl],
+            pw, p, state.dlng, settings.iterations, width)
+        if not ok:
+            yield block, *_fit_block(block, coef, var_t, ok_t, state, settings, delta0)
+            continue
+        v = C_MS * np.expm1(p[:, 0])
+        e = C_MS * np.exp(p[:, 0]) * np.sqrt(np.abs(cov00))
+        bad = ~alive | ~np.isfinite(p).all(axis=1)
+        # as response.bin_residuals(wave, resid, model, weight, deriv), from the kernel's sums
+        rho = np.where(den > 0, num / np.where(den > 0, den, 1.0), 0.0)
+        bins = [(bx, u[r0 + j], rho[j], den[j].copy(), cross[j].copy(), float(info[j])) for j in range(len(block))]
+        yield block, [(np.nan, np.nan, np.nan) if bad[j] else (v[j], e[j], chi2[j]) for j in range(len(block))], bins
+
+
+def _binned(a: np.ndarray, width: int) -> np.ndarray:
+    """Sums of ``a`` (rows) in bins of ``width`` columns, the last one short (as response.bin_residuals)."""
+    n = a.shape[1]
+    nb = -(-n // width)
+    pad = nb * width - n
+    return (np.pad(a, ((0, 0), (0, pad))) if pad else a).reshape(a.shape[0], nb, width).sum(axis=2)
+
+
+@lru_cache(maxsize=16)
+def _bin_centres(n: int, width: int) -> tuple[np.ndarray, np.ndarray]:
+    """(mean pixel index, pixel count) of each bin of ``width`` of n pixels (read-only)."""
+    cnt = _binned(np.ones((1, n)), width)
+    x = _binned(np.arange(n, dtype=float)[None, :], width)[0] / cnt[0]
+    x.flags.writeable = False
+    cnt.flags.writeable = False
+    return x, cnt
+
+
+def _median_wavelength(o: PreparedOrder, fast) -> float:
+    """``np.median(o.wave)``; with the compiled kernels the middle of the array when it is monotone."""
+    if fast is not None:
+        m = fast.monotone_median(o.wave)
+        if m == m:
+            return float(m)
+    return float(np.median(o.wave))
 
 
 def _fit_block_reference(block: list[PreparedOrder], coef, var_t, ok_t, state: TemplateState,
