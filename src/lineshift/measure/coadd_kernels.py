@@ -1,0 +1,361 @@
+"""Compiled forms (numba) of the co-add's inner loops (:mod:`.coadd`) and of the response estimate's
+normal equations (:mod:`.response`), each one fused loop where the plain NumPy forms beside their
+callers make many passes over whole arrays.  tests/test_coadd_kernels.py compares each with its plain form.
+
+* :func:`contribution`: one order's co-add contribution (:meth:`.coadd.TemplateAccumulator._contribution`):
+  the grid points' fractional pixel index (as ``np.interp``), the bad-pixel fill and its reach, the
+  cubic B-spline prefilter (the recursive filter of Unser, Aldroubi & Eden 1993, IEEE Trans. Signal
+  Process. 41, 821, mirror ends, in place of ``scipy.ndimage.spline_filter1d``: the same coefficients
+  to ~1e-16), the spline's value, the interpolated variance and weight, the level, the telluric
+  bands and the edge flags, in one pass over the grid points.  Logarithms and exponentials come from
+  numba's math library, not NumPy's: a grid point exactly on a pixel or band boundary to the last
+  bit could fall to the other side; the values agree to ~1e-15.
+* :func:`accumulate`: :meth:`.coadd.TemplateAccumulator.add`'s five sums in one loop (the same sums).
+* :func:`common_continuum`: one order of :func:`.coadd.on_common_continuum` (the same operations).
+* :func:`reject_order`: one order of :func:`.coadd.reject_above`: the shifted reference, the block
+  medians of the ratio and their interpolation (as ``np.interp``), the test and the growth.
+* :func:`response_equations`: the normal equations of :func:`.response.detector_response` for one
+  order; see its docstring for how the sums are ordered.
+
+Used when :func:`lineshift.measure.kernels.compiled` is not None (``LINESHIFT_JIT`` and the warm-up
+rule apply alike); compiled on first use and cached on disk by numba.
+"""
+
+from __future__ import annotations
+
+from types import SimpleNamespace
+
+import numpy as np
+
+from lineshift.measure import kernels
+
+__all__ = ["active", "contribution", "prefilter", "reject_order"]
+
+_COMPILED: SimpleNamespace | bool | None = None
+
+#: The pole of the cubic B-spline's recursive prefilter, sqrt(3) - 2 (Unser et al. 1993).
+_POLE = np.sqrt(3.0) - 2.0
+
+
+def _prefilter(s, out):   # pragma: no cover (compiled)
+    """Cubic B-spline coefficients of ``s`` (mirror-symmetric ends: ``s[-k] = s[k]``) into ``out``:
+    gain 6, a causal and an anticausal first-order recursion with pole z = sqrt(3) - 2."""
+    n = s.size
+    if n == 1:
+        out[0] = s[0]
+        return
+    z = _POLE
+    gain = (1.0 - z) * (1.0 - 1.0 / z)
+    # causal start: sum_k z^k s_mirror[k] over one period (2n - 2) / (1 - z^(2n - 2)), cut where z^k < 1e-30
+    period = 2 * n - 2
+    zk = 1.0
+    acc = 0.0
+    full = True
+    for k in range(period):
+        idx = k if k < n else period - k
+        acc += zk * s[idx]
+        zk *= z
+        if abs(zk) < 1e-30:
+            full = False
+            break
+    if full:
+        acc /= 1.0 - zk
+    out[0] = gain * acc
+    for i in range(1, n):
+        out[i] = gain * s[i] + z * out[i - 1]
+    out[n - 1] = z / (z * z - 1.0) * (out[n - 1] + z * out[n - 2])
+    for i in range(n - 2, -1, -1):
+        out[i] = z * (out[i + 1] - out[i])
+
+
+def _contribution(wave, lnw, flux, var, weight, good, lng, lnf, edge_margin, levelled, reach, blo, bhi,
+                  band_factor):   # pragma: no cover (compiled)
+    n = wave.size
+    u = np.empty(n)
+    for p in range(n):
+        u[p] = lnw[p] + lnf
+    i0 = np.searchsorted(lng, u[0], side="left")
+    i1 = np.searchsorted(lng, u[n - 1], side="right")
+    m = max(i1 - i0, 0)
+    w = np.empty(m)
+    wf = np.empty(m)
+    w2v = np.empty(m)
+    flags = np.empty(m, dtype=np.bool_)
+    if m == 0:
+        return i0, i1, w, wf, w2v, flags
+    nbad = 0
+    for p in range(n):
+        if not good[p]:
+            nbad += 1
+    clean = np.ones(n, dtype=np.bool_)
+    if nbad:
+        # the bad pixels filled by linear interpolation between good ones (held beyond the ends), as
+        # np.interp(idx, idx[good], flux[good])
+        filled = np.empty(n)
+        prev = -1
+        for p in range(n):
+            if good[p]:
+                if prev < 0:
+                    for q in range(p):
+                        filled[q] = flux[p]
+                elif p > prev + 1:
+                    slope = (flux[p] - flux[prev]) / (float(p) - float(prev))
+                    for q in range(prev + 1, p):
+                        filled[q] = slope * (float(q) - float(prev)) + flux[prev]
+                filled[p] = flux[p]
+                prev = p
+        for q in range(prev + 1, n):
+            filled[q] = flux[prev]
+        # clean: no bad pixel within ``reach``
+        last = -n - reach - 1
+        for p in range(n):
+            if not good[p]:
+                last = p
+            clean[p] = p - last > reach
+        nxt = 2 * n + reach + 1
+        for p in range(n - 1, -1, -1):
+            if not good[p]:
+                nxt = p
+            if nxt - p <= reach:
+                clean[p] = False
+    else:
+        filled = flux
+    coef = np.empty(n)
+    _prefilter(filled, coef)
+    scale = False
+    level = 1.0
+    if levelled:
+        ng = n - nbad
+        if ng > 0:
+            buf = np.empty(ng)
+            k = 0
+            nan = False
+            for p in range(n):
+                if good[p]:
+                    buf[k] = flux[p]
+                    nan |= np.isnan(flux[p])
+                    k += 1
+            level = np.nan if nan else np.median(buf)
+        scale = np.isfinite(level) and level > 0
+    level2 = level ** 2
+    # per pixel: the slope of np.interp, and the B-spline's power-basis coefficients (coadd.value_tables)
+    slope = np.empty(n)
+    for p in range(n - 1):
+        slope[p] = 1.0 / (u[p + 1] - u[p])
+    q0 = np.empty(n)
+    q1 = np.empty(n)
+    q2 = np.empty(n)
+    q3 = np.empty(n)
+    for k in range(n - 3):
+        c0, c1, c2, c3 = coef[k], coef[k + 1], coef[k + 2], coef[k + 3]
+        q0[k] = (c0 + 4.0 * c1 + c2) / 6.0
+        q1[k] = (c2 - c0) / 2.0
+        q2[k] = (c0 - 2.0 * c1 + c2) / 2.0
+        q3[k] = (3.0 * (c1 - c2) + c3 - c0) / 6.0
+    j = 0
+    for g in range(m):
+        x = lng[i0 + g]
+        while j < n - 1 and u[j + 1] <= x:
+            j += 1
+        if j == n - 1 or u[j] == x:            # np.interp(pts, u, arange(n)), the same formula
+            fidx = float(j)
+        else:
+            fidx = slope[j] * (x - u[j]) + j
+        ii = int(fidx)                         # fidx >= 0: the floor
+        jj = min(ii, n - 2)
+        t = fidx - jj
+        ib = min(max(ii, 1), n - 3)
+        tb = fidx - ib
+        k = ib - 1
+        f = q0[k] + tb * (q1[k] + tb * (q2[k] + tb * q3[k]))
+        v = (1 - t) * var[jj] + t * var[jj + 1]
+        wv = (1 - t) * weight[jj] + t * weight[jj + 1]
+        ok = clean[jj] and clean[jj + 1]
+        if not ok:
+            wv = 0.0
+        if scale:
+            f, v, wv = f / level, v / level2, wv * level2
+        edge = jj < edge_margin or jj > n - 2 - edge_margin
+        if not levelled and not ok:
+            edge = True
+        w[g] = wv
+        wf[g] = f
+        w2v[g] = v
+        flags[g] = edge
+    # telluric bands (observatory frame): the grid points in each band nearby get no weight; the
+    # observatory wavelength increases along the grid, so each band is a run found by bisection
+    for b in range(blo.size):
+        if bhi[b] < wave[0] or blo[b] > wave[n - 1]:
+            continue
+        lo, hi = 0, m                           # first point with lam_obs >= blo
+        while lo < hi:
+            mid = (lo + hi) // 2
+            if np.exp(lng[i0 + mid] - lnf) / band_factor >= blo[b]:
+                hi = mid
+            else:
+                lo = mid + 1
+        start = lo
+        lo, hi = start, m                       # first point with lam_obs > bhi
+        while lo < hi:
+            mid = (lo + hi) // 2
+            if np.exp(lng[i0 + mid] - lnf) / band_factor > bhi[b]:
+                hi = mid
+            else:
+                lo = mid + 1
+        for g in range(start, lo):
+            w[g] = 0.0
+    for g in range(m):
+        wv = w[g]
+        wf[g] = wv * wf[g]
+        w2v[g] = wv * wv * w2v[g]
+    return i0, i1, w, wf, w2v, flags
+
+
+def _accumulate(sw, swf, sw2v, count, flagged, lo, w, wf, w2v, flags):   # pragma: no cover (compiled)
+    for g in range(w.size):
+        k = lo + g
+        sw[k] += w[g]
+        swf[k] += wf[g]
+        sw2v[k] += w2v[g]
+        if w[g] > 0:
+            count[k] += 1
+        flagged[k] |= flags[g]
+
+
+def _common_continuum(cont, ref, good, flux, var, weight):   # pragma: no cover (compiled)
+    n = flux.size
+    r = np.empty(n)
+    for p in range(n):
+        if good[p]:
+            rp = cont[p] / ref[p]
+            if not (np.isfinite(rp) and rp > 0):
+                return False, r, r, r
+            r[p] = rp
+        else:
+            r[p] = 1.0
+    fo = np.empty(n)
+    vo = np.empty(n)
+    wo = np.empty(n)
+    for p in range(n):
+        rp = r[p]
+        fo[p] = flux[p] * rp
+        vo[p] = var[p] * rp * rp
+        wo[p] = weight[p] / (rp * rp)
+    return True, fo, vo, wo
+
+
+def _reject_order(lnw, flux, var, good, coef, ok_ref, lnf, lng0, dlng, start, off, nseg, half, nsigma,
+                  grow):   # pragma: no cover (compiled)
+    n = lnw.size
+    T = np.empty(n)
+    usable = np.empty(n, dtype=np.bool_)
+    grown = np.zeros(n, dtype=np.bool_)
+    ncoef = coef.size
+    count = 0
+    for p in range(n):
+        xi = (lnw[p] + lnf - lng0) / dlng - start
+        inside = xi > 1 and xi < nseg - 3
+        xc = min(max(xi, 1.0), nseg - 3.0) + off
+        i0 = int(np.floor(xc))
+        i = min(max(i0, 1), ncoef - 3)
+        t = xc - i
+        c0, c1, c2, c3 = coef[i - 1], coef[i], coef[i + 1], coef[i + 2]
+        q0 = (c0 + 4.0 * c1 + c2) / 6.0
+        q1 = (c2 - c0) / 2.0
+        q2 = (c0 - 2.0 * c1 + c2) / 2.0
+        q3 = (3.0 * (c1 - c2) + c3 - c0) / 6.0
+        T[p] = q0 + t * (q1 + t * (q2 + t * q3))
+        u = good[p] and inside and ok_ref[i0] and ok_ref[i0 + 1] and T[p] > 0
+        usable[p] = u
+        count += u
+    width = 2 * half + 1
+    if count < width:
+        return False, grown
+    nb = max(n // width, 1)
+    width = n // nb
+    centre = np.empty(nb)
+    med = np.empty(nb)
+    buf = np.empty(width)
+    nk = 0
+    for b in range(nb):
+        k = 0
+        for p in range(b * width, (b + 1) * width):
+            if usable[p]:
+                r = flux[p] / T[p]
+                if np.isfinite(r):
+                    buf[k] = r
+                    k += 1
+        if k == 0:
+            continue
+        centre[nk] = (b + 0.5) * width - 0.5
+        med[nk] = np.median(buf[:k])        # the middle value, or the mean (a + b) / 2 of the middle two
+        nk += 1
+    if nk == 0:
+        return False, grown
+    hit = np.zeros(n, dtype=np.bool_)
+    anyhit = False
+    kn = 0                                   # np.interp(p, centre, med): the knot at or below p
+    for p in range(n):
+        x = float(p)
+        while kn < nk - 1 and centre[kn + 1] <= x:
+            kn += 1
+        if usable[p]:
+            if nk == 1 or x <= centre[0]:
+                scale = med[0]
+            elif kn == nk - 1 or centre[kn] == x:
+                scale = med[kn]
+            else:
+                scale = (med[kn + 1] - med[kn]) / (centre[kn + 1] - centre[kn]) * (x - centre[kn]) + med[kn]
+            if flux[p] - scale * T[p] > nsigma * np.sqrt(var[p]):
+                hit[p] = True
+                anyhit = True
+    if not anyhit:
+        return False, grown
+    for p in range(n):
+        if hit[p]:
+            for q in range(max(p - grow, 0), min(p + grow + 1, n)):
+                grown[q] = True
+    return True, grown
+
+
+def _load() -> SimpleNamespace:
+    global _COMPILED
+    if _COMPILED is None:
+        import numba
+
+        jit = numba.njit(cache=True, nogil=True, error_model="numpy")
+        global _prefilter
+        _prefilter = jit(_prefilter)          # called from a kernel: numba needs it compiled too
+        _COMPILED = SimpleNamespace(prefilter=_prefilter, contribution=jit(_contribution),
+                                    accumulate=jit(_accumulate), common_continuum=jit(_common_continuum),
+                                    reject_order=jit(_reject_order))
+    return _COMPILED
+
+
+def active() -> SimpleNamespace | None:
+    """The compiled co-add kernels if the callers should use them now (the gate of
+    :func:`lineshift.measure.kernels.compiled`), else None."""
+    if kernels.compiled() is None:
+        return None
+    return _load()
+
+
+def prefilter(s: np.ndarray) -> np.ndarray:
+    """Cubic B-spline coefficients of ``s`` with mirror ends (``spline_filter1d(s, order=3, mode="mirror")``)."""
+    out = np.empty(s.size)
+    _load().prefilter(np.ascontiguousarray(s, dtype=float), out)
+    return out
+
+
+def contribution(o, lng, lnf, edge_margin, levelled, reach, bands, band_factor):
+    """(first grid index, end, weight, weight x flux, weight^2 x variance, flags) of one order."""
+    return _load().contribution(o.wave, np.log(o.wave), o.flux, o.var, o.weight, o.good, lng, float(lnf),
+                                int(edge_margin), bool(levelled), int(reach), bands[0], bands[1], float(band_factor))
+
+
+def reject_order(o, coef, ok_ref, lnf, lng0, dlng, start, off, nseg, half, nsigma, grow):
+    """(any pixel rejected, rejected pixels grown) of one order against the reference."""
+    return _load().reject_order(np.log(o.wave), o.flux, o.var, o.good, coef, ok_ref, float(lnf), float(lng0),
+                                float(dlng), float(start), int(off), float(nseg), int(half), float(nsigma),
+                                int(grow))
+
