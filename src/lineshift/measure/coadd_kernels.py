@@ -13,9 +13,11 @@ callers make many passes over whole arrays.  tests/test_coadd_kernels.py compare
 * :func:`accumulate`: :meth:`.coadd.TemplateAccumulator.add`'s five sums in one loop (the same sums).
 * :func:`common_continuum`: one order of :func:`.coadd.on_common_continuum` (the same operations).
 * :func:`reject_order`: one order of :func:`.coadd.reject_above`: the shifted reference, the block
-  medians of the ratio and their interpolation (as ``np.interp``), the test and the growth.
-* :func:`response_equations`: the normal equations of :func:`.response.detector_response` for one
-  order; see its docstring for how the sums are ordered.
+  medians of the ratio and their interpolation (as ``np.interp``), the test and the growth: the
+  same operations (the same pixels rejected).
+* :func:`response_equations <_response_equations>`: the normal equations of
+  :func:`.response.detector_response` for one order, every spectrum's projection taken through the
+  banded design matrix (see the kernel): the same sums in another order, ~1e-15 relative.
 
 Used when :func:`lineshift.measure.kernels.compiled` is not None (``LINESHIFT_JIT`` and the warm-up
 rule apply alike); compiled on first use and cached on disk by numba.
@@ -137,7 +139,11 @@ def _contribution(wave, lnw, flux, var, weight, good, lng, lnf, edge_margin, lev
                     k += 1
             level = np.nan if nan else np.median(buf)
         scale = np.isfinite(level) and level > 0
+    # on a common level: f / L, var / L^2, weight * L^2, the divisions as products with 1 / L and
+    # 1 / L^2 (an ulp apart at most)
+    inv = 1.0 / level
     level2 = level ** 2
+    inv2 = 1.0 / level2
     # per pixel: the slope of np.interp, and the B-spline's power-basis coefficients (coadd.value_tables)
     slope = np.empty(n)
     for p in range(n - 1):
@@ -174,7 +180,7 @@ def _contribution(wave, lnw, flux, var, weight, good, lng, lnf, edge_margin, lev
         if not ok:
             wv = 0.0
         if scale:
-            f, v, wv = f / level, v / level2, wv * level2
+            f, v, wv = f * inv, v * inv2, wv * level2
         edge = jj < edge_margin or jj > n - 2 - edge_margin
         if not levelled and not ok:
             edge = True
@@ -244,13 +250,13 @@ def _common_continuum(cont, ref, good, flux, var, weight):   # pragma: no cover 
     return True, fo, vo, wo
 
 
-def _reject_order(lnw, flux, var, good, coef, ok_ref, lnf, lng0, dlng, start, off, nseg, half, nsigma,
+def _reject_order(lnw, flux, var, good, q0, q1, q2, q3, ok_ref, lnf, lng0, dlng, start, off, nseg, half, nsigma,
                   grow):   # pragma: no cover (compiled)
     n = lnw.size
     T = np.empty(n)
     usable = np.empty(n, dtype=np.bool_)
     grown = np.zeros(n, dtype=np.bool_)
-    ncoef = coef.size
+    ncoef = q0.size + 3
     count = 0
     for p in range(n):
         xi = (lnw[p] + lnf - lng0) / dlng - start
@@ -259,12 +265,8 @@ def _reject_order(lnw, flux, var, good, coef, ok_ref, lnf, lng0, dlng, start, of
         i0 = int(np.floor(xc))
         i = min(max(i0, 1), ncoef - 3)
         t = xc - i
-        c0, c1, c2, c3 = coef[i - 1], coef[i], coef[i + 1], coef[i + 2]
-        q0 = (c0 + 4.0 * c1 + c2) / 6.0
-        q1 = (c2 - c0) / 2.0
-        q2 = (c0 - 2.0 * c1 + c2) / 2.0
-        q3 = (3.0 * (c1 - c2) + c3 - c0) / 6.0
-        T[p] = q0 + t * (q1 + t * (q2 + t * q3))
+        k = i - 1                                # coadd.bspline_value with the tables of coadd.value_tables
+        T[p] = q0[k] + t * (q1[k] + t * (q2[k] + t * q3[k]))
         u = good[p] and inside and ok_ref[i0] and ok_ref[i0 + 1] and T[p] > 0
         usable[p] = u
         count += u
@@ -318,17 +320,182 @@ def _reject_order(lnw, flux, var, good, coef, ok_ref, lnf, lng0, dlng, start, of
     return True, grown
 
 
+def _weight_basis(xj, uj, Wj, lnf, s, h, ncoef, q, guess):   # pragma: no cover (compiled)
+    """Spectrum j's weight at the star-frame point ``s`` and the first column of its four B-spline
+    basis values there (into ``q``), as ``contribution`` in :func:`.response.detector_response`;
+    ``guess``: where the two interpolations found their intervals last (a walk from there finds the
+    interval np.interp's search finds)."""
+    nb = xj.size
+    at = s - lnf
+    # pos = np.interp(at, uj, xj), the ends held
+    if at <= uj[0]:
+        pos = xj[0]
+    elif at >= uj[nb - 1]:
+        pos = xj[nb - 1]
+    else:
+        lo = min(max(guess[0], 0), nb - 2)      # uj[lo] <= at < uj[lo + 1], walked to from the last one
+        while uj[lo + 1] <= at:
+            lo += 1
+        while uj[lo] > at:
+            lo -= 1
+        guess[0] = lo
+        pos = xj[lo] if uj[lo] == at else (xj[lo + 1] - xj[lo]) / (uj[lo + 1] - uj[lo]) * (at - uj[lo]) + xj[lo]
+    wj = 0.0
+    if at >= uj[0] and at <= uj[nb - 1]:    # np.interp(pos, xj, Wj)
+        if pos <= xj[0]:
+            wj = Wj[0]
+        elif pos >= xj[nb - 1]:
+            wj = Wj[nb - 1]
+        else:
+            lo = min(max(guess[1], 0), nb - 2)
+            while xj[lo + 1] <= pos:
+                lo += 1
+            while xj[lo] > pos:
+                lo -= 1
+            guess[1] = lo
+            wj = Wj[lo] if xj[lo] == pos else (Wj[lo + 1] - Wj[lo]) / (xj[lo + 1] - xj[lo]) * (pos - xj[lo]) + Wj[lo]
+    t = pos / h
+    i = min(max(int(np.floor(t)), 0), ncoef - 4)
+    f = t - i
+    f2 = f * f
+    f3 = f ** 3
+    # (1, f, f^2, f^3) times the basis matrix of response._B, written out
+    q[0] = (1.0 - 3.0 * f + 3.0 * f2 - f3) / 6.0
+    q[1] = (4.0 - 6.0 * f2 + 3.0 * f3) / 6.0
+    q[2] = (1.0 + 3.0 * f + 3.0 * f2 - 3.0 * f3) / 6.0
+    q[3] = f3 / 6.0
+    return wj, i
+
+
+def _response_equations(x, u, rho, W, cross, info, bstart, lnf, sgrid, s0, ds, n, h, ncoef,
+                        poly_degree):   # pragma: no cover (compiled)
+    nspec = bstart.size - 1
+    nsg = sgrid.size
+    S = np.zeros((nsg, ncoef))
+    lo_col = np.full(nsg, ncoef, dtype=np.int64)   # the columns of S's row that hold anything
+    hi_col = np.full(nsg, -1, dtype=np.int64)
+    Wsum = np.zeros(nsg)
+    q = np.empty(4)
+    guess = np.zeros(2, dtype=np.int64)
+    for j in range(nspec):
+        a, b = bstart[j], bstart[j + 1]
+        xj, uj, Wj = x[a:b], u[a:b], W[a:b]
+        guess[:] = 0
+        for r in range(nsg):
+            wj, i = _weight_basis(xj, uj, Wj, lnf[j], sgrid[r], h, ncoef, q, guess)
+            Wsum[r] += wj
+            for k in range(4):
+                S[r, i + k] += wj * q[k]
+            if wj != 0.0:
+                lo_col[r] = min(lo_col[r], i)
+                hi_col[r] = max(hi_col[r], i + 3)
+    G = np.zeros((ncoef, ncoef))
+    g = np.zeros(ncoef)
+    wmax = 0.0
+    for r in range(nsg):
+        wmax = max(wmax, Wsum[r])
+    floor = 1e-9 * wmax
+    nl0 = poly_degree + 1
+    used = 0
+    for i in range(nspec):
+        a, b = bstart[i], bstart[i + 1]
+        xi, ui, Wi = x[a:b], u[a:b], W[a:b]
+        nuse = 0
+        for k in range(a, b):
+            nuse += W[k] > 0
+        if nuse <= poly_degree + 2:
+            continue
+        used += 1
+        shift = info[i] > 0 and cross.size > 0
+        rows = nuse + 1 if shift else nuse
+        nl = nl0 + 1 if shift else nl0
+        A = np.zeros((rows, ncoef))
+        y = np.zeros(rows)
+        L = np.zeros((rows, nl))
+        lo_r = np.empty(rows, dtype=np.int64)
+        hi_r = np.empty(rows, dtype=np.int64)
+        colsq = 0.0
+        r = 0
+        guess[:] = 0
+        for k in range(a, b):
+            if not W[k] > 0:
+                continue
+            gi = (u[k] + lnf[i] - s0) / ds
+            i0 = min(max(int(np.floor(gi)), 0), nsg - 2)
+            f = gi - i0
+            ok = True
+            lo, hi = ncoef, -1
+            for node in range(i0, i0 + 2):
+                wt = 1 - f if node == i0 else f
+                own, c = _weight_basis(xi, ui, Wi, lnf[i], sgrid[node], h, ncoef, q, guess)
+                others = Wsum[node] - own
+                ok = ok and others > floor and own > 0
+                safe = others if ok else 1.0
+                for col in range(lo_col[node], hi_col[node] + 1):
+                    A[r, col] -= wt * (S[node, col] / safe)
+                ownv = own if ok else 0.0
+                for m in range(4):
+                    A[r, c + m] += wt * q[m] * (1.0 + ownv / safe)
+                lo = min(lo, lo_col[node], c)
+                hi = max(hi, hi_col[node], c + 3)
+            lo_r[r], hi_r[r] = lo, hi
+            sw = np.sqrt(W[k]) * (1.0 if ok else 0.0)
+            for col in range(lo, hi + 1):
+                A[r, col] *= sw
+            y[r] = rho[k] * sw
+            xp = 2 * x[k] / (n - 1) - 1
+            for p in range(nl0):
+                L[r, p] = xp ** p * sw
+            if shift:
+                col = cross[k] * (1.0 if ok else 0.0) / np.sqrt(W[k])
+                L[r, nl0] = col
+                colsq += col * col
+            r += 1
+        if shift:
+            lo_r[rows - 1], hi_r[rows - 1] = 0, -1          # the shift's row: no response term
+            L[rows - 1, nl0] = np.sqrt(max(info[i] - colsq, 0.0))
+            root = np.sqrt(info[i])
+            for rr in range(rows):
+                L[rr, nl0] /= root
+        Q, _ = np.linalg.qr(L)
+        # the projection off this spectrum's polynomial (and shift): X = (1 - Q Q^T) A, z = (1 - Q Q^T) y;
+        # X^T X = A^T A - (Q^T A)^T (Q^T A) and X^T z = A^T y - (Q^T A)^T (Q^T y), with A banded
+        B = np.zeros((nl, ncoef))
+        Qy = np.zeros(nl)
+        for rr in range(rows):
+            yr = y[rr]
+            for p in range(nl):
+                Qy[p] += Q[rr, p] * yr
+            for c1 in range(lo_r[rr], hi_r[rr] + 1):
+                av = A[rr, c1]
+                g[c1] += av * yr
+                for p in range(nl):
+                    B[p, c1] += Q[rr, p] * av
+                for c2 in range(lo_r[rr], hi_r[rr] + 1):
+                    G[c1, c2] += av * A[rr, c2]
+        for c1 in range(ncoef):
+            for p in range(nl):
+                g[c1] -= B[p, c1] * Qy[p]
+            for c2 in range(ncoef):
+                s = 0.0
+                for p in range(nl):
+                    s += B[p, c1] * B[p, c2]
+                G[c1, c2] -= s
+    return G, g, used
+
+
 def _load() -> SimpleNamespace:
     global _COMPILED
     if _COMPILED is None:
         import numba
 
         jit = numba.njit(cache=True, nogil=True, error_model="numpy")
-        global _prefilter
-        _prefilter = jit(_prefilter)          # called from a kernel: numba needs it compiled too
+        global _prefilter, _weight_basis
+        _prefilter = jit(_prefilter)          # called from kernels: numba needs them compiled too
+        _weight_basis = jit(_weight_basis)
         _COMPILED = SimpleNamespace(prefilter=_prefilter, contribution=jit(_contribution),
                                     accumulate=jit(_accumulate), common_continuum=jit(_common_continuum),
-                                    reject_order=jit(_reject_order))
+                                    reject_order=jit(_reject_order), response_equations=jit(_response_equations))
     return _COMPILED
 
 
@@ -353,9 +520,10 @@ def contribution(o, lng, lnf, edge_margin, levelled, reach, bands, band_factor):
                                 int(edge_margin), bool(levelled), int(reach), bands[0], bands[1], float(band_factor))
 
 
-def reject_order(o, coef, ok_ref, lnf, lng0, dlng, start, off, nseg, half, nsigma, grow):
-    """(any pixel rejected, rejected pixels grown) of one order against the reference."""
-    return _load().reject_order(np.log(o.wave), o.flux, o.var, o.good, coef, ok_ref, float(lnf), float(lng0),
+def reject_order(o, tables, ok_ref, lnf, lng0, dlng, start, off, nseg, half, nsigma, grow):
+    """(any pixel rejected, rejected pixels grown) of one order against the reference (``tables``:
+    :func:`.coadd.value_tables` of its coefficients)."""
+    return _load().reject_order(np.log(o.wave), o.flux, o.var, o.good, *tables, ok_ref, float(lnf), float(lng0),
                                 float(dlng), float(start), int(off), float(nseg), int(half), float(nsigma),
                                 int(grow))
 
