@@ -214,3 +214,12 @@ def test_compiled_response_equals_the_plain_form(shift_info, monkeypatch):
     none_plain = detector_response(same, sizes)
     monkeypatch.setenv("LINESHIFT_JIT", "1")
     assert detector_response(same, sizes) == none_plain == {}
+
+
+def test_inplace_median_equals_numpy_median():
+    # reference: numpy.median (the middle value, or the mean of the middle two)
+    rng = np.random.default_rng(11)
+    for k in (1, 2, 3, 4, 7, 50, 51, 200):
+        for values in (rng.normal(size=k), rng.integers(0, 4, k).astype(float)):   # ties too
+            buf = np.concatenate([values, rng.normal(size=5)])
+            assert coadd_kernels.median_of(buf, k) == np.median(values)

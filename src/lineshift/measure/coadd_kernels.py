@@ -31,7 +31,7 @@ import numpy as np
 
 from lineshift.measure import kernels
 
-__all__ = ["active", "contribution", "prefilter", "reject_order"]
+__all__ = ["active", "contribution", "median_of", "prefilter", "reject_order"]
 
 _COMPILED: SimpleNamespace | bool | None = None
 
@@ -250,6 +250,37 @@ def _common_continuum(cont, ref, good, flux, var, weight):   # pragma: no cover 
     return True, fo, vo, wo
 
 
+def _median_inplace(buf, k):   # pragma: no cover (compiled)
+    """The median of ``buf[:k]`` (finite values; reordered in place) as np.median gives it: the middle
+    value, or the mean (a + b) / 2 of the middle two.  Hoare's selection (quickselect)."""
+    m = k // 2
+    lo, hi = 0, k - 1
+    while lo < hi:
+        pivot = buf[(lo + hi) // 2]
+        i, j = lo, hi
+        while i <= j:
+            while buf[i] < pivot:
+                i += 1
+            while buf[j] > pivot:
+                j -= 1
+            if i <= j:
+                buf[i], buf[j] = buf[j], buf[i]
+                i += 1
+                j -= 1
+        if m <= j:
+            hi = j
+        elif m >= i:
+            lo = i
+        else:
+            break
+    if k % 2 == 1:
+        return buf[m]
+    below = buf[0]                             # everything before m is at most buf[m]
+    for q in range(1, m):
+        below = max(below, buf[q])
+    return (below + buf[m]) / 2
+
+
 def _reject_order(lnw, flux, var, good, q0, q1, q2, q3, ok_ref, lnf, lng0, dlng, start, off, nseg, half, nsigma,
                   grow):   # pragma: no cover (compiled)
     n = lnw.size
@@ -290,7 +321,7 @@ def _reject_order(lnw, flux, var, good, q0, q1, q2, q3, ok_ref, lnf, lng0, dlng,
         if k == 0:
             continue
         centre[nk] = (b + 0.5) * width - 0.5
-        med[nk] = np.median(buf[:k])        # the middle value, or the mean (a + b) / 2 of the middle two
+        med[nk] = _median_inplace(buf, k)
         nk += 1
     if nk == 0:
         return False, grown
@@ -308,7 +339,8 @@ def _reject_order(lnw, flux, var, good, q0, q1, q2, q3, ok_ref, lnf, lng0, dlng,
                 scale = med[kn]
             else:
                 scale = (med[kn + 1] - med[kn]) / (centre[kn + 1] - centre[kn]) * (x - centre[kn]) + med[kn]
-            if flux[p] - scale * T[p] > nsigma * np.sqrt(var[p]):
+            d = flux[p] - scale * T[p]
+            if (d > 0 or nsigma < 0) and d > nsigma * np.sqrt(var[p]):
                 hit[p] = True
                 anyhit = True
     if not anyhit:
@@ -320,51 +352,59 @@ def _reject_order(lnw, flux, var, good, q0, q1, q2, q3, ok_ref, lnf, lng0, dlng,
     return True, grown
 
 
-def _weight_basis(xj, uj, Wj, lnf, s, h, ncoef, q, guess):   # pragma: no cover (compiled)
-    """Spectrum j's weight at the star-frame point ``s`` and the first column of its four B-spline
-    basis values there (into ``q``), as ``contribution`` in :func:`.response.detector_response`;
-    ``guess``: where the two interpolations found their intervals last (a walk from there finds the
-    interval np.interp's search finds)."""
+#: The uniform cubic B-spline basis in powers of t (response._B): weight of coefficient i + k is
+#: sum_p _BSPL[p, k] t^p.
+_BSPL = np.array([[1.0, 4.0, 1.0, 0.0], [-3.0, 0.0, 3.0, 0.0], [3.0, -6.0, 3.0, 0.0], [-1.0, 3.0, -3.0, 1.0]]) / 6.0
+
+
+def _weights_at(xj, uj, Wj, sx, sw, lnf, s, h, ncoef, wout, iout, qout):   # pragma: no cover (compiled)
+    """Spectrum j's weight at the star-frame points ``s`` and the first column of its four B-spline
+    basis values there (into ``wout``, ``iout``, ``qout``), as ``contribution`` in
+    :func:`.response.detector_response`; ``sx``, ``sw``: the slopes of the two interpolations per bin
+    (np.interp's own).  Each interval is walked to from the last one's (np.interp's search finds the same)."""
     nb = xj.size
-    at = s - lnf
-    # pos = np.interp(at, uj, xj), the ends held
-    if at <= uj[0]:
-        pos = xj[0]
-    elif at >= uj[nb - 1]:
-        pos = xj[nb - 1]
-    else:
-        lo = min(max(guess[0], 0), nb - 2)      # uj[lo] <= at < uj[lo + 1], walked to from the last one
-        while uj[lo + 1] <= at:
-            lo += 1
-        while uj[lo] > at:
-            lo -= 1
-        guess[0] = lo
-        pos = xj[lo] if uj[lo] == at else (xj[lo + 1] - xj[lo]) / (uj[lo + 1] - uj[lo]) * (at - uj[lo]) + xj[lo]
-    wj = 0.0
-    if at >= uj[0] and at <= uj[nb - 1]:    # np.interp(pos, xj, Wj)
-        if pos <= xj[0]:
-            wj = Wj[0]
-        elif pos >= xj[nb - 1]:
-            wj = Wj[nb - 1]
+    lo1 = 0
+    lo2 = 0
+    for r in range(s.size):
+        at = s[r] - lnf
+        # pos = np.interp(at, uj, xj), the ends held
+        if at <= uj[0]:
+            pos = xj[0]
+        elif at >= uj[nb - 1]:
+            pos = xj[nb - 1]
         else:
-            lo = min(max(guess[1], 0), nb - 2)
-            while xj[lo + 1] <= pos:
-                lo += 1
-            while xj[lo] > pos:
-                lo -= 1
-            guess[1] = lo
-            wj = Wj[lo] if xj[lo] == pos else (Wj[lo + 1] - Wj[lo]) / (xj[lo + 1] - xj[lo]) * (pos - xj[lo]) + Wj[lo]
-    t = pos / h
-    i = min(max(int(np.floor(t)), 0), ncoef - 4)
-    f = t - i
-    f2 = f * f
-    f3 = f ** 3
-    # (1, f, f^2, f^3) times the basis matrix of response._B, written out
-    q[0] = (1.0 - 3.0 * f + 3.0 * f2 - f3) / 6.0
-    q[1] = (4.0 - 6.0 * f2 + 3.0 * f3) / 6.0
-    q[2] = (1.0 + 3.0 * f + 3.0 * f2 - 3.0 * f3) / 6.0
-    q[3] = f3 / 6.0
-    return wj, i
+            while uj[lo1 + 1] <= at:        # uj[lo1] <= at < uj[lo1 + 1]
+                lo1 += 1
+            while uj[lo1] > at:
+                lo1 -= 1
+            pos = xj[lo1] if uj[lo1] == at else sx[lo1] * (at - uj[lo1]) + xj[lo1]
+        wj = 0.0
+        if at >= uj[0] and at <= uj[nb - 1]:    # np.interp(pos, xj, Wj)
+            if pos <= xj[0]:
+                wj = Wj[0]
+            elif pos >= xj[nb - 1]:
+                wj = Wj[nb - 1]
+            else:
+                while xj[lo2 + 1] <= pos:
+                    lo2 += 1
+                while xj[lo2] > pos:
+                    lo2 -= 1
+                wj = Wj[lo2] if xj[lo2] == pos else sw[lo2] * (pos - xj[lo2]) + Wj[lo2]
+        t = pos / h
+        i = min(max(int(np.floor(t)), 0), ncoef - 4)
+        f = t - i
+        f2 = f * f
+        f3 = f2 * f
+        for k in range(4):                   # (1, f, f^2, f^3) @ _BSPL
+            qout[r, k] = _BSPL[0, k] + f * _BSPL[1, k] + f2 * _BSPL[2, k] + f3 * _BSPL[3, k]
+        wout[r] = wj
+        iout[r] = i
+
+
+def _slopes(xp, fp, out):   # pragma: no cover (compiled)
+    """np.interp's slopes between the points (fp[i + 1] - fp[i]) / (xp[i + 1] - xp[i]) into ``out``."""
+    for i in range(xp.size - 1):
+        out[i] = (fp[i + 1] - fp[i]) / (xp[i + 1] - xp[i])
 
 
 def _response_equations(x, u, rho, W, cross, info, bstart, lnf, sgrid, s0, ds, n, h, ncoef,
@@ -375,17 +415,23 @@ def _response_equations(x, u, rho, W, cross, info, bstart, lnf, sgrid, s0, ds, n
     lo_col = np.full(nsg, ncoef, dtype=np.int64)   # the columns of S's row that hold anything
     hi_col = np.full(nsg, -1, dtype=np.int64)
     Wsum = np.zeros(nsg)
-    q = np.empty(4)
-    guess = np.zeros(2, dtype=np.int64)
+    sx = np.empty(x.size)
+    sW = np.empty(x.size)
     for j in range(nspec):
         a, b = bstart[j], bstart[j + 1]
-        xj, uj, Wj = x[a:b], u[a:b], W[a:b]
-        guess[:] = 0
+        _slopes(u[a:b], x[a:b], sx[a:b])
+        _slopes(x[a:b], W[a:b], sW[a:b])
+    wv = np.empty(nsg)
+    iv = np.empty(nsg, dtype=np.int64)
+    qv = np.empty((nsg, 4))
+    for j in range(nspec):
+        a, b = bstart[j], bstart[j + 1]
+        _weights_at(x[a:b], u[a:b], W[a:b], sx[a:b], sW[a:b], lnf[j], sgrid, h, ncoef, wv, iv, qv)
         for r in range(nsg):
-            wj, i = _weight_basis(xj, uj, Wj, lnf[j], sgrid[r], h, ncoef, q, guess)
+            wj, i = wv[r], iv[r]
             Wsum[r] += wj
             for k in range(4):
-                S[r, i + k] += wj * q[k]
+                S[r, i + k] += wj * qv[r, k]
             if wj != 0.0:
                 lo_col[r] = min(lo_col[r], i)
                 hi_col[r] = max(hi_col[r], i + 3)
@@ -399,7 +445,6 @@ def _response_equations(x, u, rho, W, cross, info, bstart, lnf, sgrid, s0, ds, n
     used = 0
     for i in range(nspec):
         a, b = bstart[i], bstart[i + 1]
-        xi, ui, Wi = x[a:b], u[a:b], W[a:b]
         nuse = 0
         for k in range(a, b):
             nuse += W[k] > 0
@@ -415,8 +460,19 @@ def _response_equations(x, u, rho, W, cross, info, bstart, lnf, sgrid, s0, ds, n
         lo_r = np.empty(rows, dtype=np.int64)
         hi_r = np.empty(rows, dtype=np.int64)
         colsq = 0.0
+        # the spectrum's own weight and basis at the two grid nodes around each of its used bins
+        nodes = np.empty(2 * nuse)
         r = 0
-        guess[:] = 0
+        for k in range(a, b):
+            if W[k] > 0:
+                i0 = min(max(int(np.floor((u[k] + lnf[i] - s0) / ds)), 0), nsg - 2)
+                nodes[2 * r], nodes[2 * r + 1] = sgrid[i0], sgrid[i0 + 1]
+                r += 1
+        ow = np.empty(2 * nuse)
+        oi = np.empty(2 * nuse, dtype=np.int64)
+        oq = np.empty((2 * nuse, 4))
+        _weights_at(x[a:b], u[a:b], W[a:b], sx[a:b], sW[a:b], lnf[i], nodes, h, ncoef, ow, oi, oq)
+        r = 0
         for k in range(a, b):
             if not W[k] > 0:
                 continue
@@ -425,9 +481,10 @@ def _response_equations(x, u, rho, W, cross, info, bstart, lnf, sgrid, s0, ds, n
             f = gi - i0
             ok = True
             lo, hi = ncoef, -1
-            for node in range(i0, i0 + 2):
-                wt = 1 - f if node == i0 else f
-                own, c = _weight_basis(xi, ui, Wi, lnf[i], sgrid[node], h, ncoef, q, guess)
+            for e in range(2):
+                node = i0 + e
+                wt = 1 - f if e == 0 else f
+                own, c = ow[2 * r + e], oi[2 * r + e]
                 others = Wsum[node] - own
                 ok = ok and others > floor and own > 0
                 safe = others if ok else 1.0
@@ -435,7 +492,7 @@ def _response_equations(x, u, rho, W, cross, info, bstart, lnf, sgrid, s0, ds, n
                     A[r, col] -= wt * (S[node, col] / safe)
                 ownv = own if ok else 0.0
                 for m in range(4):
-                    A[r, c + m] += wt * q[m] * (1.0 + ownv / safe)
+                    A[r, c + m] += wt * oq[2 * r + e, m] * (1.0 + ownv / safe)
                 lo = min(lo, lo_col[node], c)
                 hi = max(hi, hi_col[node], c + 3)
             lo_r[r], hi_r[r] = lo, hi
@@ -490,10 +547,12 @@ def _load() -> SimpleNamespace:
         import numba
 
         jit = numba.njit(cache=True, nogil=True, error_model="numpy")
-        global _prefilter, _weight_basis
+        global _prefilter, _weights_at, _slopes, _median_inplace
         _prefilter = jit(_prefilter)          # called from kernels: numba needs them compiled too
-        _weight_basis = jit(_weight_basis)
-        _COMPILED = SimpleNamespace(prefilter=_prefilter, contribution=jit(_contribution),
+        _median_inplace = jit(_median_inplace)
+        _weights_at = jit(_weights_at)
+        _slopes = jit(_slopes)
+        _COMPILED = SimpleNamespace(prefilter=_prefilter, median=_median_inplace, contribution=jit(_contribution),
                                     accumulate=jit(_accumulate), common_continuum=jit(_common_continuum),
                                     reject_order=jit(_reject_order), response_equations=jit(_response_equations))
     return _COMPILED
@@ -512,6 +571,11 @@ def prefilter(s: np.ndarray) -> np.ndarray:
     out = np.empty(s.size)
     _load().prefilter(np.ascontiguousarray(s, dtype=float), out)
     return out
+
+
+def median_of(buf: np.ndarray, k: int) -> float:
+    """The median of ``buf[:k]`` by the compiled selection (on a copy)."""
+    return float(_load().median(np.array(buf, dtype=float), int(k)))
 
 
 def contribution(o, lng, lnf, edge_margin, levelled, reach, bands, band_factor):
