@@ -8,6 +8,8 @@ through it agree to ~1e-15 relative, and the response's normal equations are sum
 order (see coadd_kernels.response_equations).
 """
 
+from dataclasses import replace
+
 import numpy as np
 import pytest
 from scipy.ndimage import spline_filter1d
@@ -109,6 +111,16 @@ def test_compiled_accumulation_equals_the_plain_sums(monkeypatch):
         for name in ("swf", "sw2v"):
             a, b = getattr(seg, name), getattr(other, name)
             np.testing.assert_allclose(b, a, rtol=1e-14, atol=1e-14 * np.max(np.abs(a)))
+
+
+def test_compiled_pixel_steps_equal_the_plain_form(monkeypatch):
+    rng = np.random.default_rng(12)
+    orders = _orders(rng) + _orders(rng, k=2, n=N + 1)    # an even number of steps, and two lengths
+    orders = [replace(o, wave=o.wave * (1 + 3e-7 * rng.normal(size=o.wave.size))) for o in orders]
+    monkeypatch.setenv("LINESHIFT_JIT", "0")
+    plain = coadd.pixel_steps(orders)
+    monkeypatch.setenv("LINESHIFT_JIT", "1")
+    assert coadd.pixel_steps(orders) == plain
 
 
 def test_compiled_common_continuum_equals_the_plain_form(monkeypatch):

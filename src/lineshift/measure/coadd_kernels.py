@@ -10,6 +10,8 @@ callers make many passes over whole arrays.  tests/test_coadd_kernels.py compare
   bands and the edge flags, in one pass over the grid points.  Logarithms and exponentials come from
   numba's math library, not NumPy's: a grid point exactly on a pixel or band boundary to the last
   bit could fall to the other side; the values agree to ~1e-15.
+* :func:`pixel_step <_pixel_step>`: one order's median pixel width of :func:`.coadd.pixel_steps` (the
+  same values, the median by selection).
 * :func:`accumulate`: :meth:`.coadd.TemplateAccumulator.add`'s five sums in one loop (the same sums).
 * :func:`common_continuum`: one order of :func:`.coadd.on_common_continuum` (the same operations).
 * :func:`reject_order`: one order of :func:`.coadd.reject_above`: the shifted reference, the block
@@ -279,6 +281,17 @@ def _median_inplace(buf, k):   # pragma: no cover (compiled)
     for q in range(1, m):
         below = max(below, buf[q])
     return (below + buf[m]) / 2
+
+
+def _pixel_step(wave, c, buf):   # pragma: no cover (compiled)
+    """np.median(c * np.diff(wave) / wave[1:]) (``buf``: scratch of at least wave.size - 1)."""
+    k = wave.size - 1
+    for p in range(k):
+        buf[p] = c * (wave[p + 1] - wave[p]) / wave[p + 1]
+    for p in range(k):
+        if np.isnan(buf[p]):
+            return np.nan
+    return _median_inplace(buf, k)
 
 
 def _reject_order(lnw, flux, var, good, q0, q1, q2, q3, ok_ref, lnf, lng0, dlng, start, off, nseg, half, nsigma,
@@ -552,9 +565,10 @@ def _load() -> SimpleNamespace:
         _median_inplace = jit(_median_inplace)
         _weights_at = jit(_weights_at)
         _slopes = jit(_slopes)
-        _COMPILED = SimpleNamespace(prefilter=_prefilter, median=_median_inplace, contribution=jit(_contribution),
-                                    accumulate=jit(_accumulate), common_continuum=jit(_common_continuum),
-                                    reject_order=jit(_reject_order), response_equations=jit(_response_equations))
+        _COMPILED = SimpleNamespace(
+            prefilter=_prefilter, median=_median_inplace, pixel_step=jit(_pixel_step),
+            contribution=jit(_contribution), accumulate=jit(_accumulate), common_continuum=jit(_common_continuum),
+            reject_order=jit(_reject_order), response_equations=jit(_response_equations))
     return _COMPILED
 
 
