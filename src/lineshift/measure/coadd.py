@@ -417,15 +417,13 @@ def reject_above(orders: list[PreparedOrder], ref: np.ndarray, segments: np.ndar
     lnf = np.log(factor)
     out = list(orders)
     if coadd_kernels.active() is not None:   # each order in one compiled pass (coadd_kernels.reject_order)
-        if tables is None:
-            tables = value_tables(coef)
-        tables = tuple(np.ascontiguousarray(q) for q in tables)
+        coef = np.ascontiguousarray(coef, dtype=float)
         for pos, o in enumerate(orders):
             seg = table.get(-1, table.get(int(o.index)))
             if seg is None:
                 continue
             start, off, n = seg
-            hit, grown = coadd_kernels.reject_order(o, tables, ok_ref, lnf, lng0, dlng, start, off, n, half, nsigma,
+            hit, grown = coadd_kernels.reject_order(o, coef, ok_ref, lnf, lng0, dlng, start, off, n, half, nsigma,
                                                     grow)
             if hit:
                 out[pos] = replace(o, good=o.good & ~grown)
