@@ -234,8 +234,11 @@ def test_compiled_response_equals_the_plain_form(shift_info, monkeypatch):
 def test_inplace_median_equals_numpy_median():
     # reference: numpy.median (the middle value, or the mean of the middle two)
     rng = np.random.default_rng(11)
-    for k in (1, 2, 3, 4, 7, 50, 51, 200):
-        for values in (rng.normal(size=k), rng.integers(0, 4, k).astype(float)):   # ties too
+    for k in (1, 2, 3, 4, 7, 50, 51, 200, 4095, 4096):
+        cases = [rng.normal(size=k), rng.integers(0, 4, k).astype(float),          # ties too
+                 np.r_[rng.normal(size=k - 1), 1e300][:k], np.full(k, 2.5),         # an outlier, all equal
+                 np.r_[rng.normal(size=k - 1), np.inf][:k]]                         # an infinity
+        for values in cases:
             buf = np.concatenate([values, rng.normal(size=5)])
             assert coadd_kernels.median_of(buf, k) == np.median(values)
 

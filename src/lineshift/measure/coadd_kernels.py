@@ -139,7 +139,7 @@ def _contribution(wave, lnw, flux, var, weight, good, lng, lnf, edge_margin, lev
                     buf[k] = flux[p]
                     nan |= np.isnan(flux[p])
                     k += 1
-            level = np.nan if nan else np.median(buf)
+            level = np.nan if nan else _median_inplace(buf, ng)
         scale = np.isfinite(level) and level > 0
     # on a common level: f / L, var / L^2, weight * L^2, the divisions as products with 1 / L and
     # 1 / L^2 (an ulp apart at most)
@@ -267,15 +267,59 @@ def _select_rank(buf, k, m):   # pragma: no cover (compiled)
     return np.nan
 
 
+def _rank_hist(buf, k, ranks, out):   # pragma: no cover (compiled)
+    """The values of the given ranks (0-based, ascending) of ``buf[:k]`` (finite, not all equal) into
+    ``out``: a histogram over [min, max] (the bin is monotone in the value, so its bins keep the order)
+    finds each rank's bin, and the few values in it are ranked by counting.  Exact, and its passes
+    have no comparison the processor has to guess."""
+    lo = buf[0]
+    hi = buf[0]
+    for i in range(1, k):
+        lo = min(lo, buf[i])
+        hi = max(hi, buf[i])
+    nbins = 1024
+    scale = nbins / (hi - lo)
+    counts = np.zeros(nbins + 1, dtype=np.int64)
+    for i in range(k):
+        counts[min(int((buf[i] - lo) * scale), nbins - 1)] += 1
+    for j in range(ranks.size):
+        r = ranks[j]
+        below = 0
+        b = 0
+        while below + counts[b] <= r:
+            below += counts[b]
+            b += 1
+        inbin = np.empty(counts[b])
+        m = 0
+        for i in range(k):
+            if min(int((buf[i] - lo) * scale), nbins - 1) == b:
+                inbin[m] = buf[i]
+                m += 1
+        out[j] = _select_rank(inbin, m, r - below)
+
+
 def _median_inplace(buf, k):   # pragma: no cover (compiled)
-    """The median of ``buf[:k]`` (finite values) as np.median gives it: the middle value, or the mean
-    (a + b) / 2 of the middle two.  Small blocks by rank counting, larger ones by Hoare's selection
-    (quickselect, reordering ``buf`` in place)."""
+    """The median of ``buf[:k]`` (values without NaN) as np.median gives it: the middle value, or the
+    mean (a + b) / 2 of the middle two.  A few dozen values by rank counting, more through a
+    histogram (:func:`_rank_hist`); with infinities, Hoare's selection (quickselect, reordering
+    ``buf`` in place)."""
     m = k // 2
     if k <= 96:
         if k % 2 == 1:
             return _select_rank(buf, k, m)
         return (_select_rank(buf, k, m - 1) + _select_rank(buf, k, m)) / 2
+    lo = buf[0]
+    hi = buf[0]
+    for i in range(1, k):
+        lo = min(lo, buf[i])
+        hi = max(hi, buf[i])
+    if lo == hi:
+        return lo
+    if np.isfinite(lo) and np.isfinite(hi) and np.isfinite(hi - lo):
+        ranks = np.array([m]) if k % 2 == 1 else np.array([m - 1, m])
+        out = np.empty(ranks.size)
+        _rank_hist(buf, k, ranks, out)
+        return out[0] if k % 2 == 1 else (out[0] + out[1]) / 2
     lo, hi = 0, k - 1
     while lo < hi:
         pivot = buf[(lo + hi) // 2]
@@ -619,9 +663,10 @@ def _load() -> SimpleNamespace:
         import numba
 
         jit = numba.njit(cache=True, nogil=True, error_model="numpy")
-        global _prefilter, _weights_at, _slopes, _median_inplace, _select_rank
+        global _prefilter, _weights_at, _slopes, _median_inplace, _select_rank, _rank_hist
         _prefilter = jit(_prefilter)          # called from kernels: numba needs them compiled too
         _select_rank = jit(_select_rank)
+        _rank_hist = jit(_rank_hist)
         _median_inplace = jit(_median_inplace)
         _weights_at = jit(_weights_at)
         _slopes = jit(_slopes)
