@@ -7,16 +7,25 @@ callers make many passes over whole arrays.  tests/test_coadd_kernels.py compare
   cubic B-spline prefilter (the recursive filter of Unser, Aldroubi & Eden 1993, IEEE Trans. Signal
   Process. 41, 821, mirror ends, in place of ``scipy.ndimage.spline_filter1d``: the same coefficients
   to ~1e-16), the spline's value, the interpolated variance and weight, the level, the telluric
-  bands and the edge flags, in one pass over the grid points.  Logarithms and exponentials come from
-  numba's math library, not NumPy's: a grid point exactly on a pixel or band boundary to the last
-  bit could fall to the other side; the values agree to ~1e-15.
+  bands and the edge flags, in one pass over the grid points.  ``ln lambda`` of the pixels comes
+  from NumPy (an ulp of it is ~5e-10 of a pixel: numba's logarithm, an ulp off NumPy's SIMD one
+  here and there, would move the interpolated values by that much); the exponentials that place
+  the telluric band edges are numba's (a grid point on a band edge to the last bit could fall to
+  the other side); on a common level the divisions by the level and its square are products with
+  their inverses.  Weights and flags are the same, the other values agree to ~1e-15.
 * :func:`pixel_step <_pixel_step>`: one order's median pixel width of :func:`.coadd.pixel_steps` (the
   same values, the median by selection).
 * :func:`accumulate`: :meth:`.coadd.TemplateAccumulator.add`'s five sums in one loop (the same sums).
 * :func:`common_continuum`: one order of :func:`.coadd.on_common_continuum` (the same operations).
 * :func:`reject_order`: one order of :func:`.coadd.reject_above`: the shifted reference, the block
   medians of the ratio and their interpolation (as ``np.interp``), the test and the growth: the
-  same operations (the same pixels rejected).
+  same operations (the same pixels rejected); the medians are skipped where no pixel stands above
+  a lower bound of the interpolated scale (the least ratios of the bracketing blocks), which any
+  rejected pixel must pass.
+
+Medians (the level of an order, the blocks of the screening, pixel widths) are exact ranks as
+``np.median`` takes them, found without comparisons the processor has to guess: a few dozen values
+by counting ranks, more through a histogram of the values (:func:`_median_inplace`).
 * :func:`response_equations <_response_equations>`: the normal equations of
   :func:`.response.detector_response` for one order, every spectrum's projection taken through the
   banded design matrix (see the kernel): the same sums in another order, ~1e-15 relative.
