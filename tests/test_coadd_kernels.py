@@ -268,3 +268,13 @@ def test_template_run_with_compiled_kernels_gives_the_same_rows(tmp_path, monkey
         assert b["status"] == "ok"
         assert abs(a["rv"] - b["rv"]) < 1e-6 * a["rv_err"]
         assert b["rv_err"] == pytest.approx(a["rv_err"], rel=1e-6)
+
+
+def test_median_bin_step_equals_numpy():
+    # reference: numpy.median of numpy.diff, per spectrum and over them (an odd and an even count)
+    rng = np.random.default_rng(13)
+    for nspec, nb in ((5, 256), (4, 255)):
+        u = [np.cumsum(rng.uniform(1e-6, 2e-6, nb)) + 8.5 for _ in range(nspec)]
+        bstart = np.concatenate(([0], np.cumsum([x.size for x in u])))
+        want = np.median([np.median(np.diff(x)) for x in u])
+        assert coadd_kernels._load().median_bin_step(np.concatenate(u), bstart) == want

@@ -367,6 +367,26 @@ def _pixel_step(wave, c, buf):   # pragma: no cover (compiled)
     return _median_inplace(buf, k)
 
 
+def _median_bin_step(u, bstart):   # pragma: no cover (compiled)
+    """The median over the spectra (bins ``bstart[j]:bstart[j + 1]`` of ``u``) of the median step
+    between their bins: ``np.median([np.median(np.diff(u_j)) for j])``, the same values."""
+    nspec = bstart.size - 1
+    meds = np.empty(nspec)
+    buf = np.empty(u.size)
+    for j in range(nspec):
+        a, b = bstart[j], bstart[j + 1]
+        k = b - a - 1
+        nan = False
+        for p in range(k):
+            buf[p] = u[a + p + 1] - u[a + p]
+            nan |= np.isnan(buf[p])
+        meds[j] = np.nan if (nan or k < 1) else _median_inplace(buf, k)
+    for j in range(nspec):
+        if np.isnan(meds[j]):
+            return np.nan
+    return _median_inplace(meds, nspec)
+
+
 def _reject_order(lnw, flux, var, good, coef, ok_ref, lnf, lng0, dlng, start, off, nseg, half, nsigma,
                   grow):   # pragma: no cover (compiled)
     n = lnw.size
@@ -682,7 +702,8 @@ def _load() -> SimpleNamespace:
         _COMPILED = SimpleNamespace(
             prefilter=_prefilter, median=_median_inplace, pixel_step=jit(_pixel_step),
             contribution=jit(_contribution), accumulate=jit(_accumulate), common_continuum=jit(_common_continuum),
-            reject_order=jit(_reject_order), response_equations=jit(_response_equations))
+            reject_order=jit(_reject_order), response_equations=jit(_response_equations),
+            median_bin_step=jit(_median_bin_step))
     return _COMPILED
 
 

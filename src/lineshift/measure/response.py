@@ -211,12 +211,12 @@ def _solve(G, g, ncoef, penalty, precision, evaluate):
 
 def _equations_fast(fast, have, n, h, ncoef, poly_degree):
     """(G, g) of :func:`detector_response` for one order by :func:`.coadd_kernels.response_equations`."""
-    ds = 0.25 * float(np.median([np.median(np.diff(b[1])) for _, b in have]))
-    s0 = min(b[1][0] + lnf for lnf, b in have)
-    sgrid = np.arange(s0, max(b[1][-1] + lnf for lnf, b in have) + 2 * ds, ds)
     sizes = np.array([b[0].size for _, b in have])
     bstart = np.concatenate(([0], np.cumsum(sizes)))
     cat = [np.ascontiguousarray(np.concatenate([b[k] for _, b in have]), dtype=float) for k in range(4)]
+    ds = 0.25 * float(fast.median_bin_step(cat[1], bstart))     # the medians of the plain form, by selection
+    s0 = min(b[1][0] + lnf for lnf, b in have)
+    sgrid = np.arange(s0, max(b[1][-1] + lnf for lnf, b in have) + 2 * ds, ds)
     shift = [len(b) > 4 for _, b in have]
     cross = np.concatenate([b[4] if s else np.zeros(b[0].size) for (_, b), s in zip(have, shift, strict=True)])
     info = np.array([float(b[5]) if s else 0.0 for (_, b), s in zip(have, shift, strict=True)])
