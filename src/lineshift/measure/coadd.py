@@ -29,6 +29,7 @@ from dataclasses import dataclass, replace
 import numpy as np
 from scipy.ndimage import spline_filter1d
 
+from lineshift.measure import coadd_kernels
 from lineshift.measure.prepare import PreparedOrder
 from lineshift.model import C_MS
 
@@ -150,11 +151,16 @@ def on_common_continuum(orders: list[PreparedOrder], reference: dict[int, np.nda
     """
     if not reference:
         return orders
+    fast = coadd_kernels.active()
     out = []
     for o in orders:
         ref = reference.get(int(o.index))
         if ref is None or o.continuum is None or ref.size != o.flux.size:
             out.append(o)
+            continue
+        if fast is not None:   # the same operations in one loop (coadd_kernels)
+            ok, flux, var, weight = fast.common_continuum(o.continuum, ref, o.good, o.flux, o.var, o.weight)
+            out.append(replace(o, flux=flux, var=var, weight=weight, continuum=ref) if ok else o)
             continue
         with np.errstate(invalid="ignore", divide="ignore"):
             r = o.continuum / ref
@@ -169,6 +175,10 @@ def on_common_continuum(orders: list[PreparedOrder], reference: dict[int, np.nda
 def pixel_steps(orders: list[PreparedOrder]) -> list[float]:
     """Median pixel width (m/s) of each order, in their order (orders of one length at once)."""
     out = [0.0] * len(orders)
+    fast = coadd_kernels.active()
+    if fast is not None:   # order by order, the median by selection (coadd_kernels)
+        buf = np.empty(max((o.wave.size for o in orders), default=1))
+        return [float(fast.pixel_step(o.wave, C_MS, buf)) if o.wave.size > 1 else float("nan") for o in orders]
     by_len: dict[int, list[int]] = {}
     for pos, o in enumerate(orders):
         by_len.setdefault(o.wave.size, []).append(pos)
@@ -247,6 +257,8 @@ class TemplateAccumulator:
             self.segments[-1] = _Segment(0, grid.size)
         self.edge_margin = edge_margin
         self.bands = bands if bands is not None else np.zeros((0, 2))
+        self._band_edges = (np.ascontiguousarray(self.bands[:, 0], dtype=float),
+                            np.ascontiguousarray(self.bands[:, 1], dtype=float))
         self.n_spectra = 0
         self._pixel_steps: list[float] = []
 
@@ -275,9 +287,22 @@ class TemplateAccumulator:
     def contribution_list(self, orders: list[PreparedOrder], factor: float, band_factor: float = 1.0) -> list:
         """:meth:`contributions` as a list aligned with ``orders`` (None for an order off the grid)."""
         lnf = np.log(factor)
+        if coadd_kernels.active() is not None:
+            return [self._contribution_fast(o, lnf, band_factor) for o in orders]
         return [self._contribution(o, lnf, band_factor) for o in orders]
 
+    def _contribution_fast(self, o: PreparedOrder, lnf: float, band_factor: float):
+        """:meth:`_contribution` by one compiled pass (:func:`.coadd_kernels.contribution`)."""
+        if not o.good.any():   # nothing to fill the bad pixels from: as the plain form has it
+            return self._contribution(o, lnf, band_factor)
+        i0, i1, w, wf, w2v, flags = coadd_kernels.contribution(o, self.lng, lnf, self.edge_margin, self.levelled,
+                                                               _BAD_REACH, self._band_edges, band_factor)
+        if i1 <= i0:
+            return None
+        return o.index, slice(int(i0), int(i1)), w, wf, w2v, flags
+
     def _contribution(self, o: PreparedOrder, lnf: float, band_factor: float):
+        """One order's contribution (plain form of :meth:`_contribution_fast`)."""
         u = np.log(o.wave) + lnf
         i0 = np.searchsorted(self.lng, u[0], side="left")
         i1 = np.searchsorted(self.lng, u[-1], side="right")
@@ -332,6 +357,7 @@ class TemplateAccumulator:
         self._pixel_steps.extend(pixel_steps(orders))
         if contributions is None:
             contributions = self.contribution_list(orders, factor, band_factor)
+        fast = coadd_kernels.active()
         for c in contributions:
             if c is None:
                 continue
@@ -344,6 +370,9 @@ class TemplateAccumulator:
                 sl = slice(sl.start - seg.start, sl.stop - seg.start)
             else:
                 seg = self.segments[-1]
+            if fast is not None:   # the same sums in one loop
+                fast.accumulate(seg.sw, seg.swf, seg.sw2v, seg.count, seg.flagged, sl.start, w, wf, w2v, flags)
+                continue
             seg.sw[sl] += w
             seg.swf[sl] += wf
             seg.sw2v[sl] += w2v
@@ -383,12 +412,24 @@ def reject_above(orders: list[PreparedOrder], ref: np.ndarray, segments: np.ndar
     """
     if coef is None:
         coef = reference_coefficients(ref, segments)
-    if tables is None:
-        tables = value_tables(coef)
     table = {int(k): (int(a), int(b), int(n)) for k, a, b, n in segments}
     ok_ref = np.isfinite(ref)
     lnf = np.log(factor)
     out = list(orders)
+    if coadd_kernels.active() is not None:   # each order in one compiled pass (coadd_kernels.reject_order)
+        coef = np.ascontiguousarray(coef, dtype=float)
+        for pos, o in enumerate(orders):
+            seg = table.get(-1, table.get(int(o.index)))
+            if seg is None:
+                continue
+            start, off, n = seg
+            hit, grown = coadd_kernels.reject_order(o, coef, ok_ref, lnf, lng0, dlng, start, off, n, half, nsigma,
+                                                    grow)
+            if hit:
+                out[pos] = replace(o, good=o.good & ~grown)
+        return out
+    if tables is None:
+        tables = value_tables(coef)
     todo: dict[int, list[tuple[int, np.ndarray, np.ndarray]]] = {}   # by length: (position, model, usable)
     for pos, o in enumerate(orders):
         seg = table.get(-1, table.get(int(o.index)))

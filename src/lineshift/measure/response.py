@@ -96,6 +96,9 @@ def detector_response(spectra: list[tuple[float, dict[int, ResponseBins]]], size
     penalty relative to the mean information per direction; only combinations of coefficients that the
     data fix to ``precision`` in ``ln R`` (the information is that of the relative residuals, ``W`` of
     the bins) are estimated, the rest left at zero."""
+    from lineshift.measure import coadd_kernels
+
+    fast = coadd_kernels.active()
     out: dict[int, np.ndarray] = {}
     for index, n in sizes.items():
         have = [(lnf, bins[index]) for lnf, bins in spectra if index in bins]
@@ -104,6 +107,13 @@ def detector_response(spectra: list[tuple[float, dict[int, ResponseBins]]], size
         nint = int(np.clip(round((n - 1) / spacing), 4, 64))
         h = (n - 1) / nint
         ncoef = nint + 3
+        if fast is not None:   # the normal equations by one compiled pass (coadd_kernels.response_equations)
+            G, g = _equations_fast(fast, have, n, h, ncoef, poly_degree)
+            resp = _solve(G, g, ncoef, penalty, precision,
+                          lambda c, n=n, h=h, ncoef=ncoef: _response_sparse(c, n, h, ncoef))
+            if resp is not None:
+                out[index] = resp
+            continue
 
         def contribution(lnf_j, bins_j, s, h=h, ncoef=ncoef):
             """Spectrum j's weight at star-frame points s (ln wavelength) and its basis there (sparse)."""
@@ -171,19 +181,61 @@ def detector_response(spectra: list[tuple[float, dict[int, ResponseBins]]], size
             y -= Q @ (Q.T @ y)
             G += X.T @ X
             g += X.T @ y
-        # only what the data measure to ``precision`` or better: the eigen-directions of the
-        # information G above 1 / precision^2 (without a spread of shifts, none: the response is
-        # invisible, and harmless); the second-difference penalty smooths within them
-        # LAPACK's relatively robust representations (syevr): numpy's divide-and-conquer driver took
-        # 12 ms instead of 0.1 ms on these 35 x 35 matrices right after the fits' batched products
-        lam, V = eigh(G, driver="evr")
-        Vk = V[:, lam > 1.0 / precision**2]
-        if Vk.shape[1] == 0:
-            continue
-        D = np.diff(np.eye(ncoef), 2, axis=0)
-        P = penalty * float(np.mean(lam[lam > 0])) * (D.T @ D)
-        coef = Vk @ np.linalg.solve(Vk.T @ (G + P) @ Vk, Vk.T @ g)
-        resp = _basis(np.arange(n, dtype=float), h, ncoef) @ coef
-        if np.all(np.isfinite(resp)):
+        resp = _solve(G, g, ncoef, penalty, precision, lambda c, n=n, h=h, ncoef=ncoef: _basis(
+            np.arange(n, dtype=float), h, ncoef) @ c)
+        if resp is not None:
             out[index] = resp
     return out
+
+
+def _solve(G, g, ncoef, penalty, precision, evaluate):
+    """``ln R`` per pixel (``evaluate`` of the coefficients) from the normal equations, or None."""
+    # only what the data measure to ``precision`` or better: the eigen-directions of the
+    # information G above 1 / precision^2 (without a spread of shifts, none: the response is
+    # invisible, and harmless); the second-difference penalty smooths within them
+    # LAPACK's relatively robust representations (syevr): numpy's divide-and-conquer driver took
+    # 12 ms instead of 0.1 ms on these 35 x 35 matrices right after the fits' batched products
+    lam, V = eigh(G, driver="evr")
+    Vk = V[:, lam > 1.0 / precision**2]
+    if Vk.shape[1] == 0:
+        return None
+    # the mean over the directions with information: eigenvalues at the rounding level of G (the
+    # invisible polynomials) are left out, as a matrix rank leaves them out (numpy.linalg.matrix_rank's
+    # tolerance: largest x size x machine epsilon), whatever sign rounding gave them
+    D = np.diff(np.eye(ncoef), 2, axis=0)
+    P = penalty * float(np.mean(lam[lam > lam[-1] * ncoef * np.finfo(float).eps])) * (D.T @ D)
+    coef = Vk @ np.linalg.solve(Vk.T @ (G + P) @ Vk, Vk.T @ g)
+    resp = evaluate(coef)
+    return resp if np.all(np.isfinite(resp)) else None
+
+
+def _equations_fast(fast, have, n, h, ncoef, poly_degree):
+    """(G, g) of :func:`detector_response` for one order by :func:`.coadd_kernels.response_equations`."""
+    sizes = np.array([b[0].size for _, b in have])
+    bstart = np.concatenate(([0], np.cumsum(sizes)))
+    cat = [np.ascontiguousarray(np.concatenate([b[k] for _, b in have]), dtype=float) for k in range(4)]
+    ds = 0.25 * float(fast.median_bin_step(cat[1], bstart))     # the medians of the plain form, by selection
+    s0 = min(b[1][0] + lnf for lnf, b in have)
+    sgrid = np.arange(s0, max(b[1][-1] + lnf for lnf, b in have) + 2 * ds, ds)
+    shift = [len(b) > 4 for _, b in have]
+    cross = np.concatenate([b[4] if s else np.zeros(b[0].size) for (_, b), s in zip(have, shift, strict=True)])
+    info = np.array([float(b[5]) if s else 0.0 for (_, b), s in zip(have, shift, strict=True)])
+    lnf = np.array([float(v) for v, _ in have])
+    G, g, _ = fast.response_equations(*cat, np.ascontiguousarray(cross, dtype=float), info, bstart, lnf, sgrid,
+                                      float(s0), ds, int(n), float(h), int(ncoef), int(poly_degree))
+    return G, g
+
+
+_SPARSE: dict[tuple, tuple[np.ndarray, np.ndarray]] = {}
+
+
+def _response_sparse(coef, n, h, ncoef):
+    """The B-spline with coefficients ``coef`` at every pixel, from its four non-zero basis values
+    per pixel (the same as the dense design matrix times ``coef``, summed in another order)."""
+    key = (n, h, ncoef)
+    if key not in _SPARSE:
+        if len(_SPARSE) > 8:
+            _SPARSE.clear()
+        _SPARSE[key] = _basis_sparse(np.arange(n, dtype=float), h, ncoef)
+    i, q = _SPARSE[key]
+    return (q[:, 0] * coef[i] + q[:, 1] * coef[i + 1]) + (q[:, 2] * coef[i + 2] + q[:, 3] * coef[i + 3])
