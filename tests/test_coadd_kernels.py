@@ -278,3 +278,33 @@ def test_median_bin_step_equals_numpy():
         bstart = np.concatenate(([0], np.cumsum([x.size for x in u])))
         want = np.median([np.median(np.diff(x)) for x in u])
         assert coadd_kernels._load().median_bin_step(np.concatenate(u), bstart) == want
+
+
+def test_remembered_common_continuum_is_the_same_and_keyed_by_identity():
+    # inside remembering() the second call on the same inputs gives the first call's orders; another
+    # list or another reference mapping (even with equal values) is normalised afresh
+    from lineshift.measure.coadd import on_common_continuum, pixel_steps, remembering
+    from lineshift.measure.prepare import _prepare_block
+    from lineshift.model import Order
+
+    rng = np.random.default_rng(31)
+    n = 600
+    wave = 5000.0 + 0.02 * np.arange(n)
+    flux = rng.normal(3e4, 170.0, (2, n))
+    orders = [o for o in _prepare_block([Order(wave + 15.0 * k, flux[k], flux[k].copy(), index=k)
+                                          for k in range(2)], 2) if o is not None]
+    ref = {o.index: o.continuum * 1.01 for o in orders}
+    plain = on_common_continuum(orders, ref)
+    with remembering():
+        first = on_common_continuum(orders, ref)
+        again = on_common_continuum(orders, ref)
+        other = on_common_continuum(list(orders), dict(ref))
+        steps = pixel_steps(orders), pixel_steps(orders)
+    assert all(a is b for a, b in zip(first, again, strict=True)) and again is not first
+    assert not any(a is b for a, b in zip(first, other, strict=True))
+    for a, b in zip(plain, again, strict=True):
+        np.testing.assert_array_equal(a.flux, b.flux)
+        np.testing.assert_array_equal(a.weight, b.weight)
+    assert steps[0] == steps[1] == pixel_steps(orders)
+    fresh = on_common_continuum(orders, ref)               # outside the block: nothing kept
+    assert not any(a is b for a, b in zip(first, fresh, strict=True))

@@ -24,6 +24,8 @@ Shared by ``lineshift mask`` (line finding, one template) and the template-match
 
 from __future__ import annotations
 
+from collections.abc import Iterator
+from contextlib import contextmanager
 from dataclasses import dataclass, replace
 
 import numpy as np
@@ -34,7 +36,8 @@ from lineshift.measure.prepare import PreparedOrder
 from lineshift.model import C_MS
 
 __all__ = ["Template", "TemplateAccumulator", "bspline", "bspline_reference", "bspline_value", "log_grid",
-           "on_common_continuum", "pixel_steps", "reference_coefficients", "reject_above", "value_tables"]
+           "on_common_continuum", "pixel_steps", "reference_coefficients", "reject_above", "remembering",
+           "value_tables"]
 
 _BAD_REACH = 4  # pixels around a bad one that the spline prefilter's tail reaches (decays 0.27x per pixel)
 
@@ -135,6 +138,46 @@ class Template:
         return float(np.sqrt(max(self.pixel_step / self.step, 1.0))) if self.pixel_step else 1.0
 
 
+#: What :func:`on_common_continuum` and :func:`pixel_steps` gave for inputs they have seen, while
+#: :func:`remembering` is on (the template engine's passes apply them to the same prepared orders
+#: up to five times); keyed by the inputs' identity and holding them, so a key cannot be reused.
+_MEMO: dict | None = None
+_MEMO_BYTES = 0
+#: Upper bound of the arrays the memo holds.
+MEMO_BUDGET = 256 * 2**20
+
+
+@contextmanager
+def remembering() -> Iterator[None]:
+    """Within the block, :func:`on_common_continuum` and :func:`pixel_steps` of the same inputs (the
+    same list of orders, the same reference mapping) are made once; everything is dropped at its end."""
+    global _MEMO, _MEMO_BYTES
+    outer = _MEMO is not None
+    if not outer:
+        _MEMO, _MEMO_BYTES = {}, 0
+    try:
+        yield
+    finally:
+        if not outer:
+            _MEMO, _MEMO_BYTES = None, 0
+
+
+def _remembered(kind: str, inputs: tuple, make):
+    global _MEMO_BYTES
+    if _MEMO is None:
+        return make()
+    key = (kind, *map(id, inputs))
+    hit = _MEMO.get(key)
+    if hit is not None and all(a is b for a, b in zip(hit[0], inputs, strict=True)):
+        return list(hit[1])
+    out = make()
+    size = sum(a.nbytes for o in out if isinstance(o, PreparedOrder) for a in (o.flux, o.var, o.weight))
+    if _MEMO_BYTES + size <= MEMO_BUDGET:
+        _MEMO[key] = (inputs, list(out))
+        _MEMO_BYTES += size
+    return out
+
+
 def on_common_continuum(orders: list[PreparedOrder], reference: dict[int, np.ndarray] | None) -> list[PreparedOrder]:
     """The orders normalised by a continuum common to every spectrum instead of each one's own.
 
@@ -151,6 +194,10 @@ def on_common_continuum(orders: list[PreparedOrder], reference: dict[int, np.nda
     """
     if not reference:
         return orders
+    return _remembered("common", (orders, reference), lambda: _on_common_continuum(orders, reference))
+
+
+def _on_common_continuum(orders: list[PreparedOrder], reference: dict[int, np.ndarray]) -> list[PreparedOrder]:
     fast = coadd_kernels.active()
     out = []
     for o in orders:
@@ -174,6 +221,10 @@ def on_common_continuum(orders: list[PreparedOrder], reference: dict[int, np.nda
 
 def pixel_steps(orders: list[PreparedOrder]) -> list[float]:
     """Median pixel width (m/s) of each order, in their order (orders of one length at once)."""
+    return _remembered("steps", tuple(o.wave for o in orders), lambda: _pixel_steps(orders))
+
+
+def _pixel_steps(orders: list[PreparedOrder]) -> list[float]:
     out = [0.0] * len(orders)
     fast = coadd_kernels.active()
     if fast is not None:   # order by order, the median by selection (coadd_kernels)

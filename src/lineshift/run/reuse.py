@@ -27,12 +27,15 @@ _USED = 0
 @contextmanager
 def keeping() -> Iterator[None]:
     """Keep prepared spectra while the block runs; everything is dropped at its end."""
+    from lineshift.measure.coadd import remembering
+
     global _KEPT, _USED
     outer = _KEPT is not None
     if not outer:
         _KEPT, _USED = {}, 0
     try:
-        yield
+        with remembering():   # and what the passes derive from them (coadd.py)
+            yield
     finally:
         if not outer:
             _KEPT, _USED = None, 0
