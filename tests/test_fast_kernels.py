@@ -590,3 +590,19 @@ def test_line_pulls_equal_the_gradient_of_every_line():
     plain = -(np.gradient(num, v, axis=1) * w[:, None] / data.denominator) @ gain
     expect = np.array([plain[(lines == u) & ok].sum() for u in mom.lines])
     np.testing.assert_allclose(mom.a, expect, rtol=1e-10, atol=1e-12 * np.abs(expect).max())
+
+
+def test_stacked_rows_are_vstack_and_a_view_only_of_rows_end_to_end():
+    # numpy.vstack is the reference; a view only when the arrays lie end to end in one buffer, in order
+    from lineshift.measure.prepare import _stacked
+
+    a = np.arange(24.0).reshape(4, 6)
+    rows = list(a)
+    got = _stacked(rows)
+    np.testing.assert_array_equal(got, np.vstack(rows))
+    assert np.shares_memory(got, a) and not got.flags.writeable
+    assert np.shares_memory(_stacked(rows[1:3]), a)
+    for other in ([a[0], a[1], a[3], a[2]], [a[0], a[2]], [a[0].copy(), a[1], a[2], a[3]]):
+        out = _stacked(other)
+        np.testing.assert_array_equal(out, np.vstack(other))
+        assert not np.shares_memory(out, a)

@@ -87,6 +87,20 @@ class OrderBlock:
         return (OrderBlock, ({}, {}))
 
 
+def _stacked(arrays: list[np.ndarray]) -> np.ndarray:
+    """``np.vstack(arrays)`` of 1-D float arrays; without a copy (read-only) when they lie end to end,
+    in order, in one buffer (as a loader leaves the orders of an image)."""
+    a0 = arrays[0] if arrays else None
+    owner = None if a0 is None else a0.base
+    if owner is not None and a0.ndim == 1 and a0.dtype == np.float64 and a0.flags.c_contiguous:
+        p0, nbytes = a0.ctypes.data, a0.nbytes
+        if all(a.base is owner and a.shape == a0.shape and a.dtype == a0.dtype and a.flags.c_contiguous
+               and a.ctypes.data == p0 + k * nbytes for k, a in enumerate(arrays)):
+            return np.lib.stride_tricks.as_strided(a0, shape=(len(arrays), a0.size), strides=(nbytes, a0.itemsize),
+                                                   writeable=False)
+    return np.vstack(arrays)
+
+
 def block_rows(orders: list[PreparedOrder], name: str) -> np.ndarray | None:
     """The attribute ``name`` of ``orders`` as the rows of one 2-D array, without a copy, when the
     orders are consecutive rows of one :class:`OrderBlock` and still hold its arrays (an order made
@@ -273,8 +287,8 @@ def _prepare_block(orders: list[Order], degree: int, compiled: bool | None = Non
     :func:`.kernels.prepare_blaze`, :func:`.kernels.prepare_tail`; default: when they are in use), or
     the array steps below (:func:`.badpixels.bad_pixels`, :func:`.outliers.find_spikes`,
     :func:`_finish_numpy`): the same pixels, values equal to ~1e-15 relative (sums in another order)."""
-    flux = np.vstack([o.flux for o in orders])
-    var = np.vstack([o.var for o in orders])
+    flux = _stacked([o.flux for o in orders])
+    var = _stacked([o.var for o in orders])
     n = flux.shape[1]
     # bad pixels grown by the reach of a reduction's interpolation, and cosmic-ray / hot-pixel
     # spikes against a running median (measure/badpixels.py, measure/outliers.py)
@@ -331,7 +345,7 @@ def _prepare_block(orders: list[Order], degree: int, compiled: bool | None = Non
     if keep.size == 0:
         return [None] * len(orders)
     every = keep.size == len(orders)
-    wave = np.vstack([orders[k].wave for k in keep])
+    wave = _stacked([orders[k].wave for k in keep])
     arrays = {"wave": wave, "edges": pixel_edges(wave)}
     for name, a in (("flux", fn), ("var", vn), ("weight", q), ("good", good), ("continuum", cont)):
         arrays[name] = a if every else a[keep]
