@@ -215,10 +215,15 @@ def _per_order(data, rv, err):
     """Per-order rows, and the slope of the per-order velocities against ln(wavelength)."""
     ok = np.isfinite(rv) & np.isfinite(err)
     rows = []
+    if data.terms:   # each order's weight-averaged line wavelength, every order at once
+        sizes = np.array([t.lines.size for t in data.terms])
+        starts = np.concatenate(([0], np.cumsum(sizes)[:-1]))
+        ww = np.concatenate([t.weights for t in data.terms])
+        lam_all = np.add.reduceat(np.concatenate([t.line_wavelengths for t in data.terms]) * ww, starts) / \
+            np.add.reduceat(ww, starts)
     for k, t in enumerate(data.terms):
-        lam = float(np.multiply(t.line_wavelengths, t.weights).sum() / t.weights.sum())   # np.average's own steps
-        rows.append({"order": int(t.order.index), "wavelength": lam, "rv": float(rv[k]), "rv_err": float(err[k]),
-                     "n_lines": int(t.lines.size)})
+        rows.append({"order": int(t.order.index), "wavelength": float(lam_all[k]), "rv": float(rv[k]),
+                     "rv_err": float(err[k]), "n_lines": int(sizes[k])})
     use = ok & np.isfinite(err) & (err > 0)
     # a velocity far outside its neighbours' (a failed order fit) would dominate the slope: drop > 10 sigma
     if use.sum() >= 3:
