@@ -859,12 +859,20 @@ def _summed(pairs, n_lines: int) -> tuple[list, object]:
 
 def _recentred_pass(done, ctx: Context, *, workers: int, scheduler) -> list:
     """Measure again against the mask recentred on the line offsets (measure/recentre.py); the offsets
-    are first-order estimates, so the recentring is repeated on the residual offsets."""
-    from lineshift.measure.recentre import recentred_mask
+    are first-order estimates, so the recentring is repeated on the residual offsets.
+
+    Rows are taken as they arrive: a new row replaces the earlier one at once (which is then let go),
+    and each row's line moments go into the next pass's sums, so the batch holds one row per spectrum."""
+    from lineshift.measure.recentre import MomentSums, recentred_mask
 
     mask, notes = ctx.mask, []
     done, sums = _summed(done, len(mask))
-    first = {t.index: row for t, row in done}
+    tasks = [t for t, _ in done]
+    rows = {t.index: row for t, row in done}
+    done = None
+    # of the first pass only what the zero point needs
+    first = {i: (row["status"], row.get("rv")) for i, row in rows.items()}
+    replaced: set[int] = set()
     for it in range(RECENTRE_PASSES):
         # only where bad pixels made the line sets differ: clean batches are measured as before
         if len(sums) < MIN_RECENTRE or (it == 0 and not sums.cleared):
@@ -872,26 +880,30 @@ def _recentred_pass(done, ctx: Context, *, workers: int, scheduler) -> list:
         mask, note = recentred_mask(mask, sums)
         notes.append(note)
         last = it == RECENTRE_PASSES - 1
-        pairs, sums = _summed(run_tasks(measure_task, [t for t, _ in done], replace(ctx, mask=mask,
-                                                                                    line_moments=not last),
-                                        workers=workers, scheduler=scheduler), len(mask))
-        again = {t.index: (t, r) for t, r in pairs}
-        # a spectrum the recentred mask cannot measure keeps its earlier row
-        done = [again[t.index] if again[t.index][1]["status"] == "ok" or row["status"] != "ok" else (t, row)
-                for t, row in done]
+        sums = MomentSums(len(mask))
+        for t, new in run_tasks(measure_task, tasks, replace(ctx, mask=mask, line_moments=not last),
+                                workers=workers, scheduler=scheduler):
+            m = new.pop("_line_moments", None)
+            # a spectrum the recentred mask cannot measure keeps its earlier row
+            if new["status"] == "ok" or rows[t.index]["status"] != "ok":
+                rows[t.index] = new
+                replaced.add(t.index)
+                if m is not None:
+                    sums.add(m)
+    done = [(t, rows[t.index]) for t in tasks]
     if notes:
         for t, row in done:
-            if row is not first[t.index]:
+            if t.index in replaced:
                 row["notes"] = "; ".join(x for x in (row.get("notes") or "", notes[0]) if x)
         # recentring fixes the lines' positions up to one common shift: choose it so the batch-mean
         # velocity is the first pass's, i.e. the zero point stays that of the mask as given
-        pairs = [(first[t.index]["rv"], row["rv"]) for t, row in done
-                 if row["status"] == "ok" and first[t.index]["status"] == "ok" and row is not first[t.index]]
+        pairs = [(first[t.index][1], row["rv"]) for t, row in done
+                 if row["status"] == "ok" and first[t.index][0] == "ok" and t.index in replaced]
         if pairs:
             v1, v2 = np.array(pairs).T
             factor = float(np.mean((1 + v2 / C_MS) / (1 + v1 / C_MS)))
             for t, row in done:
-                if row["status"] == "ok" and row is not first[t.index]:
+                if row["status"] == "ok" and t.index in replaced:
                     _rescale_row(row, factor)
     return done
 
