@@ -204,3 +204,25 @@ def test_executor_keeps_a_bounded_number_in_flight(echelle_file, tmp_path):
         # never more than `limit` tasks submitted beyond those already handed back
         assert len(pulled) - received <= limit
     assert received == len(files)
+
+
+def test_order_rows_read_as_the_dicts_they_were_made_from():
+    # the compact per-order rows a batch holds for every spectrum: the same dicts back (Python types,
+    # NaN kept), the same JSON, through pickle (workers) and the store's conversion; mixed keys stay a list
+    import json
+    import pickle
+
+    from lineshift.model import OrderRows, order_rows
+    from lineshift.run.store import _jsonable
+
+    dicts = [{"order": k, "wavelength": 5000.0 + k, "rv": float("nan") if k == 2 else 12.5 * k,
+              "rv_err": 3.25, "n_lines": 30 + k, "note": None if k else "x"} for k in range(5)]
+    rows = order_rows(dicts)
+    same = json.dumps(dicts)                                  # NaN != NaN: compared as JSON text
+    assert isinstance(rows, OrderRows) and len(rows) == 5 and json.dumps(list(rows)) == same
+    assert type(rows[1]["order"]) is int and type(rows[1]["rv"]) is float and rows[-1] == dicts[-1]
+    assert rows[0:2] == dicts[0:2] and json.dumps(list(pickle.loads(pickle.dumps(rows)))) == same
+    assert json.dumps(_jsonable({"_orders": rows})) == json.dumps({"_orders": dicts})
+    assert isinstance(order_rows([{"a": 1}, {"b": 2}]), list) and order_rows([]) == []
+    with pytest.raises(IndexError):
+        rows[5]

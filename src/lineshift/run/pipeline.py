@@ -36,7 +36,7 @@ from lineshift.io.loaders import load_spectrum, read_observation
 from lineshift.io.table import COLUMNS, EXTRA_COLUMNS, SB2_COLUMNS, printable
 from lineshift.measure.mask_engine import SearchSettings, measure_mask
 from lineshift.measure.prepare import prepare_spectrum, reject_telluric_lines, rejected_pixels
-from lineshift.model import C_MS, LineMask, Observation
+from lineshift.model import C_MS, LineMask, Observation, order_rows
 from lineshift.run import reuse
 from lineshift.run.config import check_settings
 from lineshift.run.executors import default_workers, run_tasks
@@ -146,14 +146,15 @@ def _band_factor(task: Task) -> float:
     return float((1 + task.observed_berv / C_MS) / (1 + task.berv / C_MS))
 
 
-def _orders_to_topo(orders, task: Task) -> list[dict]:
-    """Per-order rows in the observatory frame (a barycentric file's shifts moved by its BERV)."""
+def _orders_to_topo(orders, task: Task):
+    """Per-order rows in the observatory frame (a barycentric file's shifts moved by its BERV), as
+    compact columns (model.OrderRows)."""
     out = [dict(o) for o in orders]
     if task.observed_berv != task.berv:
         for o in out:
             if o.get("rv") is not None and np.isfinite(o["rv"]):
                 o["rv"] = frame_velocities(task, float(o["rv"]))[1]
-    return out
+    return order_rows(out)
 
 
 @dataclass(frozen=True)
@@ -918,9 +919,12 @@ def _rescale_row(row: dict, factor: float) -> None:
     for k in ("rv", "rv_topo"):
         if row.get(k) is not None:
             row[k] = float(f(row[k]))
-    for o in row.get("_orders") or ():
-        if o.get("rv") is not None:
-            o["rv"] = float(f(o["rv"]))
+    if row.get("_orders"):
+        orders = [dict(o) for o in row["_orders"]]
+        for o in orders:
+            if o.get("rv") is not None:
+                o["rv"] = float(f(o["rv"]))
+        row["_orders"] = order_rows(orders)
     if row.get("_ccf") is not None:
         vel, ccf, model, bis = row["_ccf"]
         row["_ccf"] = (f(vel), ccf, model, None if bis is None else (bis[0], f(bis[1])))

@@ -28,7 +28,7 @@ import numpy as np
 
 from lineshift._version import __version__
 from lineshift.errors import ConfigError
-from lineshift.model import LineMask
+from lineshift.model import LineMask, OrderRows
 
 __all__ = ["ResultStore", "content_hash", "settings_hash"]
 
@@ -75,6 +75,8 @@ def _jsonable(row: dict) -> dict:
             continue
         if isinstance(v, np.generic):
             v = v.item()
+        if isinstance(v, OrderRows):
+            v = list(v)
         if isinstance(v, float) and not math.isfinite(v):
             v = None
         out[k] = v
