@@ -298,32 +298,7 @@ def _strided_snr(flux, var, good, out, start):   # pragma: no cover (compiled)
     return k
 
 
-def _solve(M, x, k):   # pragma: no cover (compiled)
-    """M x = b in place (b given in ``x``), Gaussian elimination with partial pivoting; False when a
-    pivot is exactly zero (LAPACK reports the matrix singular; the caller then takes the NumPy form)."""
-    for c in range(k):
-        p = c
-        for i in range(c + 1, k):
-            if abs(M[i, c]) > abs(M[p, c]):
-                p = i
-        if M[p, c] == 0.0:
-            return False
-        if p != c:
-            for j in range(k):
-                M[c, j], M[p, j] = M[p, j], M[c, j]
-            x[c], x[p] = x[p], x[c]
-        for i in range(c + 1, k):
-            f = M[i, c] / M[c, c]
-            for j in range(c, k):
-                M[i, j] -= f * M[c, j]
-            x[i] -= f * x[c]
-    for c in range(k - 1, -1, -1):
-        t = x[c]
-        for j in range(c + 1, k):
-            t -= M[c, j] * x[j]
-        x[c] = t / M[c, c]
-    return True
-
+_solve = kernels.solve_small   # compiled below with this module's options (Gaussian elimination)
 
 def _fit_orders(coef, var_t, ok_t, lnw, lng0, base, lo, hi, flux, var, use, pw, p, dlng, dlng2, iterations, xi0,
                 tables, S, width, bnum, bden, bcross, binfo):   # pragma: no cover (compiled)
@@ -523,7 +498,8 @@ def _load() -> SimpleNamespace | None:
             jit = numba.njit(cache=True, nogil=True, error_model="numpy")
             global _correlate, _correlate_padded, _causal_start, _prefilter, _solve   # called from kernels
             global _flux_and_variance, _flux_and_variance_less, _smooth
-            _correlate_padded, _causal_start, _solve = jit(_correlate_padded), jit(_causal_start), jit(_solve)
+            _correlate_padded, _causal_start, _solve = (jit(_correlate_padded), jit(_causal_start),
+                                                         jit(kernels.solve_small))
             _correlate, _prefilter = jit(_correlate), jit(_prefilter)
             _flux_and_variance, _flux_and_variance_less = jit(_flux_and_variance), jit(_flux_and_variance_less)
             _smooth = jit(_smooth)

@@ -33,7 +33,7 @@ import numpy as np
 
 __all__ = ["WARMUP_SPECTRA", "ccf_pairs", "compiled", "compiled_always", "continuum_iterations", "count_spectrum",
            "cumsums", "gauss_fit", "good_snr", "good_spans", "pixel_screen", "prepare_blaze",
-           "prepare_tail", "term_variances"]
+           "prepare_tail", "solve_small", "term_variances"]
 
 _COMPILED: SimpleNamespace | bool | None = None
 
@@ -279,7 +279,8 @@ def _gauss_fit(v, y, p0, scale, xtol, max_iter):   # pragma: no cover (compiled)
                     M[j, k] = A[j, k]
                 M[j, j] += lam * A[j, j]
                 step[j] = g[j]
-            _solve_small(M, step, 4)
+            if not _solve_small(M, step, 4):
+                return p, r, False          # a singular step: the plain form decides
             small = True
             for j in range(4):
                 trial[j] = p[j] + step[j]
@@ -437,7 +438,7 @@ def _load() -> SimpleNamespace | None:
             # quotients run on vector lanes; used where every such quotient is then replaced
             lanes = numba.njit(cache=True, nogil=True, error_model="numpy")
             global _solve_small
-            _solve_small = jit(_solve_small)   # called from a kernel: numba needs it compiled too
+            _solve_small = jit(solve_small)    # called from a kernel: numba needs it compiled too
             global _gauss_cost
             _gauss_cost = jit(_gauss_cost)
             _COMPILED = SimpleNamespace(ccf_pairs=jit(_ccf_pairs), term_variances=jit(_term_variances),
@@ -514,14 +515,17 @@ def cumsums(g, estart):
     return _kernels().cumsums(g, estart)
 
 
-def _solve_small(M, x, k):   # pragma: no cover (compiled)
+def solve_small(M, x, k):   # pragma: no cover (compiled)
     """M x = b in place (b given in ``x``): Gaussian elimination with partial pivoting, as LAPACK's
-    getrf/getrs do it for a small matrix."""
+    getrf/getrs do it for a small matrix; False (``x`` unfinished) when a pivot is zero.  The source the
+    kernels of this module and of :mod:`.fit_kernels` compile their own copy from."""
     for c in range(k):
         p = c
         for i in range(c + 1, k):
             if abs(M[i, c]) > abs(M[p, c]):
                 p = i
+        if M[p, c] == 0.0:
+            return False
         if p != c:
             for j in range(k):
                 M[c, j], M[p, j] = M[p, j], M[c, j]
@@ -536,7 +540,10 @@ def _solve_small(M, x, k):   # pragma: no cover (compiled)
         for j in range(c + 1, k):
             t -= M[c, j] * x[j]
         x[c] = t / M[c, c]
+    return True
 
+
+_solve_small = solve_small     # this module's kernels call it by this name (compiled in _load)
 
 def _continuum_iterations(flux, var, good, V, A, b, clip_low, clip_high, max_iter):   # pragma: no cover (compiled)
     rows, n = flux.shape
