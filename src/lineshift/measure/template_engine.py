@@ -624,13 +624,7 @@ def _fit_block(block: list[PreparedOrder], coef, var_t, ok_t, state: TemplateSta
         # (3 mm/s), so stop there
         if np.all(np.abs(dp[:, 0]) < 1e-9):
             break
-    info[~alive] = np.eye(npar)
-    cov = np.linalg.inv(info)
-    v = C_MS * np.expm1(p[:, 0])
-    e = C_MS * np.exp(p[:, 0]) * np.sqrt(np.abs(cov[:, 0, 0]))
-    bad = ~alive | ~np.isfinite(p).all(axis=1)
-    bins = bin_residuals(wave, r, poly * T, w, g)
-    return [(np.nan, np.nan, np.nan) if bad[j] else (v[j], e[j], chi2[j]) for j in range(k)], bins
+    return _block_results(p, info, alive, chi2), bin_residuals(wave, r, poly * T, w, g)
 
 
 def _fit_compiled(group: list[PreparedOrder], coef, var_t, ok_t, state: TemplateState, settings: TemplateSettings,
@@ -702,6 +696,17 @@ def _median_wavelength(o: PreparedOrder, fast) -> float:
     return float(np.median(o.wave))
 
 
+def _block_results(p: np.ndarray, info: np.ndarray, alive: np.ndarray, chi2: np.ndarray) -> list[tuple]:
+    """(velocity, its error, reduced chi^2) of each order of a block from the fitted parameters (the
+    first is ln(1 + v/c)) and their information matrices; NaNs for an order the fit lost."""
+    info[~alive] = np.eye(info.shape[1])
+    cov = np.linalg.inv(info)
+    v = C_MS * np.expm1(p[:, 0])
+    e = C_MS * np.exp(p[:, 0]) * np.sqrt(np.abs(cov[:, 0, 0]))
+    bad = ~alive | ~np.isfinite(p).all(axis=1)
+    return [(np.nan, np.nan, np.nan) if bad[j] else (v[j], e[j], chi2[j]) for j in range(p.shape[0])]
+
+
 def _fit_block_reference(block: list[PreparedOrder], coef, var_t, ok_t, state: TemplateState,
                          settings: TemplateSettings, delta0: float, pair=None):
     """Plain form of :func:`_fit_block`: the Jacobian built column by column, normal equations by a
@@ -751,10 +756,4 @@ def _fit_block_reference(block: list[PreparedOrder], coef, var_t, ok_t, state: T
         # (3 mm/s), so stop there
         if np.all(np.abs(dp[:, 0]) < 1e-9):
             break
-    info[~alive] = np.eye(npar)
-    cov = np.linalg.inv(info)
-    v = C_MS * np.expm1(p[:, 0])
-    e = C_MS * np.exp(p[:, 0]) * np.sqrt(np.abs(cov[:, 0, 0]))
-    bad = ~alive | ~np.isfinite(p).all(axis=1)
-    bins = bin_residuals(wave, r, poly * T, w, J[:, :, 0])
-    return [(np.nan, np.nan, np.nan) if bad[j] else (v[j], e[j], chi2[j]) for j in range(k)], bins
+    return _block_results(p, info, alive, chi2), bin_residuals(wave, r, poly * T, w, J[:, :, 0])
