@@ -689,9 +689,7 @@ def _response_equations(x, u, rho, W, cross, info, bstart, lnf, sgrid, s0, ds, n
 def _load() -> SimpleNamespace:
     global _COMPILED
     if _COMPILED is None:
-        import numba
-
-        jit = numba.njit(cache=True, nogil=True, error_model="numpy")
+        jit = kernels.numba_jit(error_model="numpy")   # active() has checked that numba is there
         global _prefilter, _weights_at, _slopes, _median_inplace, _select_rank, _rank_hist
         _prefilter = jit(_prefilter)          # called from kernels: numba needs them compiled too
         _select_rank = jit(_select_rank)

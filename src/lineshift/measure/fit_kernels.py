@@ -488,14 +488,10 @@ def _load() -> SimpleNamespace | None:
     global _COMPILED
     if _COMPILED is None:
         _COMPILED = False
-        try:
-            import numba
-        except ImportError:
-            pass
-        else:
-            # NumPy's floating-point rules (x / 0 is inf or NaN, as in the plain forms) rather than
-            # Python's (ZeroDivisionError), which also lets the loops run on vectors
-            jit = numba.njit(cache=True, nogil=True, error_model="numpy")
+        # NumPy's floating-point rules (x / 0 is inf or NaN, as in the plain forms) rather than
+        # Python's (ZeroDivisionError), which also lets the loops run on vectors
+        jit = kernels.numba_jit(error_model="numpy")
+        if jit is not None:
             global _correlate, _correlate_padded, _causal_start, _prefilter, _solve   # called from kernels
             global _flux_and_variance, _flux_and_variance_less, _smooth
             _correlate_padded, _causal_start, _solve = (jit(_correlate_padded), jit(_causal_start),

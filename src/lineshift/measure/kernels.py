@@ -32,7 +32,7 @@ from types import SimpleNamespace
 import numpy as np
 
 __all__ = ["WARMUP_SPECTRA", "ccf_pairs", "compiled", "compiled_always", "continuum_iterations", "count_spectrum",
-           "cumsums", "gauss_fit", "good_snr", "good_spans", "pixel_screen", "prepare_blaze",
+           "cumsums", "gauss_fit", "good_snr", "good_spans", "numba_jit", "pixel_screen", "prepare_blaze",
            "prepare_tail", "solve_small", "term_variances"]
 
 _COMPILED: SimpleNamespace | bool | None = None
@@ -423,20 +423,27 @@ def count_spectrum() -> None:
     _prepared += 1
 
 
+def numba_jit(**options):
+    """``numba.njit`` with the options every kernel module compiles with (cached on disk, no GIL) and
+    ``options``, or None without numba: the decorator of this module's and of :mod:`.fit_kernels`'
+    and :mod:`.coadd_kernels`' loaders."""
+    try:
+        import numba
+    except ImportError:
+        return None
+    return numba.njit(cache=True, nogil=True, **options)
+
+
 def _load() -> SimpleNamespace | None:
     """The compiled kernels (compiled or loaded from numba's cache on first use), None without numba."""
     global _COMPILED
     if _COMPILED is None:
         _COMPILED = False
-        try:
-            import numba
-        except ImportError:
-            pass
-        else:
-            jit = numba.njit(cache=True, nogil=True)
+        jit = numba_jit()
+        if jit is not None:
             # numpy's error model (a quotient by zero is inf or nan, not an exception): lets a loop of
             # quotients run on vector lanes; used where every such quotient is then replaced
-            lanes = numba.njit(cache=True, nogil=True, error_model="numpy")
+            lanes = numba_jit(error_model="numpy")
             global _solve_small
             _solve_small = jit(solve_small)    # called from a kernel: numba needs it compiled too
             global _gauss_cost
