@@ -91,7 +91,8 @@ def _edge_layout(velocity: np.ndarray, box_width: float) -> tuple[np.ndarray, in
     if m > 1:
         step = velocity[1] - velocity[0]
         r = box_width / step
-        uniform = np.allclose(np.diff(velocity), step, rtol=1e-9, atol=1e-9)
+        # np.allclose(np.diff(velocity), step, rtol=1e-9, atol=1e-9), without its set-up (~20 us a call)
+        uniform = bool(np.all(np.abs(np.diff(velocity) - step) <= 1e-9 + 1e-9 * abs(step)))
         if uniform and abs(r - round(r)) < 1e-9 and round(r) >= 1:
             r = round(r)
             return velocity[0] - half + step * np.arange(m + r), r
