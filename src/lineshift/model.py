@@ -9,6 +9,7 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 from dataclasses import dataclass, field
+from functools import cached_property
 
 import numpy as np
 
@@ -117,11 +118,12 @@ class Spectrum:
     def n_orders(self) -> int:
         return len(self.orders)
 
-    @property
+    @cached_property
     def wavelength_range(self) -> tuple[float, float]:
-        """(min, max) vacuum wavelength over all orders, Angstrom."""
-        lo = min(float(np.nanmin(o.wave)) for o in self.orders)
-        hi = max(float(np.nanmax(o.wave)) for o in self.orders)
+        """(min, max) vacuum wavelength over all orders, Angstrom (NaNs ignored, as np.nanmin /
+        np.nanmax: fmin/fmax reduce to the same values without their set-up; once per spectrum)."""
+        lo = min(float(np.fmin.reduce(o.wave)) for o in self.orders)
+        hi = max(float(np.fmax.reduce(o.wave)) for o in self.orders)
         return lo, hi
 
 
