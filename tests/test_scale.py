@@ -54,6 +54,51 @@ def test_store_skips_what_is_there(sample_set, tmp_path, capfd):
         assert len(s) == 2 * len(rows)
 
 
+def test_first_run_hashes_each_file_from_the_bytes_it_measures(echelle_file, tmp_path, monkeypatch):
+    # into an empty store the survey reads headers only; each row is keyed by the SHA-256 of its
+    # file's bytes as the measurement read them (outside check: hashlib's SHA-256, FIPS 180-4, over
+    # the files read here; a gzip file by its compressed bytes), a failed measurement's row included
+    import gzip
+    import hashlib
+
+    from lineshift.io.linelists import read_mask
+    from lineshift.run import pipeline
+    from lineshift.run import store as store_mod
+
+    src, mask = echelle_file
+    files = _copies(src, tmp_path, 2)
+    packed = str(tmp_path / "packed.fits.gz")
+    with open(files[0], "rb") as fh, gzip.open(packed, "wb") as gz:
+        gz.write(fh.read().replace(b"COPYNUM =                    0", b"COPYNUM =                    7"))
+    far = str(tmp_path / "far.fits")   # surveyed, then refused by the measurement: outside the mask's range
+    with fits.open(files[1]) as hdul:
+        hdul["WAVE"].data = hdul["WAVE"].data + 30000.0
+        hdul.writeto(far)
+    inputs = [*files, packed, far]
+    calls = []
+    real = store_mod.content_hash
+    monkeypatch.setattr(store_mod, "content_hash", lambda p, **kw: calls.append(p) or real(p, **kw))
+    path = str(tmp_path / "s.sqlite")
+    with ResultStore(path) as s:
+        rows = pipeline.measure_files(inputs, read_mask(mask), pipeline.MeasureSettings(), store=s, workers=1)
+    assert calls == []
+    assert [r["status"] for r in rows] == ["ok"] * 3 + ["outside mask range"]
+    with sqlite3.connect(path) as db:
+        stored = dict(db.execute("SELECT file, input_hash FROM results").fetchall())
+    expected = {}
+    for f in inputs:
+        with open(f, "rb") as fh:
+            expected[f] = hashlib.sha256(fh.read()).hexdigest()
+    assert stored == expected
+    # a second run hashes beside the headers and finds every row
+    with ResultStore(path) as s:
+        report = pipeline.BatchReport()
+        again = pipeline.measure_files(inputs, read_mask(mask), pipeline.MeasureSettings(), store=s,
+                                       workers=1, report=report)
+    assert sorted(calls) == sorted(inputs) and report.skipped == len(inputs)
+    assert [r["rv"] for r in again[:3]] == [r["rv"] for r in rows[:3]]
+
+
 def test_store_finds_moved_files_by_content(echelle_file, tmp_path, capfd):
     src, mask = echelle_file
     store = str(tmp_path / "s.sqlite")

@@ -25,6 +25,7 @@ the file's medium; the air/vacuum decision is ours (``AWAV*`` is air; specutils 
 from __future__ import annotations
 
 import gzip
+import hashlib
 import io
 import math
 import os
@@ -70,7 +71,9 @@ def _too_large(path: str, what: str) -> SpectrumFormatError:
                                "(LINESHIFT_MAX_INPUT_BYTES)", path=path, status="too large")
 
 
-def _read_bytes(path: str) -> bytes:
+def _read_bytes(path: str, digest: list | None = None) -> bytes:
+    """The file's bytes (unpacked when gzip); ``digest``: a list the SHA-256 (hex) of the bytes as read,
+    before any unpacking, is appended to (the results store's content hash, :func:`.store.content_hash`)."""
     try:
         with open(path, "rb") as fh:
             size = os.fstat(fh.fileno()).st_size
@@ -87,6 +90,8 @@ def _read_bytes(path: str) -> bytes:
         raise SpectrumFormatError(f"cannot be read ({exc.strerror or exc})", path=path) from None
     if len(raw) > MAX_INPUT_BYTES:
         raise _too_large(path, "the file")
+    if digest is not None:
+        digest.append(hashlib.sha256(raw).hexdigest())
     if raw[:2] == b"\x1f\x8b":
         try:
             # streamed: stop as soon as the limit is passed, never unpack a bomb in full
@@ -215,7 +220,8 @@ def read_observation(path: str, *, medium: str | None = None, flux_time_key: str
     return _load(path, medium=medium, arrays=False, time_key=flux_time_key)[0]
 
 
-def load_spectrum(path: str, *, medium: str | None = None, flux_time_key: str | None = None) -> Spectrum:
+def load_spectrum(path: str, *, medium: str | None = None, flux_time_key: str | None = None,
+                  digest: list | None = None) -> Spectrum:
     """Load a spectrum file of any supported layout.
 
     Parameters
@@ -227,6 +233,10 @@ def load_spectrum(path: str, *, medium: str | None = None, flux_time_key: str | 
     flux_time_key : str or None
         Header keyword holding a flux-weighted mid-exposure time (an exposure meter's), used
         before the other time rules when the file has it (config / ``--flux-time-key``).
+    digest : list, optional
+        The SHA-256 (hex) of the file's bytes is appended to it as soon as they are read (before
+        they are interpreted, so a file that then fails still has its hash): the file is read once
+        for both.
 
     Returns
     -------
@@ -240,16 +250,16 @@ def load_spectrum(path: str, *, medium: str | None = None, flux_time_key: str | 
     MetadataError
         A metadata keyword is present but malformed (missing metadata is not an error here).
     """
-    obs, orders = _load(path, medium=medium, arrays=True, time_key=flux_time_key)
+    obs, orders = _load(path, medium=medium, arrays=True, time_key=flux_time_key, digest=digest)
     return Spectrum(obs, tuple(orders))
 
 
 def _load(path: str, *, medium: str | None, arrays: bool,
-               time_key: str | None = None):
+               time_key: str | None = None, digest: list | None = None):
     path = os.fsdecode(os.fspath(path))  # bytes names (any bytes) as str with surrogate escapes
     # the observation record of a plain FITS file needs its header blocks only
     hdul = _plain_headers(path) if PLAIN_FITS and not arrays else None
-    raw = _read_bytes(path) if hdul is None else b""
+    raw = _read_bytes(path, digest) if hdul is None else b""
     if hdul is not None or _is_fits(raw):
         if hdul is None and PLAIN_FITS:
             hdul = _plain_multi_order(plainfits.scan_bytes(raw), path)

@@ -165,6 +165,7 @@ class Context:
     settings: MeasureSettings
     template: object = None          # TemplateState for the template engine's second pass
     line_moments: bool = False       # mask engine: keep each row's per-line offset coefficients
+    hash_inputs: bool = False        # a task without an input hash gets its file's from the bytes it reads
 
 
 def expand_inputs(items: Iterable[str]) -> list[str]:
@@ -335,12 +336,15 @@ def _note_rejected(row: dict, n: int) -> dict:
     return row
 
 
-def _load_prepared(path: str, s: MeasureSettings):
-    """(spectrum, prepared orders) of a file; kept for the batch in a template run (:mod:`.reuse`)."""
+def _load_prepared(path: str, s: MeasureSettings, digest: list | None = None):
+    """(spectrum, prepared orders) of a file; kept for the batch in a template run (:mod:`.reuse`).
+    ``digest``: as :func:`.load_spectrum`'s (the file is then read anew, never taken from the batch)."""
     def make():
-        spectrum = load_spectrum(path, medium=s.medium, flux_time_key=s.flux_time_key)
+        spectrum = load_spectrum(path, medium=s.medium, flux_time_key=s.flux_time_key, digest=digest)
         return spectrum, prepare_spectrum(spectrum, degree=s.continuum_degree)
 
+    if digest is not None:
+        return make()
     return reuse.prepared((path, s.medium, s.continuum_degree, s.flux_time_key), make)
 
 
@@ -349,11 +353,22 @@ def measure_task(task: Task, ctx: Context) -> dict:
 
     Returns the output row (with ``_ccf`` holding the CCF arrays when ``keep_ccf``).  Never raises
     for bad input: the row's ``status`` says what went wrong and ``_error`` holds the message.
+    With ``ctx.hash_inputs`` a task without an input hash has its file's content hash in the row's
+    ``_input_hash`` ("" when the file could not be read), from the bytes it was measured on.
     """
+    if not ctx.hash_inputs or task.input_hash:
+        return _measure(task, ctx, None)
+    digest: list[str] = []
+    row = _measure(task, ctx, digest)
+    row["_input_hash"] = digest[0] if digest else ""
+    return row
+
+
+def _measure(task: Task, ctx: Context, digest: list | None) -> dict:
     s = ctx.settings
     obs = None
     try:
-        spectrum, orders = _load_prepared(task.path, s)
+        spectrum, orders = _load_prepared(task.path, s, digest)
         obs = s.overrides.apply(spectrum.obs)
         lo, hi = spectrum.wavelength_range
         inside = (ctx.mask.wavelength > lo) & (ctx.mask.wavelength < hi)
@@ -752,8 +767,13 @@ def measure_files(paths: list[str], mask: LineMask, settings: MeasureSettings, *
         if on_row is not None:
             on_row(row)
 
-    surveyed = survey(paths, settings, workers=1 if scheduler else workers, hashes=store is not None)
-    if store is not None:   # content hashes read beside the headers (on the workers for a large batch)
+    # a store needs each input's content hash: read beside the headers (on the workers for a large
+    # batch) when the store may hold some of the inputs, else taken by each mask-engine measurement
+    # from the bytes it reads (one read of each file instead of two; an empty store skips nothing)
+    deferred = store is not None and settings.method not in CO_ADDED and store.empty()
+    surveyed = survey(paths, settings, workers=1 if scheduler else workers,
+                      hashes=store is not None and not deferred)
+    if store is not None and not deferred:
         observations, hashes = [o for o, _ in surveyed], [h for _, h in surveyed]
     else:
         observations, hashes = surveyed, [""] * len(paths)
@@ -788,7 +808,7 @@ def measure_files(paths: list[str], mask: LineMask, settings: MeasureSettings, *
 
     use_mask, note = effective_mask(mask, settings, bervs, estimate_systemic)
     report.mask_note, report.n_lines_mask = note, len(use_mask)
-    ctx = Context(use_mask, settings)
+    ctx = Context(use_mask, settings, hash_inputs=deferred)
     todo = tasks
     stored_template = None
     if store is not None:
@@ -797,7 +817,7 @@ def measure_files(paths: list[str], mask: LineMask, settings: MeasureSettings, *
         key = report.settings_hash = settings_hash(settings, use_mask)
         if settings.method in CO_ADDED and not rebuild_template:
             stored_template = store.get_template(key)
-        if settings.method not in CO_ADDED or stored_template is not None:
+        if not deferred and (settings.method not in CO_ADDED or stored_template is not None):
             todo = []
             for t in tasks:
                 row = store.get(t.input_hash, key)
@@ -820,11 +840,13 @@ def measure_files(paths: list[str], mask: LineMask, settings: MeasureSettings, *
             emit(t.index, final[t.index])
     else:
         done = run_tasks(measure_task, todo, replace(ctx, line_moments=recentre), workers=workers, scheduler=scheduler)
+        if deferred:   # each task then carries its file's hash (a recentred pass does not read it again)
+            done = ((replace(t, input_hash=row.pop("_input_hash", "")), row) for t, row in done)
         if recentre:
             done = _recentred_pass(done, ctx, workers=workers, scheduler=scheduler)
         for task, row in done:
             row.pop("_line_moments", None)
-            if store is not None and not (scheduler and cluster_failure(row)):
+            if store is not None and task.input_hash and not (scheduler and cluster_failure(row)):
                 store.put(task.input_hash, report.settings_hash, _clean(row))
             emit(task.index, row)
     out = [r for r in rows if r is not None]
