@@ -842,8 +842,8 @@ def measure_files(paths: list[str], mask: LineMask, settings: MeasureSettings, *
         done = run_tasks(measure_task, todo, replace(ctx, line_moments=recentre), workers=workers, scheduler=scheduler)
         if deferred:   # each task then carries its file's hash (a recentred pass does not read it again)
             done = ((replace(t, input_hash=row.pop("_input_hash", "")), row) for t, row in done)
-        if recentre:
-            done = _recentred_pass(done, ctx, workers=workers, scheduler=scheduler)
+        if recentre:   # (a file the first pass could not read is not hashed on a later one)
+            done = _recentred_pass(done, replace(ctx, hash_inputs=False), workers=workers, scheduler=scheduler)
         for task, row in done:
             row.pop("_line_moments", None)
             if store is not None and task.input_hash and not (scheduler and cluster_failure(row)):
