@@ -1,5 +1,6 @@
 """Results store, resumable batches, a real Dask cluster on 127.0.0.1, bounded submission."""
 
+import hashlib
 import os
 import signal
 import socket
@@ -54,12 +55,26 @@ def test_store_skips_what_is_there(sample_set, tmp_path, capfd):
         assert len(s) == 2 * len(rows)
 
 
+def _stored_keys(path: str) -> dict[str, str]:
+    """{file: input hash} of a store's rows."""
+    with sqlite3.connect(path) as db:
+        return dict(db.execute("SELECT file, input_hash FROM results").fetchall())
+
+
+def _sha256(files: list[str]) -> dict[str, str]:
+    """{file: SHA-256 of its bytes} by hashlib (FIPS 180-4), read here."""
+    out = {}
+    for f in files:
+        with open(f, "rb") as fh:
+            out[f] = hashlib.sha256(fh.read()).hexdigest()
+    return out
+
+
 def test_first_run_hashes_each_file_from_the_bytes_it_measures(echelle_file, tmp_path, monkeypatch):
     # into an empty store the survey reads headers only; each row is keyed by the SHA-256 of its
     # file's bytes as the measurement read them (outside check: hashlib's SHA-256, FIPS 180-4, over
     # the files read here; a gzip file by its compressed bytes), a failed measurement's row included
     import gzip
-    import hashlib
 
     from lineshift.io.linelists import read_mask
     from lineshift.run import pipeline
@@ -83,13 +98,7 @@ def test_first_run_hashes_each_file_from_the_bytes_it_measures(echelle_file, tmp
         rows = pipeline.measure_files(inputs, read_mask(mask), pipeline.MeasureSettings(), store=s, workers=1)
     assert calls == []
     assert [r["status"] for r in rows] == ["ok"] * 3 + ["outside mask range"]
-    with sqlite3.connect(path) as db:
-        stored = dict(db.execute("SELECT file, input_hash FROM results").fetchall())
-    expected = {}
-    for f in inputs:
-        with open(f, "rb") as fh:
-            expected[f] = hashlib.sha256(fh.read()).hexdigest()
-    assert stored == expected
+    assert _stored_keys(path) == _sha256(inputs)
     # a second run hashes beside the headers and finds every row
     with ResultStore(path) as s:
         report = pipeline.BatchReport()
@@ -102,8 +111,6 @@ def test_first_run_hashes_each_file_from_the_bytes_it_measures(echelle_file, tmp
 def test_recentred_batch_into_an_empty_store_keys_rows_by_content(echelle_file, tmp_path):
     # bad-pixel runs drop lines in some spectra, so the batch is measured again against a recentred
     # mask: the rows of that pass are stored under the hashes of the first (outside check: hashlib)
-    import hashlib
-
     import numpy as np
 
     from lineshift.io.linelists import read_mask
@@ -123,13 +130,7 @@ def test_recentred_batch_into_an_empty_store_keys_rows_by_content(echelle_file, 
     assert all(r["status"] == "ok" for r in rows)
     assert any("recentred" in (r["notes"] or "") for r in rows), [r["notes"] for r in rows]
     assert not any("_input_hash" in r for r in rows)
-    with sqlite3.connect(path) as db:
-        stored = dict(db.execute("SELECT file, input_hash FROM results").fetchall())
-    expected = {}
-    for f in files:
-        with open(f, "rb") as fh:
-            expected[f] = hashlib.sha256(fh.read()).hexdigest()
-    assert stored == expected
+    assert _stored_keys(path) == _sha256(files)
 
 
 def test_store_finds_moved_files_by_content(echelle_file, tmp_path, capfd):

@@ -770,7 +770,7 @@ def measure_files(paths: list[str], mask: LineMask, settings: MeasureSettings, *
     # a store needs each input's content hash: read beside the headers (on the workers for a large
     # batch) when the store may hold some of the inputs, else taken by each mask-engine measurement
     # from the bytes it reads (one read of each file instead of two; an empty store skips nothing)
-    deferred = store is not None and settings.method not in CO_ADDED and store.empty()
+    deferred = store is not None and settings.method not in CO_ADDED and len(store) == 0
     surveyed = survey(paths, settings, workers=1 if scheduler else workers,
                       hashes=store is not None and not deferred)
     if store is not None and not deferred:

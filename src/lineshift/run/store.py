@@ -155,10 +155,6 @@ class ResultStore:
         if schema != str(_SCHEMA_VERSION):
             raise ConfigError(f"store {path!r} has schema {schema}, this lineshift writes {_SCHEMA_VERSION}")
 
-    def empty(self) -> bool:
-        """Whether the store holds no result row at all (then no input can be skipped, whatever its hash)."""
-        return self._db.execute("SELECT 1 FROM results LIMIT 1").fetchone() is None
-
     def get(self, input_hash: str, settings_key: str) -> dict | None:
         """The stored row for this input and settings, or None."""
         cur = self._db.execute("SELECT row FROM results WHERE input_hash = ? AND settings_hash = ?",
