@@ -124,9 +124,7 @@ def test_recentred_batch_into_an_empty_store_keys_rows_by_content(echelle_file, 
             flux[:, 500 + 300 * k: 560 + 300 * k] = np.nan
     path = str(tmp_path / "s.sqlite")
     with ResultStore(path) as s:
-        report = pipeline.BatchReport()
-        rows = pipeline.measure_files(files, read_mask(mask), pipeline.MeasureSettings(), store=s, workers=1,
-                                      report=report)
+        rows = pipeline.measure_files(files, read_mask(mask), pipeline.MeasureSettings(), store=s, workers=1)
     assert all(r["status"] == "ok" for r in rows)
     assert any("recentred" in (r["notes"] or "") for r in rows), [r["notes"] for r in rows]
     assert not any("_input_hash" in r for r in rows)
